@@ -1,0 +1,50 @@
+"""What every engine adapter offers. Nothing outside `featpipe.engines` talks to a database.
+
+Adapters take sqlglot trees and render them in their own dialect; they never receive SQL text
+built elsewhere. Table names are plain (unquoted) names; adapters quote them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Protocol
+
+import pandas as pd
+import pyarrow as pa
+from sqlglot import exp
+
+
+class Engine(Protocol):
+    name: str  # "duckdb", "postgres", "spark", "sqlite"
+    dialect: str  # sqlglot dialect used to render statements for this engine
+
+    def render(self, statement: exp.Expression) -> str:
+        """The SQL text this engine runs for `statement`."""
+
+    def fetch(self, query: exp.Expression) -> list[tuple]:
+        """Run a query and return its rows (small results: statistics, metrics, profiles)."""
+
+    def fetch_frame(self, query: exp.Expression) -> pd.DataFrame:
+        """Run a query and return a pandas frame."""
+
+    def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
+        """Stream a query's result as Arrow record batches of at most `batch_rows` rows."""
+
+    def create_table(self, name: str, query: exp.Query) -> None:
+        """Build `name` from `query` under a temporary name, then swap it in.
+
+        A failure leaves any previous table `name` intact and no temporary table behind.
+        """
+
+    def load_file(self, name: str, path: Path) -> None:
+        """Load a CSV or Parquet file as table `name`, atomically like `create_table`."""
+
+    def describe(self, name: str) -> dict[str, exp.DataType] | None:
+        """Column names and types of table `name`, or None when it does not exist."""
+
+    def drop_table(self, name: str) -> None:
+        """Drop table `name` if it exists."""
+
+    def close(self) -> None: ...
+

@@ -1,0 +1,99 @@
+"""The embedded default engine: a DuckDB database file inside the project's build folder."""
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Iterator
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+import pyarrow as pa
+from sqlglot import exp
+
+from ..errors import EngineError
+from . import statements
+
+
+class DuckDBEngine:
+    name = "duckdb"
+    dialect = "duckdb"
+
+    def __init__(self, path: Path | str | None = None, *, read_only: bool = False):
+        """Open `path` (None: an in-memory database). A file held by another process is a clear error."""
+        self.path = Path(path) if path is not None else None
+        target = ":memory:"
+        if self.path is not None:
+            if not read_only:
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+            target = str(self.path)
+        try:
+            self.connection = duckdb.connect(target, read_only=read_only)
+        except duckdb.IOException as error:
+            if "lock" in str(error).lower():
+                raise EngineError(
+                    f"duckdb: the database {self.path} is in use by another process; "
+                    "close the other featpipe or DuckDB session and try again"
+                ) from None
+            raise EngineError(f"duckdb: cannot open {self.path}: {error}") from None
+
+    def render(self, statement: exp.Expression) -> str:
+        return statement.sql(dialect=self.dialect, identify=True)
+
+    def _run(self, statement: exp.Expression):
+        try:
+            return self.connection.execute(self.render(statement))
+        except duckdb.Error as error:
+            first_line = str(error).strip().splitlines()[0]
+            raise EngineError(f"duckdb: {first_line}") from None
+
+    def fetch(self, query: exp.Expression) -> list[tuple]:
+        return self._run(query).fetchall()
+
+    def fetch_frame(self, query: exp.Expression) -> pd.DataFrame:
+        return self._run(query).df()
+
+    def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
+        reader = self._run(query).fetch_record_batch(batch_rows)
+        yield from reader
+
+    def execute(self, statement: exp.Expression) -> None:
+        self._run(statement)
+
+    def create_table(self, name: str, query: exp.Query) -> None:
+        building = statements.building_name(name)
+        self._run(statements.drop_table(building))
+        try:
+            self._run(statements.create_table_as(building, query))
+            self.connection.begin()
+            self._run(statements.drop_table(name))
+            self._run(statements.rename_table(building, name))
+            self.connection.commit()
+        except BaseException:
+            with contextlib.suppress(duckdb.Error):  # no transaction was open yet
+                self.connection.rollback()
+            self._run(statements.drop_table(building))
+            raise
+
+    def load_file(self, name: str, path: Path) -> None:
+        reader = "read_parquet" if path.suffix.lower() == ".parquet" else "read_csv"
+        source = exp.Anonymous(this=reader, expressions=[exp.Literal.string(str(path))])
+        self.create_table(name, exp.select(exp.Star()).from_(source))
+
+    def describe(self, name: str) -> dict[str, exp.DataType] | None:
+        query = (
+            exp.select("column_name", "data_type")
+            .from_(exp.to_table("information_schema.columns"))
+            .where(exp.column("table_name").eq(exp.Literal.string(name)))
+            .order_by("ordinal_position")
+        )
+        rows = self.fetch(query)
+        if not rows:
+            return None
+        return {column: exp.DataType.build(kind, dialect=self.dialect) for column, kind in rows}
+
+    def drop_table(self, name: str) -> None:
+        self._run(statements.drop_table(name))
+
+    def close(self) -> None:
+        self.connection.close()

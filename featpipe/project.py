@@ -1,0 +1,377 @@
+"""Load featpipe.yaml, term files and model specs into plain dataclasses.
+
+Every field DESIGN.md names is read and checked here; an unknown key is an error naming the key, the
+file and the line. SQL inside the files is only carried along: the compiler parses it.
+"""
+
+from __future__ import annotations
+
+import difflib
+import os
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .errors import Diagnostic, FeatpipeError, raise_if_errors
+from .yamlfile import YamlDocument, read_yaml
+
+PROJECT_FILE = "featpipe.yaml"
+FAMILIES = ("binomial", "poisson", "gaussian")
+ENGINE_KINDS = ("duckdb", "postgres", "spark")
+EXPECTATIONS = ("positive", "negative")
+NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+
+
+@dataclass(frozen=True)
+class EngineConfig:
+    kind: str = "duckdb"
+    path: Path | None = None  # duckdb database file (absolute)
+    dsn: str | None = None  # postgres connection string, with ${VAR} already expanded
+    url: str | None = None  # spark connect URL; None means a local session
+    master: str = "local[2]"  # spark master for a local session
+    database: str | None = None  # spark database (schema) for tables
+
+
+@dataclass(frozen=True)
+class InputSpec:
+    name: str
+    key: str
+    columns: dict[str, str]  # column name -> declared SQL type, as written
+    load: Path | None = None  # absolute path of a CSV or Parquet file
+
+
+@dataclass(frozen=True)
+class TermFile:
+    path: Path  # absolute
+    display: str  # path relative to the project root, used in diagnostics
+    text: str
+
+
+@dataclass(frozen=True)
+class Penalty:
+    l2: float = 0.0
+    l1: float = 0.0
+
+    @property
+    def active(self) -> bool:
+        return self.l1 > 0 or self.l2 > 0
+
+
+@dataclass(frozen=True)
+class Holdout:
+    fraction: float = 0.3
+    salt: str = "v1"
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    name: str
+    display: str  # models/NAME.yaml
+    input: str
+    target: str
+    family: str
+    terms: tuple[str, ...]
+    offset: str | None = None
+    weights: str | None = None
+    penalty: Penalty = Penalty()
+    holdout: Holdout = Holdout()
+    threshold: float = 0.5
+    expect: dict[str, str] = field(default_factory=dict)
+    step: dict[str, float] = field(default_factory=dict)
+    notes: dict[str, str] = field(default_factory=dict)
+    max_dropped: float = 0.05  # largest share of rows that may be dropped for NULLs before a fit refuses
+    document: YamlDocument | None = field(default=None, compare=False, repr=False)
+
+    def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
+        """A diagnostic pointing into this spec's file."""
+        if self.document is None:
+            return Diagnostic(self.display, 1, 1, message, kwargs.get("severity", "error"))
+        return self.document.at(path, message, **kwargs)
+
+
+@dataclass(frozen=True)
+class Project:
+    root: Path
+    name: str
+    engine: EngineConfig
+    inputs: dict[str, InputSpec]
+    term_files: tuple[TermFile, ...]
+    models: dict[str, ModelSpec]
+    document: YamlDocument | None = field(default=None, compare=False, repr=False)
+
+    @property
+    def build_dir(self) -> Path:
+        return self.root / "build"
+
+    def fitted_path(self, model: str) -> Path:
+        return self.root / "fitted" / f"{model}.yaml"
+
+
+def find_project_root(start: Path | None = None) -> Path:
+    """The nearest folder upward from `start` (default: the working folder) holding featpipe.yaml."""
+    here = (start or Path.cwd()).resolve()
+    if here.is_file():
+        here = here.parent
+    for folder in (here, *here.parents):
+        if (folder / PROJECT_FILE).is_file():
+            return folder
+    raise FeatpipeError(
+        f"no {PROJECT_FILE} in {here} or any folder above it; pass --project PATH or run `featpipe new PATH`"
+    )
+
+
+def load_project(path: Path | str | None = None) -> Project:
+    """Read a project folder (or the nearest one above `path`); all problems are raised at once."""
+    root = find_project_root(Path(path) if path is not None else None)
+    diagnostics: list[Diagnostic] = []
+    document = read_yaml(root / PROJECT_FILE, PROJECT_FILE)
+    data = _mapping(document, (), diagnostics)
+    _unknown_keys(document, (), data, {"name", "engine", "inputs"}, diagnostics)
+    name = data.get("name") or root.name
+    if not isinstance(name, str):
+        diagnostics.append(document.at(("name",), "name must be a text"))
+        name = root.name
+    engine = _engine(document, data.get("engine") or {}, root, name, diagnostics)
+    inputs = _inputs(document, data.get("inputs"), root, diagnostics)
+    term_files = tuple(
+        TermFile(file, file.relative_to(root).as_posix(), file.read_text(encoding="utf-8"))
+        for file in sorted((root / "terms").glob("*.sql"))
+    )
+    models = {}
+    for file in sorted((root / "models").glob("*.yaml")):
+        try:
+            model = _model(file, root, inputs, diagnostics)
+        except FeatpipeError as error:  # a YAML syntax error in one spec; keep checking the others
+            diagnostics.extend(error.diagnostics)
+            continue
+        if model is not None:
+            models[model.name] = model
+    raise_if_errors(diagnostics)
+    return Project(root, name, engine, inputs, term_files, models, document)
+
+
+def _mapping(document: YamlDocument, path: tuple, diagnostics: list[Diagnostic]) -> dict:
+    value = document.data
+    for part in path:
+        value = value.get(part) if isinstance(value, dict) else None
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        diagnostics.append(document.at(path, f"expected a mapping of keys to values at '{'.'.join(map(str, path)) or 'top level'}'"))
+        return {}
+    return value
+
+
+def _unknown_keys(document, path, data: dict, allowed: set[str], diagnostics) -> None:
+    for key in data:
+        if key not in allowed:
+            hint = difflib.get_close_matches(str(key), sorted(allowed), n=1)
+            suggestion = f"; did you mean '{hint[0]}'?" if hint else f"; allowed keys: {', '.join(sorted(allowed))}"
+            diagnostics.append(document.at(path + (key,), f"unknown key '{key}'{suggestion}", key=True))
+
+
+def expand_environment(text: str, document: YamlDocument, path: tuple, diagnostics) -> str:
+    """Replace ${VAR} with the environment's value, so secrets stay out of project files."""
+
+    def value(match: re.Match) -> str:
+        variable = match.group(1)
+        if variable not in os.environ:
+            diagnostics.append(document.at(path, f"environment variable {variable} is not set; export it before running"))
+            return ""
+        return os.environ[variable]
+
+    return re.sub(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}", value, text)
+
+
+def _engine(document, data, root: Path, name: str, diagnostics) -> EngineConfig:
+    if not isinstance(data, dict):
+        diagnostics.append(document.at(("engine",), "engine must be a mapping with at least 'kind'"))
+        return EngineConfig(path=root / "build" / f"{name}.duckdb")
+    _unknown_keys(document, ("engine",), data, {"kind", "path", "dsn", "url", "master", "database"}, diagnostics)
+    kind = data.get("kind", "duckdb")
+    if kind not in ENGINE_KINDS:
+        diagnostics.append(document.at(("engine", "kind"), f"unknown engine kind '{kind}'; use one of {', '.join(ENGINE_KINDS)}"))
+        kind = "duckdb"
+    path = Path(data.get("path") or f"build/{name}.duckdb")
+    dsn = data.get("dsn")
+    if dsn is not None:
+        dsn = expand_environment(str(dsn), document, ("engine", "dsn"), diagnostics)
+    url = data.get("url")
+    if url is not None:
+        url = expand_environment(str(url), document, ("engine", "url"), diagnostics)
+    return EngineConfig(
+        kind=kind,
+        path=path if path.is_absolute() else root / path,
+        dsn=dsn,
+        url=url,
+        master=str(data.get("master", "local[2]")),
+        database=data.get("database"),
+    )
+
+
+def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
+    if not isinstance(data, dict) or not data:
+        diagnostics.append(document.at(("inputs",), "the project declares no inputs; add 'inputs:' with a key and columns"))
+        return {}
+    inputs = {}
+    for input_name, spec in data.items():
+        path = ("inputs", input_name)
+        if not isinstance(spec, dict):
+            diagnostics.append(document.at(path, f"input '{input_name}' must be a mapping with 'key' and 'columns'"))
+            continue
+        _unknown_keys(document, path, spec, {"key", "load", "columns"}, diagnostics)
+        columns = spec.get("columns")
+        if not isinstance(columns, dict) or not columns:
+            diagnostics.append(document.at(path + ("columns",), f"input '{input_name}' needs 'columns:' mapping each column to its SQL type"))
+            columns = {}
+        columns = {str(column): str(kind) for column, kind in columns.items()}
+        for column, kind in columns.items():
+            if not _valid_type(kind):
+                diagnostics.append(document.at(path + ("columns", column), f"'{kind}' is not a SQL type (for example BIGINT, DOUBLE, VARCHAR, BOOLEAN)"))
+        key = spec.get("key")
+        if not key:
+            diagnostics.append(document.at(path, f"input '{input_name}' needs 'key:', the column that identifies a row", key=True))
+        elif key not in columns:
+            diagnostics.append(document.at(path + ("key",), f"key '{key}' is not among the columns of '{input_name}'"))
+        load = spec.get("load")
+        if load is not None:
+            load = root / str(load)
+            if load.suffix.lower() not in (".csv", ".parquet"):
+                diagnostics.append(document.at(path + ("load",), "load must be a .csv or .parquet file"))
+            elif not load.is_file():
+                diagnostics.append(document.at(path + ("load",), f"file {spec['load']} does not exist"))
+        inputs[str(input_name)] = InputSpec(str(input_name), str(key or ""), columns, load)
+    return inputs
+
+
+def _valid_type(kind: str) -> bool:
+    from sqlglot import exp
+    from sqlglot.errors import ParseError
+
+    try:
+        return exp.DataType.build(kind, dialect="duckdb").this != exp.DataType.Type.USERDEFINED
+    except (ParseError, ValueError):
+        return False
+
+
+MODEL_KEYS = {
+    "input", "target", "family", "offset", "weights", "terms", "penalty",
+    "holdout", "threshold", "expect", "step", "notes", "max_dropped",
+}
+
+
+def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) -> ModelSpec | None:
+    display = file.relative_to(root).as_posix()
+    document = read_yaml(file, display)
+    name = file.stem
+    if not NAME_PATTERN.match(name):
+        diagnostics.append(Diagnostic(display, 1, 1, f"model name '{name}' must start with a letter and hold only letters, digits and _"))
+    data = _mapping(document, (), diagnostics)
+    if not data:
+        diagnostics.append(Diagnostic(display, 1, 1, "empty model spec; give at least input, target, family and terms"))
+        return None
+    _unknown_keys(document, (), data, MODEL_KEYS, diagnostics)
+    before = len(diagnostics)
+
+    def required(key: str) -> str:
+        value = data.get(key)
+        if value in (None, ""):
+            diagnostics.append(Diagnostic(display, 1, 1, f"missing required key '{key}'"))
+            return ""
+        if not isinstance(value, str):
+            diagnostics.append(document.at((key,), f"'{key}' must be a text"))
+            return ""
+        return value
+
+    input_name, target, family = required("input"), required("target"), required("family")
+    if input_name and input_name not in inputs:
+        hint = difflib.get_close_matches(input_name, list(inputs), n=1)
+        diagnostics.append(document.at(("input",), f"unknown input '{input_name}'" + (f"; did you mean '{hint[0]}'?" if hint else "")))
+    if family and family not in FAMILIES:
+        diagnostics.append(document.at(("family",), f"unknown family '{family}'; use one of {', '.join(FAMILIES)}"))
+    columns = inputs[input_name].columns if input_name in inputs else {}
+    if target and columns and target not in columns:
+        diagnostics.append(document.at(("target",), f"target '{target}' is not a column of input '{input_name}'"))
+    weights = data.get("weights")
+    if weights is not None and columns and weights not in columns:
+        diagnostics.append(document.at(("weights",), f"weights column '{weights}' is not a column of input '{input_name}'"))
+    offset = data.get("offset")
+    if offset is not None and not isinstance(offset, str):
+        diagnostics.append(document.at(("offset",), "offset must be a SQL expression, e.g. LN(exposure_years)"))
+        offset = None
+
+    terms = data.get("terms")
+    if not isinstance(terms, list) or not terms or not all(isinstance(t, str) for t in terms):
+        diagnostics.append(document.at(("terms",), "terms must be a non-empty list of term or column names"))
+        terms = []
+    for index, term in enumerate(terms):
+        if term in terms[:index]:
+            diagnostics.append(document.at(("terms", index), f"term '{term}' is listed twice"))
+
+    penalty_data = data.get("penalty") or {}
+    penalty = Penalty()
+    if isinstance(penalty_data, dict):
+        _unknown_keys(document, ("penalty",), penalty_data, {"l1", "l2"}, diagnostics)
+        penalty = Penalty(
+            l2=_number(document, ("penalty", "l2"), penalty_data.get("l2", 0.0), diagnostics, minimum=0.0),
+            l1=_number(document, ("penalty", "l1"), penalty_data.get("l1", 0.0), diagnostics, minimum=0.0),
+        )
+    else:
+        diagnostics.append(document.at(("penalty",), "penalty must be a mapping like {l2: 0.1, l1: 0.0}"))
+
+    holdout_data = data.get("holdout") or {}
+    holdout = Holdout()
+    if isinstance(holdout_data, dict):
+        _unknown_keys(document, ("holdout",), holdout_data, {"fraction", "salt"}, diagnostics)
+        fraction = _number(document, ("holdout", "fraction"), holdout_data.get("fraction", 0.3), diagnostics, minimum=0.0)
+        if not 0.0 <= fraction < 1.0:
+            diagnostics.append(document.at(("holdout", "fraction"), "holdout fraction must be at least 0 and below 1"))
+        holdout = Holdout(fraction, str(holdout_data.get("salt", "v1")))
+    else:
+        diagnostics.append(document.at(("holdout",), "holdout must be a mapping like {fraction: 0.3, salt: v1}"))
+
+    threshold = _number(document, ("threshold",), data.get("threshold", 0.5), diagnostics)
+    if not 0.0 < threshold < 1.0:
+        diagnostics.append(document.at(("threshold",), "threshold must lie strictly between 0 and 1"))
+    max_dropped = _number(document, ("max_dropped",), data.get("max_dropped", 0.05), diagnostics, minimum=0.0)
+
+    expect = _term_map(document, "expect", data, terms, diagnostics)
+    for term, sign in expect.items():
+        if sign not in EXPECTATIONS:
+            diagnostics.append(document.at(("expect", term), f"expected sign must be 'positive' or 'negative', not '{sign}'"))
+    step = {
+        term: _number(document, ("step", term), value, diagnostics)
+        for term, value in _term_map(document, "step", data, terms, diagnostics).items()
+    }
+    for term, value in step.items():
+        if value == 0:
+            diagnostics.append(document.at(("step", term), "a step must not be zero"))
+    notes = {term: str(value) for term, value in _term_map(document, "notes", data, terms, diagnostics).items()}
+
+    if len(diagnostics) > before:
+        return None
+    return ModelSpec(
+        name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
+        offset=offset, weights=weights, penalty=penalty, holdout=holdout, threshold=threshold,
+        expect=expect, step=step, notes=notes, max_dropped=max_dropped, document=document,
+    )
+
+
+def _term_map(document, key: str, data: dict, terms: list[str], diagnostics) -> dict:
+    value = data.get(key) or {}
+    if not isinstance(value, dict):
+        diagnostics.append(document.at((key,), f"'{key}' must map term names to values"))
+        return {}
+    for term in value:
+        if term not in terms:
+            diagnostics.append(document.at((key, term), f"'{term}' in {key} is not one of the model's terms", key=True))
+    return {term: item for term, item in value.items() if term in terms}
+
+
+def _number(document, path: tuple, value, diagnostics, minimum: float | None = None) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        diagnostics.append(document.at(path, f"'{path[-1]}' must be a number, not {value!r}"))
+        return 0.0
+    if minimum is not None and value < minimum:
+        diagnostics.append(document.at(path, f"'{path[-1]}' must be at least {minimum:g}"))
+    return float(value)

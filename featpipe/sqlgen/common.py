@@ -1,0 +1,34 @@
+"""Small tree builders shared by every generated query: quoted columns, DOUBLE casts, exact literals."""
+
+from __future__ import annotations
+
+import math
+
+from sqlglot import exp
+
+
+def column(name: str, table: str | None = None) -> exp.Column:
+    """A quoted column reference (identifiers are always quoted when rendered)."""
+    return exp.column(exp.to_identifier(name, quoted=True), table=exp.to_identifier(table, quoted=True) if table else None)
+
+
+def double(expression: exp.Expression) -> exp.Cast:
+    return exp.cast(expression, exp.DataType.build("DOUBLE"))
+
+
+def number(value: float) -> exp.Expression:
+    """`value` as a DOUBLE literal with round-trip precision (repr is the shortest exact form)."""
+    value = float(value)
+    if not math.isfinite(value):
+        raise ValueError(f"cannot write {value} as a SQL literal")
+    text = repr(value)
+    literal = exp.Literal.number(text.lstrip("-"))
+    return double(exp.Neg(this=literal) if text.startswith("-") else literal)
+
+
+def alias(expression: exp.Expression, name: str) -> exp.Alias:
+    return exp.alias_(expression, exp.to_identifier(name, quoted=True))
+
+
+def render(statement: exp.Expression, dialect: str, pretty: bool = True) -> str:
+    return statement.sql(dialect=dialect, identify=True, pretty=pretty)
