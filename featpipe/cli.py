@@ -1,0 +1,171 @@
+"""The featpipe command line: parse arguments, call one API function, print.
+
+Exit status: 0 ok, 1 a problem the user can fix (clear message, no traceback), 2 an internal error.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import traceback
+from enum import Enum
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+from rich.console import Console
+
+from . import api
+from .errors import Diagnostic, FeatpipeError
+from .project import load_project
+
+app = typer.Typer(
+    help="Engineered model terms as reviewed SQL: check, materialize, fit, explain and score in the warehouse.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+out = Console(highlight=False, soft_wrap=True)
+err = Console(stderr=True, highlight=False, soft_wrap=True)
+
+ProjectOption = Annotated[
+    Optional[Path],
+    typer.Option("--project", "-p", help="Project folder (default: the nearest folder upward holding featpipe.yaml)."),
+]
+JsonOption = Annotated[bool, typer.Option("--json", help="Print machine-readable JSON instead of text.")]
+
+
+class CheckFormat(str, Enum):
+    text = "text"
+    github = "github"
+
+
+def _print_json(value) -> None:
+    print(json.dumps(value, indent=2, default=str))
+
+
+def _progress(message: str) -> None:
+    err.print(f"[dim]… {message}[/dim]")
+
+
+@app.command()
+def new(path: Annotated[Path, typer.Argument(help="Folder to create; must not exist or be empty.")]) -> None:
+    """Scaffold a project with one input, one term file and one model."""
+    from .scaffold import scaffold
+
+    written = scaffold(path)
+    out.print(f"created project in {path}:")
+    for file in written:
+        out.print(f"  {file}")
+    out.print(f"next: featpipe check -p {path} && featpipe materialize -p {path}")
+
+
+@app.command()
+def check(
+    project: ProjectOption = None,
+    json_output: JsonOption = False,
+    format: Annotated[CheckFormat, typer.Option("--format", help="text, or github for workflow annotations.")] = CheckFormat.text,
+) -> None:
+    """All static validation of term files and model specs; errors as file:line:col: message."""
+    loaded = None
+    try:
+        loaded = load_project(project)
+        report = api.check_report(loaded)
+    except FeatpipeError as error:
+        if not error.diagnostics:
+            raise
+        _print_diagnostics(error.diagnostics, json_output, format, root=loaded.root if loaded else project)
+        raise typer.Exit(1)
+    if json_output:
+        _print_json(report.as_dict())
+        return
+    for warning in report.warnings:
+        _print_diagnostic(warning, format, report.root)
+    out.print(f"ok: {len(report.terms)} terms, {len(report.models)} models checked")
+    for stale in report.stale:
+        out.print(f"stale fit: {stale}")
+
+
+def _print_diagnostics(diagnostics: list[Diagnostic], json_output: bool, format: CheckFormat, root) -> None:
+    if json_output:
+        _print_json({"ok": False, "diagnostics": [d.as_dict() for d in diagnostics]})
+        return
+    for diagnostic in diagnostics:
+        _print_diagnostic(diagnostic, format, root)
+    errors = sum(d.severity == "error" for d in diagnostics)
+    err.print(f"{errors} error{'s' if errors != 1 else ''}; nothing was run")
+
+
+def _print_diagnostic(diagnostic: Diagnostic, format: CheckFormat, root) -> None:
+    if format == CheckFormat.github:
+        path = _relative_to_cwd(Path(root or ".") / diagnostic.file)
+        level = "error" if diagnostic.severity == "error" else "warning"
+        print(f"::{level} file={path},line={diagnostic.line},col={diagnostic.col}::{diagnostic.message}")
+    else:
+        print(str(diagnostic), file=sys.stderr if diagnostic.severity == "error" else sys.stdout)
+
+
+def _relative_to_cwd(path: Path) -> str:
+    try:
+        return path.resolve().relative_to(Path.cwd().resolve()).as_posix()
+    except ValueError:
+        return path.as_posix()
+
+
+@app.command()
+def materialize(
+    project: ProjectOption = None,
+    model: Annotated[Optional[list[str]], typer.Option("--model", "-m", help="Only this model (repeatable).")] = None,
+    json_output: JsonOption = False,
+) -> None:
+    """Build each model's design table in the engine (loading local data files first)."""
+    built = api.materialize(load_project(project), model, progress=None if json_output else _progress)
+    if json_output:
+        _print_json([vars(table) for table in built])
+        return
+    for table in built:
+        out.print(f"{table.table}: {table.rows} rows")
+
+
+class Part(str, Enum):
+    terms = "terms"
+    design = "design"
+
+
+@app.command()
+def sql(
+    model: Annotated[str, typer.Argument(help="Model name (models/NAME.yaml).")],
+    project: ProjectOption = None,
+    dialect: Annotated[str, typer.Option("--dialect", "-d", help=f"One of {', '.join(api.DIALECTS)}.")] = "duckdb",
+    part: Annotated[Part, typer.Option("--part", help="Which query to print.")] = Part.design,
+    table: Annotated[Optional[str], typer.Option("--table", help="Read this table instead of the input's name.")] = None,
+) -> None:
+    """Print the generated SQL of a model, rendered for a dialect."""
+    print(api.render_sql(load_project(project), model, part.value, dialect, table), end="")
+
+
+def main() -> None:
+    """Console entry point: map user errors to exit 1 and bugs to exit 2, never a bare traceback."""
+    try:
+        app(standalone_mode=False)
+    except FeatpipeError as error:
+        err.print(f"error: {error}", markup=False)
+        sys.exit(1)
+    except typer.Exit as done:
+        sys.exit(done.exit_code)
+    except (typer.Abort, KeyboardInterrupt):
+        err.print("interrupted")
+        sys.exit(1)
+    except Exception as error:  # noqa: BLE001 - the last line of defence
+        import click
+
+        if isinstance(error, click.ClickException):
+            error.show()
+            sys.exit(error.exit_code if error.exit_code != 0 else 1)
+        err.print(f"internal error: {type(error).__name__}: {error}", markup=False)
+        if os.environ.get("FEATPIPE_DEBUG"):
+            traceback.print_exc()
+        else:
+            err.print("set FEATPIPE_DEBUG=1 to see the traceback, and please report it")
+        sys.exit(2)

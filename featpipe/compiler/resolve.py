@@ -1,0 +1,53 @@
+"""Resolve every name a term uses to an input column or another term of the same input.
+
+Example:
+    >>> import sqlglot
+    >>> from featpipe.compiler.parse import RawTerm
+    >>> ratio = RawTerm("ratio", "leases", "t.sql", 1, 1, "", sqlglot.parse_one("p / r"))
+    >>> resolve_names([ratio], {"leases": {"p": "DOUBLE", "r": "DOUBLE"}}, {"t.sql": "p / r"})
+    ({'ratio': set()}, {})
+"""
+
+from __future__ import annotations
+
+import difflib
+
+from sqlglot import exp
+
+from ..errors import Diagnostic
+from .parse import RawTerm, node_position
+
+
+def resolve_names(
+    terms: list[RawTerm], columns_by_input: dict[str, dict[str, str]], texts: dict[str, str]
+) -> tuple[dict[str, set[str]], dict[str, list[Diagnostic]]]:
+    """For each term, the other terms it uses directly, and its problems (unknown names get a "did you mean")."""
+    by_name = {term.name: term for term in terms}
+    uses: dict[str, set[str]] = {}
+    problems: dict[str, list[Diagnostic]] = {}
+    for term in terms:
+        columns = columns_by_input.get(term.input, {})
+        uses[term.name] = set()
+        problems[term.name] = diagnostics = []
+        for reference in term.expression.find_all(exp.Column):
+            line, col = node_position(texts[term.file], reference)
+
+            def problem(message: str) -> None:
+                diagnostics.append(Diagnostic(term.file, line, col, message))
+
+            name = reference.name
+            if reference.table and reference.table != term.input:
+                problem(f"'{reference.table}.{name}' names another table; a term reads only its input '{term.input}'")
+            elif name in columns:
+                continue
+            elif name in by_name and by_name[name].input == term.input:
+                uses[term.name].add(name)
+            elif name in by_name:
+                problem(f"term '{name}' is computed over input '{by_name[name].input}', not '{term.input}'; "
+                        "terms of different inputs may not mix")
+            else:
+                candidates = sorted(set(columns) | {t.name for t in terms if t.input == term.input})
+                hint = difflib.get_close_matches(name, candidates, n=1)
+                advice = f"did you mean '{hint[0]}'?" if hint else "declare it among the input's columns or define it as a term"
+                problem(f"unknown name '{name}': not a column of input '{term.input}' nor a term; {advice}")
+    return uses, {name: found for name, found in problems.items() if found}

@@ -1,0 +1,193 @@
+"""The fitted file `fitted/MODEL.yaml`: dataclasses, deterministic YAML, atomic writes, staleness.
+
+The file is reviewed as a diff, so the same definitions and data must give the same bytes: keys
+keep a fixed order and floats are written in their shortest round-trip form.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+
+import yaml
+
+from .atomic import write_text_atomic
+from .errors import FeatpipeError
+
+INTERCEPT = "(intercept)"
+FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class Profile:
+    """Training distribution of a term (or of the linear predictor), kept for drift and reports.
+
+    `edges` are the distinct deciles of the non-NULL training values (ties collapse into one edge);
+    bin i holds values v with edges[i-1] < v <= edges[i], the first bin everything up to edges[0] and
+    the last everything above edges[-1]. `shares` are the training shares of those bins among
+    non-NULL rows; NULLs are counted apart in `nulls`.
+    """
+
+    count: int
+    nulls: int
+    mean: float
+    sd: float
+    min: float
+    max: float
+    median: float
+    edges: tuple[float, ...]
+    shares: tuple[float, ...]
+
+
+@dataclass(frozen=True)
+class Effect:
+    kind: str  # "odds ratio", "rate ratio" or "difference"
+    step: float
+    value: float
+    low: float | None
+    high: float | None
+
+
+@dataclass(frozen=True)
+class FittedTerm:
+    name: str
+    estimate: float
+    std_error: float | None
+    statistic: float | None
+    p_value: float | None
+    ci_low: float | None
+    ci_high: float | None
+    fingerprint: str | None = None  # None for the intercept
+    sql: str | None = None  # canonical SQL over input columns
+    kind: str = "intercept"  # "intercept", "numeric" or "boolean"
+    doc: str = ""
+    columns: tuple[str, ...] = ()
+    built_from: tuple[str, ...] = ()
+    effect: Effect | None = None
+    vif: float | None = None
+    profile: Profile | None = None
+    notes: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class FittedModel:
+    model: str
+    fingerprint: str
+    input: str
+    key: str
+    target: str
+    family: str
+    link: str
+    offset: str | None
+    weights: str | None
+    holdout: dict
+    threshold: float
+    penalty: dict
+    rows: dict  # input, complete, train, holdout, dropped {reason: count}
+    fit: dict  # converged, iterations, deviance, null_deviance, log_likelihood, aic, bic, ...
+    terms: tuple[FittedTerm, ...]  # the intercept first
+    linear_predictor: Profile | None = None
+    metrics: dict = field(default_factory=dict)
+    warnings: tuple[str, ...] = ()
+    format: int = FORMAT_VERSION
+
+    @property
+    def coefficients(self) -> dict[str, float]:
+        return {term.name: term.estimate for term in self.terms}
+
+    def term(self, name: str) -> FittedTerm:
+        for term in self.terms:
+            if term.name == name:
+                return term
+        raise KeyError(name)
+
+
+def to_yaml(fitted: FittedModel) -> str:
+    return yaml.safe_dump(_plain(asdict(fitted)), sort_keys=False, allow_unicode=True, width=100)
+
+
+def _plain(value):
+    """Tuples to lists, recursively, so the YAML holds only plain types."""
+    if isinstance(value, dict):
+        return {key: _plain(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(item) for item in value]
+    return value
+
+
+def from_yaml(text: str, source: str) -> FittedModel:
+    try:
+        data = yaml.safe_load(text)
+        return FittedModel(**{
+            **data,
+            "terms": tuple(_term(item) for item in data["terms"]),
+            "linear_predictor": _profile(data.get("linear_predictor")),
+            "warnings": tuple(data.get("warnings") or ()),
+        })
+    except (yaml.YAMLError, KeyError, TypeError) as error:
+        raise FeatpipeError(f"{source}: not a fitted file featpipe can read ({error}); run `featpipe fit` again") from None
+
+
+def _profile(data: dict | None) -> Profile | None:
+    if data is None:
+        return None
+    return Profile(**{**data, "edges": tuple(data["edges"]), "shares": tuple(data["shares"])})
+
+
+def _term(data: dict) -> FittedTerm:
+    effect = Effect(**data["effect"]) if data.get("effect") else None
+    known = {f.name for f in fields(FittedTerm)}
+    values = {key: value for key, value in data.items() if key in known}
+    return FittedTerm(**{
+        **values,
+        "columns": tuple(data.get("columns") or ()),
+        "built_from": tuple(data.get("built_from") or ()),
+        "notes": tuple(data.get("notes") or ()),
+        "effect": effect,
+        "profile": _profile(data.get("profile")),
+    })
+
+
+def write_fitted(path: Path, fitted: FittedModel) -> None:
+    write_text_atomic(path, to_yaml(fitted))
+
+
+def read_fitted(path: Path) -> FittedModel:
+    if not path.is_file():
+        raise FeatpipeError(f"{path.name}: no fitted file at {path}; run `featpipe fit` first")
+    return from_yaml(path.read_text(encoding="utf-8"), str(path))
+
+
+def file_hash(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()[:16]
+
+
+def staleness(fitted: FittedModel, model) -> list[str]:
+    """Why a fitted model no longer matches the current definitions (empty when it is current)."""
+    if fitted.fingerprint == model.fingerprint:
+        return []
+    reasons = []
+    current = {term.name: term.fingerprint for term in model.terms}
+    kept = {term.name: term.fingerprint for term in fitted.terms if term.fingerprint}
+    for name, print_ in current.items():
+        if name not in kept:
+            reasons.append(f"term '{name}' was added")
+        elif kept[name] != print_:
+            reasons.append(f"term '{name}' changed meaning")
+    reasons += [f"term '{name}' was removed" for name in kept if name not in current]
+    if not reasons:
+        reasons.append("the model spec changed (target, family, offset, weights, holdout or penalty)")
+    return reasons
+
+
+def stale_fits(compiled) -> tuple[str, ...]:
+    """One line per fitted file whose model changed since it was fitted."""
+    lines = []
+    for name, model in sorted(compiled.models.items()):
+        path = compiled.project.fitted_path(name)
+        if path.is_file():
+            reasons = staleness(read_fitted(path), model)
+            if reasons:
+                lines.append(f"fitted/{name}.yaml is stale: {'; '.join(reasons)}")
+    return tuple(lines)

@@ -1,0 +1,66 @@
+"""The terms and design-table queries of a model, as sqlglot trees.
+
+The design table holds the key, the target as DOUBLE, the offset and weight when the model has
+them, the holdout flag and one DOUBLE column per term, every term computed from input columns only
+(references inlined) with the portable-SQL hardening applied.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from ..compiler import CompiledModel, Term
+from ..project import Holdout, InputSpec
+from .common import alias, column, double
+from .harden import as_number, harden
+
+HASH_DIGITS = 8  # hex digits of MD5 used for the split: 16**8 buckets
+
+
+def holdout_threshold(fraction: float) -> str:
+    """The hex prefix below which a row is held out: a share `fraction` of all MD5 values."""
+    return format(int(round(fraction * 16**HASH_DIGITS)), f"0{HASH_DIGITS}x")
+
+
+def holdout_flag(key: str, holdout: Holdout) -> exp.Expression:
+    """TRUE for held-out rows: the first hex digits of MD5(salt ':' key) compared as text.
+
+    Every engine computes MD5 of the same text identically and compares lowercase hex strings of
+    equal length the same way, so the split is the same everywhere.
+    """
+    keyed = exp.DPipe(this=exp.Literal.string(f"{holdout.salt}:"), expression=exp.cast(column(key), "VARCHAR"), safe=True)
+    digits = exp.Substring(this=exp.MD5(this=keyed), start=exp.Literal.number(1), length=exp.Literal.number(HASH_DIGITS))
+    return exp.LT(this=digits, expression=exp.Literal.string(holdout_threshold(holdout.fraction)))
+
+
+def term_value(term: Term) -> exp.Expression:
+    """A term's value as DOUBLE from its inlined expression; booleans become 1.0/0.0, NULL stays NULL."""
+    return as_number(harden(term.inlined), term.kind == "boolean")
+
+
+def target_value(name: str, declared_type: str) -> exp.Expression:
+    declared = exp.DataType.build(declared_type, dialect="duckdb")
+    return as_number(column(name), declared.is_type(exp.DataType.Type.BOOLEAN))
+
+
+def terms_query(terms: list[Term], source: InputSpec, table: str | None = None) -> exp.Select:
+    """Key and every term value of one input."""
+    projections = [alias(column(source.key), source.key)]
+    projections += [alias(term_value(term), term.name) for term in terms]
+    return exp.select(*projections).from_(exp.to_table(table or source.name))
+
+
+def design_query(model: CompiledModel, source: InputSpec, table: str | None = None) -> exp.Select:
+    """The query that builds `design_<model>` from the input table."""
+    spec, layout = model.spec, model.layout
+    projections = [
+        alias(column(source.key), source.key),
+        alias(target_value(spec.target, source.columns[spec.target]), layout.target),
+    ]
+    if model.offset is not None:
+        projections.append(alias(as_number(harden(model.offset), False), layout.offset))
+    if spec.weights:
+        projections.append(alias(double(column(spec.weights)), layout.weight))
+    projections.append(alias(holdout_flag(source.key, spec.holdout), layout.holdout))
+    projections += [alias(term_value(term), term.name) for term in model.terms]
+    return exp.select(*projections).from_(exp.to_table(table or source.name))

@@ -1,0 +1,90 @@
+"""Shared test helpers: small projects written to temporary folders, and the demo projects."""
+
+from __future__ import annotations
+
+import shutil
+import textwrap
+from pathlib import Path
+
+import pytest
+
+# pytest_plugins = ["fixtures_engines"]  (enabled when the engine fixtures land)
+
+REPO = Path(__file__).resolve().parent.parent
+DEMOS = REPO / "projects"
+
+PROJECT_YAML = """\
+name: shop
+engine:
+  kind: duckdb
+  path: build/shop.duckdb
+inputs:
+  orders:
+    key: order_id
+    load: data/orders.csv
+    columns:
+      order_id: BIGINT
+      amount: DOUBLE
+      items: BIGINT
+      region: VARCHAR
+      returned: BIGINT
+"""
+
+ORDERS_CSV = """\
+order_id,amount,items,region,returned
+1,120.5,3,north,0
+2,80.0,0,south,1
+3,15.25,1,north,0
+4,300.0,6,east,1
+5,42.0,2,south,0
+6,,2,north,0
+7,99.9,4,east,1
+8,10.0,1,south,0
+"""
+
+TERMS_SQL = """\
+-- Terms about the basket.
+SELECT
+  -- Average price of one item.
+  amount / NULLIF(items, 0) AS item_price,
+  CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern
+FROM orders
+"""
+
+MODEL_YAML = """\
+input: orders
+target: returned
+family: binomial
+terms: [item_price, northern, items]
+"""
+
+
+def write_project(root: Path, files: dict[str, str | None] | None = None) -> Path:
+    """A small valid project in `root`; `files` adds or replaces files (None removes one)."""
+    layout = {
+        "featpipe.yaml": PROJECT_YAML,
+        "data/orders.csv": ORDERS_CSV,
+        "terms/basket.sql": TERMS_SQL,
+        "models/returns.yaml": MODEL_YAML,
+    }
+    layout.update(files or {})
+    for relative, text in layout.items():
+        path = root / relative
+        if text is None:
+            path.unlink(missing_ok=True)
+            continue
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(textwrap.dedent(text), encoding="utf-8")
+    return root
+
+
+@pytest.fixture
+def project_dir(tmp_path: Path) -> Path:
+    return write_project(tmp_path / "shop")
+
+
+def copy_demo(name: str, destination: Path) -> Path:
+    """A private copy of a demo project (without its build folder) that a test may change."""
+    target = destination / name
+    shutil.copytree(DEMOS / name, target, ignore=shutil.ignore_patterns("build"))
+    return target
