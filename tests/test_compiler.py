@@ -1,0 +1,152 @@
+"""The term compiler on real files: one test per error kind, with the exact position and message."""
+
+from __future__ import annotations
+
+import pytest
+
+from conftest import write_project
+from featpipe.compiler import compile_project
+from featpipe.errors import FeatpipeError
+from featpipe.project import load_project
+
+
+def compile_dir(root):
+    return compile_project(load_project(root))
+
+
+def errors_of(root, **files) -> list[str]:
+    write_project(root, {f"terms/{name}.sql": text for name, text in files.items()})
+    with pytest.raises(FeatpipeError) as caught:
+        compile_dir(root)
+    return [str(d) for d in caught.value.diagnostics]
+
+
+def test_terms_carry_docs_inlined_sql_and_fingerprints(project_dir):
+    compiled = compile_dir(project_dir)
+    price = compiled.terms["item_price"]
+    assert price.doc == "Average price of one item."
+    assert (price.file, price.line, price.col) == ("terms/basket.sql", 4, 35)
+    assert price.sql == '"amount" / NULLIF("items", 0)'
+    assert price.kind == "numeric" and compiled.terms["northern"].kind == "numeric"
+    model = compiled.models["returns"]
+    assert [t.name for t in model.terms] == ["item_price", "northern", "items"]
+    assert model.layout.table == "design_returns"
+
+
+def test_references_are_inlined_in_dependency_order(tmp_path):
+    root = write_project(tmp_path, {"terms/more.sql": """\
+        SELECT
+          item_price * northern AS northern_price,
+          -- A term may be used before the file that defines it.
+          northern_price + 1 AS shifted
+        FROM orders
+        """})
+    compiled = compile_dir(root)
+    assert compiled.terms["shifted"].sql == '("amount" / NULLIF("items", 0)) * (CASE WHEN "region" = \'north\' THEN 1 ELSE 0 END) + 1'
+    assert compiled.terms["shifted"].built_from == ("item_price", "northern", "northern_price")
+    assert compiled.terms["shifted"].columns == ("amount", "items", "region")
+
+
+def test_projection_without_a_name(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT\n  amount * 2\nFROM orders\n") == [
+        "terms/extra.sql:2:3: every term needs a name: write <expression> AS <name>"]
+
+
+def test_select_star(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT * FROM orders") == [
+        "terms/extra.sql:1:8: SELECT * is not allowed; list each term as <expression> AS <name>"]
+
+
+def test_a_second_statement_is_refused_and_nothing_runs(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT amount AS a2 FROM orders; DROP TABLE orders") == [
+        "terms/extra.sql:1:34: a term file holds exactly one SELECT; remove the second statement"]
+
+
+def test_unknown_name_gets_a_suggestion(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT\n  amonut * 2 AS doubled\nFROM orders\n") == [
+        "terms/extra.sql:2:3: unknown name 'amonut': not a column of input 'orders' nor a term; did you mean 'amount'?"]
+
+
+def test_unknown_input(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT amount AS a2 FROM order") == [
+        "terms/extra.sql:1:26: unknown input 'order'; did you mean 'orders'?"]
+
+
+def test_cycle_is_reported_in_full(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT\n  b + 1 AS a,\n  a * 2 AS b\nFROM orders\n") == [
+        "terms/extra.sql:2:12: terms depend on each other in a cycle: a -> b -> a"]
+
+
+def test_duplicate_names_across_files(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT amount AS item_price FROM orders") == [
+        "terms/extra.sql:1:18: term 'item_price' is already defined at terms/basket.sql:4:35; names are unique across the project"]
+
+
+def test_arithmetic_on_text(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT\n  amount + region AS odd\nFROM orders\n") == [
+        "terms/extra.sql:2:12: arithmetic on text: 'region' is TEXT; compare it to a value "
+        "(e.g. CASE WHEN x = 'a' THEN 1 ELSE 0 END) or CAST it"]
+
+
+def test_a_text_valued_term(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT\n  UPPER(region) AS shouty\nFROM orders\n") == [
+        "terms/extra.sql:2:3: a term must be numeric or boolean, but this expression is TEXT; "
+        "turn text into indicators, e.g. CASE WHEN x = 'a' THEN 1 ELSE 0 END"]
+
+
+def test_leakage_through_another_term(tmp_path):
+    root = write_project(tmp_path, {
+        "terms/leak.sql": "SELECT\n  returned * 2 AS flag,\n  flag + items AS mixed\nFROM orders\n",
+        "models/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\nterms: [item_price, mixed]\n",
+    })
+    with pytest.raises(FeatpipeError) as caught:
+        compile_dir(root)
+    assert [str(d) for d in caught.value.diagnostics] == [
+        "models/returns.yaml:4:21: leakage: term 'mixed' reads the target 'returned' (mixed -> flag -> returned); "
+        "a term must be known before the outcome"]
+
+
+def test_unknown_model_term(tmp_path):
+    root = write_project(tmp_path, {"models/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\nterms: [item_prise]\n"})
+    with pytest.raises(FeatpipeError) as caught:
+        compile_dir(root)
+    assert [str(d) for d in caught.value.diagnostics] == [
+        "models/returns.yaml:4:9: unknown term 'item_prise'; did you mean 'item_price'?"]
+
+
+def test_every_error_of_a_run_is_reported_at_once(tmp_path):
+    messages = errors_of(tmp_path, extra="SELECT\n  amonut AS a1,\n  RANDOM() AS a2,\n  SUM(amount) AS a3\nFROM orders\n")
+    assert [m.split(": ")[0] for m in messages] == ["terms/extra.sql:2:3", "terms/extra.sql:3:3", "terms/extra.sql:4:3"]
+
+
+def fingerprint_after(tmp_path, name: str, basket: str) -> str:
+    root = write_project(tmp_path / name, {"terms/basket.sql": basket})
+    return compile_dir(root).terms["item_price"].fingerprint
+
+
+BASKET = "SELECT amount / NULLIF(items, 0) AS item_price, CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern FROM orders"
+
+
+@pytest.mark.parametrize("edit", [
+    "select\n   AMOUNT/nullif(ITEMS,0)   as item_price,\n CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern from orders",
+    "SELECT\n  -- price of one item\n  ((amount)) / NULLIF((items), 0) AS item_price, CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern FROM orders",
+    'SELECT "amount" / NULLIF("items", 0) AS item_price, CASE WHEN region = \'north\' THEN 1 ELSE 0 END AS northern FROM orders',
+])
+def test_formatting_comments_case_quotes_and_parentheses_keep_the_fingerprint(tmp_path, edit):
+    assert fingerprint_after(tmp_path, "edited", edit) == fingerprint_after(tmp_path, "original", BASKET)
+
+
+@pytest.mark.parametrize("edit", [
+    BASKET.replace("NULLIF(items, 0)", "NULLIF(items, 1)"),
+    BASKET.replace("amount /", "amount * 1.0 /"),
+    BASKET.replace("amount / NULLIF(items, 0)", "items / NULLIF(amount, 0)"),
+])
+def test_every_change_of_meaning_changes_the_fingerprint(tmp_path, edit):
+    assert fingerprint_after(tmp_path, "edited", edit) != fingerprint_after(tmp_path, "original", BASKET)
+
+
+def test_a_change_in_a_used_term_changes_the_users_fingerprint(tmp_path):
+    user = {"terms/more.sql": "SELECT item_price * 2 AS double_price FROM orders"}
+    before = compile_dir(write_project(tmp_path / "a", user)).terms["double_price"].fingerprint
+    after = compile_dir(write_project(tmp_path / "b", {**user, "terms/basket.sql": BASKET.replace("NULLIF(items, 0)", "items")}))
+    assert after.terms["double_price"].fingerprint != before
