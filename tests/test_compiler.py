@@ -25,7 +25,7 @@ def test_terms_carry_docs_inlined_sql_and_fingerprints(project_dir):
     compiled = compile_dir(project_dir)
     price = compiled.terms["item_price"]
     assert price.doc == "Average price of one item."
-    assert (price.file, price.line, price.col) == ("terms/basket.sql", 4, 35)
+    assert (price.file, price.line, price.col) == ("terms/basket.sql", 4, 32)
     assert price.sql == '"amount" / NULLIF("items", 0)'
     assert price.kind == "numeric" and compiled.terms["northern"].kind == "numeric"
     model = compiled.models["returns"]
@@ -42,7 +42,8 @@ def test_references_are_inlined_in_dependency_order(tmp_path):
         FROM orders
         """})
     compiled = compile_dir(root)
-    assert compiled.terms["shifted"].sql == '("amount" / NULLIF("items", 0)) * (CASE WHEN "region" = \'north\' THEN 1 ELSE 0 END) + 1'
+    # Only the parentheses the tree needs survive: (a / b) * c is written a / b * c.
+    assert compiled.terms["shifted"].sql == '"amount" / NULLIF("items", 0) * CASE WHEN "region" = \'north\' THEN 1 ELSE 0 END + 1'
     assert compiled.terms["shifted"].built_from == ("item_price", "northern", "northern_price")
     assert compiled.terms["shifted"].columns == ("amount", "items", "region")
 
@@ -79,7 +80,7 @@ def test_cycle_is_reported_in_full(tmp_path):
 
 def test_duplicate_names_across_files(tmp_path):
     assert errors_of(tmp_path, extra="SELECT amount AS item_price FROM orders") == [
-        "terms/extra.sql:1:18: term 'item_price' is already defined at terms/basket.sql:4:35; names are unique across the project"]
+        "terms/extra.sql:1:18: term 'item_price' is already defined at terms/basket.sql:4:32; names are unique across the project"]
 
 
 def test_arithmetic_on_text(tmp_path):
@@ -90,7 +91,7 @@ def test_arithmetic_on_text(tmp_path):
 
 def test_a_text_valued_term(tmp_path):
     assert errors_of(tmp_path, extra="SELECT\n  UPPER(region) AS shouty\nFROM orders\n") == [
-        "terms/extra.sql:2:3: a term must be numeric or boolean, but this expression is TEXT; "
+        "terms/extra.sql:2:3: a term must be numeric or boolean, but this expression is VARCHAR; "
         "turn text into indicators, e.g. CASE WHEN x = 'a' THEN 1 ELSE 0 END"]
 
 

@@ -1,0 +1,126 @@
+"""`featpipe fit`: fit a model on its design table in the engine and build its fitted file.
+
+The data never leaves the engine: row accounting, the GLM's sufficient statistics, the training
+profiles and the holdout metrics are all queries; only small results come back.
+"""
+
+from __future__ import annotations
+
+from .compiler import CompiledModel, CompiledProject, Term
+from .engines.base import Engine
+from .errors import FeatpipeError
+from .fitted import INTERCEPT, FittedModel, FittedTerm
+from .glm import fit_glm
+from .metrics import holdout_metrics, training_profiles
+from .notes import effect, term_notes
+from .sqlgen.accounting import dropped_reasons, row_accounting_query
+from .sqlgen.common import column
+from .sqlgen.metrics import linear_predictor
+
+LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}
+
+
+def account_rows(engine: Engine, model: CompiledModel) -> dict:
+    """Rows of the design table: all, training, holdout, and dropped per reason (refused above the limit)."""
+    layout, spec = model.layout, model.spec
+    values = engine.fetch(row_accounting_query(layout))[0]
+    total, incomplete, train, holdout = (int(v or 0) for v in values[:4])
+    dropped = {reason: int(count or 0) for (reason, _), count in zip(dropped_reasons(layout), values[4:]) if count}
+    if total == 0:
+        raise FeatpipeError(f"{spec.display}: the design table {layout.table} has no rows; check the input table '{spec.input}'")
+    share = incomplete / total
+    if share > spec.max_dropped:
+        detail = ", ".join(f"{reason}: {count}" for reason, count in dropped.items())
+        raise FeatpipeError(
+            f"{spec.display}: {incomplete} of {total} rows ({share:.1%}) have a NULL target, offset, weight or term "
+            f"({detail}), more than max_dropped {spec.max_dropped:g}; fix the data or the terms (guard divisions, "
+            "COALESCE missing inputs), or raise max_dropped in the spec if dropping them is right"
+        )
+    return {"input": total, "complete": total - incomplete, "train": train, "holdout": holdout, "dropped": dropped}
+
+
+def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -> FittedModel:
+    """Fit one model whose design table is current in `engine`."""
+    spec, layout = model.spec, model.layout
+    rows = account_rows(engine, model)
+    glm = fit_glm(engine, layout, spec.family, spec.penalty)
+    coefficients = dict(zip(glm.names, glm.coef))
+    profiles = training_profiles(
+        engine, layout,
+        {**{name: column(name) for name in layout.terms}, "linear_predictor": linear_predictor(layout, coefficients)},
+    )
+    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold)
+    fitted_terms = [_fitted_term(glm, 0, None, spec, model, None)]
+    fitted_terms += [
+        _fitted_term(glm, index + 1, term, spec, model, profiles[term.name]) for index, term in enumerate(model.terms)
+    ]
+    return FittedModel(
+        model=spec.name,
+        fingerprint=model.fingerprint,
+        input=spec.input,
+        key=layout.key,
+        target=spec.target,
+        family=spec.family,
+        link=LINKS[spec.family],
+        offset=model.offset_sql,
+        weights=spec.weights,
+        holdout={"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
+        threshold=spec.threshold,
+        penalty={"l2": spec.penalty.l2, "l1": spec.penalty.l1},
+        rows=rows,
+        fit={
+            "converged": bool(glm.converged),
+            "iterations": int(glm.iterations),
+            "deviance": float(glm.deviance),
+            "null_deviance": float(glm.null_deviance),
+            "log_likelihood": float(glm.llf),
+            "aic": float(glm.aic),
+            "bic": float(glm.bic),
+            "dispersion": float(glm.dispersion),
+            "statistic": glm.statistic_name,
+            "penalized": spec.penalty.active,
+        },
+        terms=tuple(fitted_terms),
+        linear_predictor=profiles["linear_predictor"],
+        metrics=metrics,
+        warnings=tuple(glm.warnings),
+    )
+
+
+def _optional(values, index: int) -> float | None:
+    if values is None or values[index] is None:
+        return None
+    return float(values[index])
+
+
+def _fitted_term(glm, index: int, term: Term | None, spec, model: CompiledModel, profile) -> FittedTerm:
+    estimate = float(glm.coef[index])
+    low, high = _optional(glm.ci_low, index), _optional(glm.ci_high, index)
+    common = dict(
+        estimate=estimate,
+        std_error=_optional(glm.stderr, index),
+        statistic=_optional(glm.statistic, index),
+        p_value=_optional(glm.p_value, index),
+        ci_low=low,
+        ci_high=high,
+    )
+    if term is None:
+        return FittedTerm(name=INTERCEPT, **common)
+    step = spec.step.get(term.name, 1.0)
+    others = [t for t in model.terms if t.name != term.name]
+    related = sorted(
+        {t.name for t in others if set(t.columns) & set(term.columns)}
+        | {name for name in term.built_from if name in spec.terms}
+        | {t.name for t in others if term.name in t.built_from}
+    )
+    vif = _optional(glm.vif, index)
+    notes = term_notes(
+        name=term.name, family=spec.family, target=spec.target, estimate=estimate, ci_low=low, ci_high=high,
+        p_value=common["p_value"], step=step, expect=spec.expect.get(term.name), vif=vif, related=related,
+        human_note=spec.notes.get(term.name), penalized=spec.penalty.active,
+    )
+    return FittedTerm(
+        name=term.name, **common, fingerprint=term.fingerprint, sql=term.sql, kind=term.kind, doc=term.doc,
+        columns=term.columns, built_from=term.built_from,
+        effect=effect(spec.family, estimate, low, high, step), vif=vif, profile=profile, notes=notes,
+    )
