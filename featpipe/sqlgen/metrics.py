@@ -1,0 +1,190 @@
+"""The linear predictor, the prediction and the holdout-metric queries over a design table.
+
+Every metric is an aggregate over the held-out rows, so only a few numbers leave the engine. Counts
+come back as integer SUMs (exact), real-valued metrics as SUMs of DOUBLEs; the caller divides. The
+rank-based AUC needs two window functions, and the calibration table one NTILE; their orders end
+with the key, so ties between predictions are broken the same way on every run and engine.
+
+Portability (SQL-NOTES): literals are exact DOUBLE casts, the linear predictor is clamped with CASE
+before EXP (so EXP stays finite on PostgreSQL too), LN sees only arguments of at least 1 or ones
+guarded by CASE WHEN y > 0, and the one division is guarded with NULLIF.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+from sqlglot import exp
+
+from ..fitted import INTERCEPT
+from .common import alias, column, number
+from .layout import DesignLayout
+
+FAMILIES = ("binomial", "poisson", "gaussian")
+# EXP(700) is about 1e304 and EXP(-700) about 1e-304: finite and non-zero on every engine.
+ETA_LIMIT = 700.0
+DECILES = 10
+
+# Column names inside the generated queries; term names start with a letter, so these never clash.
+KEY, OBSERVED, ETA, PREDICTED = "_key", "_observed", "_eta", "_predicted"
+TWICE_RANK, DECILE = "_twice_rank", "_decile"
+
+
+def linear_predictor(layout: DesignLayout, coefficients: Mapping[str, float]) -> exp.Expression:
+    """intercept + sum of coefficient * term (+ the offset column), over the design table's columns.
+
+    `coefficients` holds INTERCEPT ("(intercept)") and one entry per term of the layout; each becomes
+    an exact DOUBLE literal.
+
+    >>> layout = DesignLayout("design_m", "id", "y", ("age",))
+    >>> linear_predictor(layout, {"(intercept)": -1.5, "age": 0.25}).sql(identify=True)
+    'CAST(-1.5 AS DOUBLE) + CAST(0.25 AS DOUBLE) * "age"'
+    """
+    unknown = sorted(set(coefficients) - {INTERCEPT, *layout.terms})
+    missing = [name for name in (INTERCEPT, *layout.terms) if name not in coefficients]
+    if unknown or missing:
+        raise ValueError(f"coefficients do not match the terms of {layout.table}: missing {missing}, unknown {unknown}")
+    total: exp.Expression = number(coefficients[INTERCEPT])
+    for term in layout.terms:
+        total = exp.Add(this=total, expression=exp.Mul(this=number(coefficients[term]), expression=column(term)))
+    if layout.offset:
+        total = exp.Add(this=total, expression=column(layout.offset))
+    return total
+
+
+def prediction(family: str, eta: exp.Expression) -> exp.Expression:
+    """The inverse link of any linear-predictor tree `eta`: the probability, expected count or mean.
+
+    binomial 1 / (1 + EXP(-eta)) and poisson EXP(eta), with eta clamped to [-700, 700] first;
+    gaussian eta itself. A NULL eta gives NULL.
+    """
+    if family == "gaussian":
+        return eta.copy()
+    if family == "poisson":
+        return exp.Exp(this=clamped(eta))
+    if family == "binomial":
+        denominator = exp.Add(this=number(1.0), expression=exp.Exp(this=exp.Neg(this=exp.Paren(this=clamped(eta)))))
+        return exp.Div(this=number(1.0), expression=exp.Paren(this=denominator))
+    raise ValueError(f"unknown family '{family}'; use one of {', '.join(FAMILIES)}")
+
+
+def clamped(eta: exp.Expression) -> exp.Case:
+    """`eta` limited to [-ETA_LIMIT, ETA_LIMIT] by CASE (GREATEST/LEAST treat NULL differently per engine)."""
+    value = eta.copy() if isinstance(eta, (exp.Column, exp.Literal, exp.Paren, exp.Func)) else exp.Paren(this=eta.copy())
+    return (
+        exp.Case()
+        .when(exp.GT(this=value.copy(), expression=number(ETA_LIMIT)), number(ETA_LIMIT))
+        .when(exp.LT(this=value.copy(), expression=number(-ETA_LIMIT)), number(-ETA_LIMIT))
+        .else_(value.copy())
+    )
+
+
+def scored_holdout(layout: DesignLayout, family: str, coefficients: Mapping[str, float]) -> exp.Select:
+    """Key, observed target, linear predictor and prediction of every held-out row (a subquery)."""
+    rows = (
+        exp.select(
+            alias(column(layout.key), KEY),
+            alias(column(layout.target), OBSERVED),
+            alias(linear_predictor(layout, coefficients), ETA),
+        )
+        .from_(exp.to_table(layout.table))
+        .where(layout.holdout_rows())
+    )
+    return _over(rows, "_linear", column(KEY), column(OBSERVED), column(ETA), alias(prediction(family, column(ETA)), PREDICTED))
+
+
+def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, float], threshold: float) -> exp.Select:
+    """One row: rows, events, predicted events, true positives, twice the rank sum of the events,
+    log-loss sum and squared-error (Brier) sum.
+
+    A row is predicted an event when its probability is at least `threshold`. Ranks are over the
+    predicted probability with ties given their average rank; twice that average, 2 * RANK() +
+    (rows tied) - 1, is an integer, so the Mann-Whitney sum stays exact. The log loss of a row is
+    max(eta, 0) - y * eta + LN(1 + EXP(-|eta|)), which equals -(y ln p + (1 - y) ln(1 - p)) but never
+    takes the logarithm of 0 when p rounds to 0 or 1.
+    """
+    y, eta, p = column(OBSERVED), column(ETA), column(PREDICTED)
+    by_prediction = exp.Order(expressions=[exp.Ordered(this=column(PREDICTED))])
+    rank = exp.Window(this=exp.Rank(), order=by_prediction)
+    tied = exp.Window(this=exp.Count(this=exp.Star()), partition_by=[column(PREDICTED)])
+    twice_rank = exp.Sub(this=exp.Add(this=exp.Mul(this=exp.Literal.number(2), expression=rank), expression=tied),
+                         expression=exp.Literal.number(1))
+    ranked = _over(scored_holdout(layout, "binomial", coefficients), "_scored",
+                   column(OBSERVED), column(ETA), column(PREDICTED), alias(twice_rank, TWICE_RANK))
+
+    event = exp.EQ(this=y.copy(), expression=number(1.0))
+    predicted_event = exp.GTE(this=p.copy(), expression=number(threshold))
+    positive_part = exp.Case().when(exp.GT(this=eta.copy(), expression=number(0.0)), eta.copy()).else_(number(0.0))
+    softplus_rest = exp.Ln(this=exp.Add(this=number(1.0), expression=exp.Exp(this=exp.Neg(this=exp.Abs(this=clamped(eta))))))
+    log_loss = exp.Add(this=exp.Sub(this=positive_part, expression=exp.Mul(this=y.copy(), expression=eta.copy())),
+                       expression=softplus_rest)
+    error = exp.Paren(this=exp.Sub(this=p.copy(), expression=y.copy()))
+    return exp.select(
+        alias(exp.Count(this=exp.Star()), "rows"),
+        alias(_count_if(event), "events"),
+        alias(_count_if(predicted_event), "predicted_events"),
+        alias(_count_if(exp.and_(predicted_event.copy(), event.copy())), "true_positives"),
+        alias(exp.Sum(this=exp.Case().when(event.copy(), column(TWICE_RANK)).else_(exp.Literal.number(0))), "twice_rank_sum"),
+        alias(exp.Sum(this=log_loss), "log_loss_sum"),
+        alias(exp.Sum(this=exp.Mul(this=error, expression=error.copy())), "squared_error_sum"),
+    ).from_(ranked.subquery("_ranked"))
+
+
+def regression_summary_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float]) -> exp.Select:
+    """One row: rows, sums of observed and predicted, of |y - mu|, of (y - mu)^2 and of the unit deviance.
+
+    Unit deviance: poisson 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0; gaussian (y - mu)^2.
+    """
+    if family not in ("poisson", "gaussian"):
+        raise ValueError(f"regression metrics are for poisson or gaussian models, not '{family}'")
+    y, mu = column(OBSERVED), column(PREDICTED)
+    residual = exp.Paren(this=exp.Sub(this=y.copy(), expression=mu.copy()))
+    squared = exp.Mul(this=residual, expression=residual.copy())
+    if family == "poisson":
+        ratio = exp.Div(this=y.copy(), expression=exp.Nullif(this=mu.copy(), expression=number(0.0)))
+        y_log_ratio = (
+            exp.Case()
+            .when(exp.GT(this=y.copy(), expression=number(0.0)), exp.Mul(this=y.copy(), expression=exp.Ln(this=ratio)))
+            .else_(number(0.0))
+        )
+        deviance = exp.Mul(this=number(2.0), expression=exp.Paren(this=exp.Sub(this=y_log_ratio, expression=residual.copy())))
+    else:
+        deviance = squared.copy()
+    return exp.select(
+        alias(exp.Count(this=exp.Star()), "rows"),
+        alias(exp.Sum(this=y.copy()), "observed_sum"),
+        alias(exp.Sum(this=mu.copy()), "predicted_sum"),
+        alias(exp.Sum(this=exp.Abs(this=residual.copy())), "absolute_error_sum"),
+        alias(exp.Sum(this=squared), "squared_error_sum"),
+        alias(exp.Sum(this=deviance), "deviance_sum"),
+    ).from_(scored_holdout(layout, family, coefficients).subquery("_scored"))
+
+
+def calibration_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float]) -> exp.Select:
+    """Per decile of the prediction (NTILE(10) ordered by prediction, then key): rows, sum predicted, sum observed.
+
+    Ordered by decile; a holdout of fewer than ten rows has fewer deciles.
+    """
+    order = exp.Order(expressions=[exp.Ordered(this=column(PREDICTED)), exp.Ordered(this=column(KEY))])
+    decile = exp.Window(this=exp.Ntile(this=exp.Literal.number(DECILES)), order=order)
+    binned = _over(scored_holdout(layout, family, coefficients), "_scored",
+                   column(OBSERVED), column(PREDICTED), alias(decile, DECILE))
+    return (
+        exp.select(
+            alias(column(DECILE), "decile"),
+            alias(exp.Count(this=exp.Star()), "rows"),
+            alias(exp.Sum(this=column(PREDICTED)), "predicted_sum"),
+            alias(exp.Sum(this=column(OBSERVED)), "observed_sum"),
+        )
+        .from_(binned.subquery("_binned"))
+        .group_by(column(DECILE))
+        .order_by(column(DECILE))
+    )
+
+
+def _over(inner: exp.Select, name: str, *projections: exp.Expression) -> exp.Select:
+    return exp.select(*projections).from_(inner.subquery(name))
+
+
+def _count_if(condition: exp.Expression) -> exp.Sum:
+    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))

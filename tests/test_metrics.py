@@ -1,0 +1,250 @@
+"""Holdout metrics computed in SQL, checked against scikit-learn (the reference library) on DuckDB and SQLite.
+
+Each test writes an invented design table to a Parquet file, loads it into a real engine through the
+engine's own `load_file`, and compares every metric the engine computes with scikit-learn's value on
+the same held-out rows, to 1e-12.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from sklearn.metrics import (
+    accuracy_score,
+    brier_score_loss,
+    log_loss,
+    mean_absolute_error,
+    mean_poisson_deviance,
+    mean_squared_error,
+    precision_score,
+    recall_score,
+    roc_auc_score,
+)
+from sqlglot import exp
+
+from featpipe.engines.duckdb import DuckDBEngine
+from featpipe.engines.sqlite import SQLiteEngine
+from featpipe.fitted import INTERCEPT
+from featpipe.metrics import holdout_metrics
+from featpipe.sqlgen.common import alias, number
+from featpipe.sqlgen.layout import DesignLayout
+from featpipe.sqlgen.metrics import linear_predictor, prediction
+
+TOLERANCE = 1e-12
+ENGINES = {"duckdb": DuckDBEngine, "sqlite": SQLiteEngine}
+ROWS = 600
+
+BINOMIAL = DesignLayout("design_churn", "account_id", "_target", ("tenure_band", "support_calls"))
+BINOMIAL_COEFFICIENTS = {INTERCEPT: -0.75, "tenure_band": -0.375, "support_calls": 0.5}
+POISSON = DesignLayout("design_claims", "vehicle_id", "_target", ("engine_litres", "urban"), offset="_offset")
+POISSON_COEFFICIENTS = {INTERCEPT: -2.1, "engine_litres": 0.31, "urban": 0.45}
+GAUSSIAN = DesignLayout("design_spend", "order_id", "_target", ("items", "discount"))
+GAUSSIAN_COEFFICIENTS = {INTERCEPT: 12.5, "items": 3.25, "discount": -40.0}
+
+TABLES = [
+    (BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11),
+    (POISSON, "poisson", POISSON_COEFFICIENTS, 12),
+    (GAUSSIAN, "gaussian", GAUSSIAN_COEFFICIENTS, 13),
+]
+
+
+def invented_table(layout: DesignLayout, family: str, coefficients: dict, seed: int, holdout_share: float = 0.4) -> pa.Table:
+    """A design table of invented rows; discrete terms so that many predictions tie, and some NULL terms."""
+    rng = np.random.default_rng(seed)
+    first, second = layout.terms
+    data = {layout.key: np.arange(1, ROWS + 1, dtype=np.int64)}
+    if family == "binomial":
+        data[first] = rng.integers(0, 5, ROWS).astype(float)
+        data[second] = rng.integers(0, 4, ROWS).astype(float)
+    elif family == "poisson":
+        data[first] = rng.choice([1.2, 1.6, 2.0, 3.0], ROWS)
+        data[second] = rng.integers(0, 2, ROWS).astype(float)
+        data[layout.offset] = np.log(rng.uniform(0.25, 2.0, ROWS))
+    else:
+        data[first] = rng.integers(1, 9, ROWS).astype(float)
+        data[second] = rng.choice([0.0, 0.1, 0.25], ROWS)
+    eta = reference_eta(layout, coefficients, data)
+    if family == "binomial":
+        target = (rng.uniform(size=ROWS) < 1 / (1 + np.exp(-eta))).astype(float)
+    elif family == "poisson":
+        target = rng.poisson(np.exp(eta)).astype(float)
+    else:
+        target = eta + rng.normal(0, 4.0, ROWS)
+    columns = {**data, layout.target: target, layout.holdout: rng.uniform(size=ROWS) < holdout_share}
+    missing = rng.uniform(size=ROWS) < 0.05  # NULL terms: such rows are not complete and take no part
+    return pa.table({
+        name: pa.array(values, mask=missing if name == second else None) for name, values in columns.items()
+    })
+
+
+def reference_eta(layout: DesignLayout, coefficients: dict, data) -> np.ndarray:
+    """The linear predictor in numpy, in the same order of operations as the SQL."""
+    eta = np.full(len(data[layout.key]), coefficients[INTERCEPT])
+    for term in layout.terms:
+        eta = eta + coefficients[term] * np.asarray(data[term], dtype=float)
+    if layout.offset:
+        eta = eta + np.asarray(data[layout.offset], dtype=float)
+    return eta
+
+
+def held_out(table: pa.Table, layout: DesignLayout) -> dict[str, np.ndarray]:
+    """The held-out complete rows of `table`, as numpy arrays (the rows the metrics must use)."""
+    frame = table.to_pandas()
+    rows = frame[frame[layout.holdout] & frame[list(layout.model_columns)].notna().all(axis=1)]
+    return {name: rows[name].to_numpy() for name in rows.columns}
+
+
+@pytest.fixture(scope="module", params=sorted(ENGINES))
+def engine(request, tmp_path_factory):
+    """One engine per kind, holding the three invented design tables (and one without a holdout)."""
+    folder: Path = tmp_path_factory.mktemp(request.param)
+    engine = ENGINES[request.param](None)
+    for layout, family, coefficients, seed in TABLES:
+        path = folder / f"{layout.table}.parquet"
+        pq.write_table(invented_table(layout, family, coefficients, seed), path)
+        engine.load_file(layout.table, path)
+    no_holdout = folder / "design_no_holdout.parquet"
+    pq.write_table(invented_table(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 5, holdout_share=0.0), no_holdout)
+    engine.load_file("design_no_holdout", no_holdout)
+    yield engine
+    engine.close()
+
+
+def reference_rows(layout, family, coefficients, seed):
+    rows = held_out(invented_table(layout, family, coefficients, seed), layout)
+    eta = reference_eta(layout, coefficients, rows)
+    predicted = 1 / (1 + np.exp(-eta)) if family == "binomial" else np.exp(eta) if family == "poisson" else eta
+    return rows, predicted
+
+
+def reference_calibration(rows: dict, layout: DesignLayout, predicted: np.ndarray) -> list[tuple]:
+    """Deciles as SQL's NTILE(10) forms them (the first n mod 10 groups one row larger, which is what
+    np.array_split does), after sorting by prediction, then key."""
+    order = np.lexsort((rows[layout.key], predicted))
+    return [
+        (decile, len(group), predicted[group].mean(), rows[layout.target][group].mean())
+        for decile, group in enumerate(np.array_split(order, 10), start=1)
+    ]
+
+
+def assert_calibration(got: list[dict], expected: list[tuple]) -> None:
+    assert [(entry["decile"], entry["rows"]) for entry in got] == [(d, n) for d, n, _, _ in expected]
+    for entry, (_, _, mean_predicted, mean_observed) in zip(got, expected):
+        assert entry["mean_predicted"] == pytest.approx(mean_predicted, rel=TOLERANCE, abs=TOLERANCE)
+        assert entry["mean_observed"] == pytest.approx(mean_observed, rel=TOLERANCE, abs=TOLERANCE)
+
+
+def test_binomial_metrics_match_scikit_learn(engine):
+    threshold = 0.3
+    metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, threshold)
+    rows, p = reference_rows(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11)
+    y = rows[BINOMIAL.target]
+    predicted_class = (p >= threshold).astype(float)
+    assert len(np.unique(p)) < len(p) / 5  # many tied probabilities: the AUC's tie handling is exercised
+
+    assert list(metrics) == ["rows", "events", "accuracy", "baseline_accuracy", "precision", "recall", "auc",
+                             "log_loss", "brier", "calibration"]
+    assert metrics["rows"] == len(y)
+    assert metrics["events"] == int(y.sum())
+    expected = {  # scikit-learn's functions on the same held-out rows
+        "accuracy": accuracy_score(y, predicted_class),
+        "baseline_accuracy": accuracy_score(y, np.full_like(y, float(y.mean() >= 0.5))),
+        "precision": precision_score(y, predicted_class),
+        "recall": recall_score(y, predicted_class),
+        "auc": roc_auc_score(y, p),
+        "log_loss": log_loss(y, p),
+        "brier": brier_score_loss(y, p),
+    }
+    for name, value in expected.items():
+        assert metrics[name] == pytest.approx(value, rel=TOLERANCE, abs=TOLERANCE), name
+    assert_calibration(metrics["calibration"], reference_calibration(rows, BINOMIAL, p))
+    assert all(isinstance(metrics[name], int) for name in ("rows", "events"))
+    assert all(type(metrics[name]) is float for name in expected)
+
+
+@pytest.mark.parametrize("layout, family, coefficients, seed", TABLES[1:], ids=["poisson", "gaussian"])
+def test_count_and_measurement_metrics_match_scikit_learn(engine, layout, family, coefficients, seed):
+    metrics = holdout_metrics(engine, layout, family, coefficients, 0.5)
+    rows, mu = reference_rows(layout, family, coefficients, seed)
+    y = rows[layout.target]
+    assert list(metrics) == ["rows", "deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted",
+                             "calibration"]
+    assert metrics["rows"] == len(y)
+    # Deviance summed over rows = scikit-learn's mean deviance times n (gaussian: the squared error).
+    mean_deviance = mean_poisson_deviance(y, mu) if family == "poisson" else mean_squared_error(y, mu)
+    expected = {
+        "deviance": mean_deviance * len(y),
+        "mean_absolute_error": mean_absolute_error(y, mu),
+        "rmse": math.sqrt(mean_squared_error(y, mu)),
+        "mean_observed": y.mean(),
+        "mean_predicted": mu.mean(),
+    }
+    for name, value in expected.items():
+        assert metrics[name] == pytest.approx(value, rel=TOLERANCE, abs=TOLERANCE), name
+    assert_calibration(metrics["calibration"], reference_calibration(rows, layout, mu))
+
+
+def test_metrics_are_identical_when_computed_again(engine):
+    first = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
+    assert holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5) == first
+
+
+def test_undefined_ratios_are_none(engine):
+    # A threshold no probability reaches: no predicted events, so precision has no denominator.
+    metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.999)
+    rows, _ = reference_rows(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11)
+    assert metrics["precision"] is None
+    assert metrics["recall"] == 0.0
+    assert metrics["accuracy"] == pytest.approx(1 - rows[BINOMIAL.target].mean(), rel=TOLERANCE)
+
+
+def test_a_threshold_equal_to_the_probability_predicts_an_event(engine):
+    # All coefficients 0: every probability is exactly 1 / (1 + EXP(0)) = 0.5, all tied.
+    flat = {name: 0.0 for name in BINOMIAL_COEFFICIENTS}
+    metrics = holdout_metrics(engine, BINOMIAL, "binomial", flat, 0.5)
+    y = held_out(invented_table(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11), BINOMIAL)[BINOMIAL.target]
+    assert metrics["recall"] == 1.0
+    assert metrics["precision"] == pytest.approx(y.mean(), rel=TOLERANCE)
+    assert metrics["auc"] == roc_auc_score(y, np.full_like(y, 0.5)) == 0.5  # scikit-learn: all tied
+    assert metrics["log_loss"] == pytest.approx(math.log(2), rel=TOLERANCE)
+    assert metrics["brier"] == 0.25
+
+
+def test_no_holdout_rows_give_only_the_row_count(engine):
+    layout = DesignLayout("design_no_holdout", BINOMIAL.key, BINOMIAL.target, BINOMIAL.terms)
+    assert holdout_metrics(engine, layout, "binomial", BINOMIAL_COEFFICIENTS, 0.5) == {"rows": 0}
+
+
+def test_linear_predictor_writes_exact_literals_and_the_offset():
+    coefficients = {INTERCEPT: 0.1, "engine_litres": -1e-300, "urban": 2.0 / 3.0}
+    sql = linear_predictor(POISSON, coefficients).sql(dialect="duckdb", identify=True)
+    assert sql == (
+        'CAST(0.1 AS DOUBLE) + CAST(-1e-300 AS DOUBLE) * "engine_litres" '
+        '+ CAST(0.6666666666666666 AS DOUBLE) * "urban" + "_offset"'
+    )
+    with pytest.raises(ValueError, match="missing \\['urban'\\]"):
+        linear_predictor(POISSON, {INTERCEPT: 0.1, "engine_litres": 1.0})
+
+
+@pytest.mark.parametrize("kind", sorted(ENGINES))
+def test_prediction_is_finite_for_extreme_linear_predictors(kind):
+    """EXP is clamped at +-700 (EXP(1000) is inf on DuckDB and an error on PostgreSQL, SQL-NOTES)."""
+    engine = ENGINES[kind](None)
+    eta = {"high": number(1000.0), "low": number(-1000.0), "mid": number(0.5)}
+    query = exp.select(*(
+        alias(prediction(family, value), f"{family}_{name}")
+        for family in ("binomial", "poisson", "gaussian") for name, value in eta.items()
+    ))
+    (row,) = engine.fetch(query)
+    engine.close()
+    # Expected values from Python's math library.
+    assert row == pytest.approx((
+        1.0, 1 / (1 + math.exp(700)), 1 / (1 + math.exp(-0.5)),
+        math.exp(700), math.exp(-700), math.exp(0.5),
+        1000.0, -1000.0, 0.5,
+    ), rel=TOLERANCE)
