@@ -148,7 +148,7 @@ def sql(
 def main() -> None:
     """Console entry point: map user errors to exit 1 and bugs to exit 2, never a bare traceback."""
     try:
-        app(standalone_mode=False)
+        status = app(standalone_mode=False)  # click returns the code of a typer.Exit instead of raising
     except FeatpipeError as error:
         err.print(f"error: {error}", markup=False)
         sys.exit(1)
@@ -169,3 +169,4 @@ def main() -> None:
         else:
             err.print("set FEATPIPE_DEBUG=1 to see the traceback, and please report it")
         sys.exit(2)
+    sys.exit(status if isinstance(status, int) else 0)

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-# pytest_plugins = ["fixtures_engines"]  (enabled when the engine fixtures land)
+pytest_plugins = ["fixtures_engines"]
 
 REPO = Path(__file__).resolve().parent.parent
 DEMOS = REPO / "projects"
