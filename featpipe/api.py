@@ -17,11 +17,13 @@ from pathlib import Path
 from sqlglot import exp
 
 from .compiler import CompiledModel, CompiledProject, Term, compile_project
+from .builds import input_signature, read_builds, record_builds
 from .contract import check_contract
 from .engines import open_engine
 from .engines.base import Engine
 from .errors import Diagnostic, FeatpipeError
-from .fitted import stale_fits
+from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
+from .fitting import fit_model
 from .project import Project, load_project
 from .sqlgen.common import render
 from .sqlgen.design import design_query, terms_query
@@ -95,31 +97,100 @@ def connect(project: Project):
         engine.close()
 
 
-def prepare_inputs(engine: Engine, project: Project, inputs: set[str], progress: Progress | None = None) -> None:
-    """Load each input's `load:` file (if any) and check the engine's table against the contract."""
+def prepare_inputs(
+    engine: Engine, project: Project, inputs: set[str], builds: dict[str, str], progress: Progress | None = None
+) -> None:
+    """Load each input's `load:` file when it changed, and check the engine's table against the contract."""
     for name in sorted(inputs):
         source = project.inputs[name]
-        if source.load is not None:
-            if progress:
-                progress(f"loading {source.load.relative_to(project.root)} into {engine.name} table {name}")
+        signature = input_signature(source)
+        if source.load is not None and builds.get(name) != signature:
+            _say(progress, f"loading {source.load.relative_to(project.root)} into {engine.name} table {name}")
             engine.load_file(name, source.load)
         check_contract(source, name, engine.describe(name), engine.name)
+        builds[name] = signature
+
+
+def design_signature(project: Project, model: CompiledModel) -> str:
+    return f"{model.fingerprint}:{input_signature(project.inputs[model.spec.input])}"
+
+
+def build_designs(
+    engine: Engine, project: Project, models: list[CompiledModel], *, only_stale: bool = False,
+    progress: Progress | None = None,
+) -> list[BuiltTable]:
+    """Build (or, with only_stale, rebuild when changed) each model's design table; a failure keeps the old one."""
+    builds = read_builds(engine)
+    prepare_inputs(engine, project, {model.spec.input for model in models}, builds, progress)
+    built = []
+    for model in models:
+        signature = design_signature(project, model)
+        if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
+            continue
+        _say(progress, f"building {model.layout.table}")
+        engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
+        builds[model.layout.table] = signature
+        rows = engine.fetch(_count(model.layout.table))[0][0]
+        built.append(BuiltTable(model.name, model.layout.table, rows))
+    record_builds(engine, builds)
+    return built
 
 
 def materialize(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[BuiltTable]:
     """Build each model's design table in the engine; a failure keeps the previous table."""
+    chosen = select_models(check(project), models)
+    with connect(project) as engine:
+        return build_designs(engine, project, chosen, progress=progress)
+
+
+@dataclass(frozen=True)
+class FitOutcome:
+    model: str
+    path: Path
+    fitted: FittedModel
+    changed: bool  # the fitted file's bytes changed
+
+
+def fit_models(engine: Engine, project: Project, compiled: CompiledProject, models: list[CompiledModel],
+               progress: Progress | None = None) -> list[FitOutcome]:
+    """Bring design tables up to date, fit each model and write its fitted file (atomically)."""
+    build_designs(engine, project, models, only_stale=True, progress=progress)
+    outcomes = []
+    for model in models:
+        _say(progress, f"fitting {model.name} ({model.spec.family}, {len(model.terms)} terms)")
+        fitted = fit_model(engine, compiled, model)
+        path = project.fitted_path(model.name)
+        before = path.read_bytes() if path.is_file() else None
+        write_fitted(path, fitted)
+        outcomes.append(FitOutcome(model.name, path, fitted, before != path.read_bytes()))
+    return outcomes
+
+
+def fit(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[FitOutcome]:
+    """Fit models in the engine and write fitted/MODEL.yaml; a failed fit leaves the old file in place."""
     compiled = check(project)
     chosen = select_models(compiled, models)
-    built = []
     with connect(project) as engine:
-        prepare_inputs(engine, project, {model.spec.input for model in chosen}, progress)
-        for model in chosen:
-            if progress:
-                progress(f"building {model.layout.table}")
-            engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
-            rows = engine.fetch(_count(model.layout.table))[0][0]
-            built.append(BuiltTable(model.name, model.layout.table, rows))
-    return built
+        return fit_models(engine, project, compiled, chosen, progress)
+
+
+def refresh(project: Project, progress: Progress | None = None) -> list[FitOutcome]:
+    """Check, then refit every model whose fitted file is missing or stale or whose data file changed."""
+    compiled = check(project)
+    with connect(project) as engine:
+        builds = read_builds(engine)
+        stale = []
+        for model in compiled.models.values():
+            path = project.fitted_path(model.name)
+            current = builds.get(model.layout.table) == design_signature(project, model)
+            if not path.is_file() or staleness(read_fitted(path), model) or not current:
+                stale.append(model)
+        return fit_models(engine, project, compiled, stale, progress) if stale else []
+
+
+def _say(progress: Progress | None, message: str) -> None:
+    if progress:
+        progress(message)
 
 
 def _count(table: str) -> exp.Select:

@@ -9,15 +9,19 @@ import json
 import os
 import sys
 import traceback
+from dataclasses import asdict
 from enum import Enum
 from pathlib import Path
 from typing import Annotated, Optional
 
 import typer
 from rich.console import Console
+from rich.syntax import Syntax
+from rich.table import Table
 
 from . import api
 from .errors import Diagnostic, FeatpipeError
+from .fitted import FittedModel, read_fitted
 from .project import load_project
 
 app = typer.Typer(
@@ -26,7 +30,7 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_enable=False,
 )
-out = Console(highlight=False, soft_wrap=True)
+out = Console(highlight=False, soft_wrap=True, width=None if sys.stdout.isatty() else 160)
 err = Console(stderr=True, highlight=False, soft_wrap=True)
 
 ProjectOption = Annotated[
@@ -143,6 +147,106 @@ def sql(
 ) -> None:
     """Print the generated SQL of a model, rendered for a dialect."""
     print(api.render_sql(load_project(project), model, part.value, dialect, table), end="")
+
+
+def _number(value, digits: int = 4) -> str:
+    return "" if value is None else f"{value:.{digits}g}"
+
+
+def coefficient_table(fitted: FittedModel) -> Table:
+    """The coefficient table practitioners compare with R's glm summary, plus effects per step."""
+    statistic = fitted.fit.get("statistic", "z")
+    table = Table(title=f"{fitted.model}: {fitted.family} ({fitted.link} link), {fitted.rows['train']} training rows")
+    for heading in ("term", "estimate", "std error", statistic, "p", "95% interval", "effect per step", "VIF"):
+        table.add_column(heading, justify="left" if heading == "term" else "right")
+    for term in fitted.terms:
+        interval = "" if term.ci_low is None else f"{_number(term.ci_low)} to {_number(term.ci_high)}"
+        effect = ""
+        if term.effect is not None:
+            effect = f"{term.effect.kind} {_number(term.effect.value, 3)} per {term.effect.step:g}"
+        table.add_row(term.name, _number(term.estimate), _number(term.std_error), _number(term.statistic, 3),
+                      _number(term.p_value, 2), interval, effect, _number(term.vif, 3))
+    return table
+
+
+def _print_fit_summary(fitted: FittedModel) -> None:
+    out.print(coefficient_table(fitted))
+    fit = fitted.fit
+    out.print(f"deviance {fit['deviance']:.4f} (null {fit['null_deviance']:.4f}), AIC {fit['aic']:.2f}, "
+              f"BIC {fit['bic']:.2f}, {'converged' if fit['converged'] else 'NOT converged'} in {fit['iterations']} iterations")
+    holdout = fitted.metrics
+    if holdout.get("rows"):
+        shown = {k: v for k, v in holdout.items() if isinstance(v, (int, float)) and not isinstance(v, bool)}
+        out.print("holdout: " + ", ".join(f"{k} {_number(v)}" for k, v in shown.items()))
+    for warning in fitted.warnings:
+        out.print(f"[yellow]warning:[/yellow] {warning}")
+
+
+ModelsArgument = Annotated[Optional[list[str]], typer.Argument(help="Models to fit (default: all).")]
+
+
+@app.command()
+def fit(models: ModelsArgument = None, project: ProjectOption = None, json_output: JsonOption = False) -> None:
+    """Fit models in the engine, write fitted/MODEL.yaml and print the coefficient table."""
+    outcomes = api.fit(load_project(project), models, progress=None if json_output else _progress)
+    if json_output:
+        _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed, "fitted": asdict(o.fitted)} for o in outcomes])
+        return
+    for outcome in outcomes:
+        _print_fit_summary(outcome.fitted)
+        out.print(f"wrote {outcome.path}" + ("" if outcome.changed else " (unchanged)"))
+
+
+@app.command()
+def explain(
+    name: Annotated[str, typer.Argument(help="A term or a model.")],
+    project: ProjectOption = None,
+    json_output: JsonOption = False,
+) -> None:
+    """Show a term's definition with its coefficients and notes in every model, or a whole model."""
+    from .explain import explain as describe
+
+    loaded = load_project(project)
+    found = describe(api.check(loaded), name)
+    if json_output:
+        _print_json(found)
+        return
+    if found["kind"] == "model":
+        _print_fit_summary(read_fitted(loaded.fitted_path(name)))
+        for reason in found["stale"]:
+            out.print(f"[red]stale:[/red] {reason}")
+        return
+    out.print(f"[bold]{name}[/bold]  ({found['where']}, input {found['input']}, fingerprint {found['fingerprint']})")
+    if found["doc"]:
+        out.print(found["doc"])
+    out.print(Syntax(found["sql"], "sql", word_wrap=True))
+    if found["built_from"]:
+        out.print(f"built from: {', '.join(found['built_from'])}")
+    for use in found["models"]:
+        term = use["fitted"]
+        if term is None:
+            out.print(f"model {use['model']}: not fitted yet")
+            continue
+        interval = "" if term["ci_low"] is None else f" (95% interval {term['ci_low']:.4g} to {term['ci_high']:.4g})"
+        out.print(f"model {use['model']}: estimate {term['estimate']:.4g}{interval}, p {_number(term['p_value'], 2)}")
+        for note in term["notes"]:
+            out.print(f"  - {note}")
+        for reason in use["stale"]:
+            out.print(f"  [red]stale:[/red] {reason}")
+
+
+@app.command()
+def refresh(project: ProjectOption = None, json_output: JsonOption = False) -> None:
+    """Check, then bring every stale design table and fit up to date."""
+    outcomes = api.refresh(load_project(project), progress=None if json_output else _progress)
+    if json_output:
+        _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed} for o in outcomes])
+        return
+    if not outcomes:
+        out.print("everything is up to date")
+    for outcome in outcomes:
+        _print_fit_summary(outcome.fitted)
+        out.print(f"wrote {outcome.path}" + ("" if outcome.changed else " (unchanged)"))
 
 
 def main() -> None:
