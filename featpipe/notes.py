@@ -1,0 +1,206 @@
+"""Plain-language readings of fitted terms and models: pure functions from numbers to sentences.
+
+A reading states the effect per step on the scale a practitioner thinks in (odds for a logistic
+model, expected count for a Poisson model, the target's own units for a linear model), its 95%
+interval, and the cautions that change how it may be read: an unmet sign expectation, an interval
+that includes no effect, collinearity, terms that move together, a penalty.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping
+
+from .fitted import Effect
+
+EFFECT_KINDS = {"binomial": "odds ratio", "poisson": "rate ratio", "gaussian": "difference"}
+NO_EFFECT = {"odds ratio": "an odds ratio of 1", "rate ratio": "a rate ratio of 1", "difference": "a difference of 0"}
+# Variance inflation factors above 5 and above 10 signal collinearity (common practice thresholds).
+VIF_MODERATE, VIF_STRONG = 5.0, 10.0
+MODEL_NAMES = {"binomial": "Logistic regression", "poisson": "Poisson regression", "gaussian": "Linear regression"}
+
+
+def words(name: str) -> str:
+    """Readable words from an identifier: firm_age_years -> "firm age years"."""
+    return " ".join(part for part in name.split("_") if part)
+
+
+def effect(family: str, estimate: float, ci_low: float | None, ci_high: float | None, step: float = 1.0) -> Effect:
+    """The effect of `step` more units of a term: exp(step * b) as an odds or rate ratio, or step * b.
+
+    The interval is transformed the same way (ordered low to high); None bounds without an interval.
+    """
+    kind = _kind(family)
+    scale = _difference if kind == "difference" else _ratio
+    value = scale(step * estimate)
+    if ci_low is None or ci_high is None:
+        return Effect(kind=kind, step=float(step), value=value, low=None, high=None)
+    low, high = sorted((scale(step * ci_low), scale(step * ci_high)))
+    return Effect(kind=kind, step=float(step), value=value, low=low, high=high)
+
+
+def _kind(family: str) -> str:
+    if family not in EFFECT_KINDS:
+        raise ValueError(f"unknown family '{family}'; use one of {', '.join(EFFECT_KINDS)}")
+    return EFFECT_KINDS[family]
+
+
+def _ratio(value: float) -> float:
+    try:
+        return math.exp(value)
+    except OverflowError:
+        return math.inf
+
+
+def _difference(value: float) -> float:
+    return float(value)
+
+
+def term_notes(
+    *,
+    name: str,
+    family: str,
+    target: str,
+    estimate: float,
+    ci_low: float | None,
+    ci_high: float | None,
+    p_value: float | None = None,
+    step: float = 1.0,
+    kind: str = "numeric",
+    unit_phrase: str | None = None,
+    expect: str | None = None,
+    vif: float | None = None,
+    related: Iterable[str] = (),
+    human_note: str | None = None,
+    penalized: bool = False,
+) -> tuple[str, ...]:
+    """The notes of one term, in reading order: the human note from the spec (unchanged), the effect in
+    words, the expected sign, a penalty caveat, an interval that includes no effect, collinearity
+    (VIF above 5 or 10), and the `related` terms (those it is built from or shares input columns with)
+    that must be read with it.
+
+    `kind` is "numeric" or "boolean" (an indicator is read as 1 rather than 0, ignoring `step`);
+    `unit_phrase` names `step` units, e.g. "years of firm age" for "each 5 more years of firm age".
+    """
+    notes = [human_note] if human_note else []
+    notes.append(_reading(name, family, target, effect(family, estimate, ci_low, ci_high, 1.0 if kind == "boolean" else step),
+                          kind, unit_phrase))
+    if expect:
+        notes.append(_expectation(expect, estimate))
+    if penalized:
+        caveat = "fitted with a penalty: the estimate is shrunk toward zero"
+        notes.append(f"{caveat} and its 95% interval is not a valid Wald interval" if ci_low is not None else caveat)
+    if ci_low is not None and ci_high is not None and ci_low <= 0 <= ci_high:
+        notes.append(_no_effect(family, p_value))
+    if vif is not None and vif > VIF_MODERATE:
+        notes.append(_collinearity(vif))
+    others = list(dict.fromkeys(other for other in related if other != name))
+    if others:
+        they = "they change" if len(others) > 1 else "it changes"
+        notes.append(f"read together with {_listing(others)}: its effect cannot be held fixed while {they}")
+    return tuple(notes)
+
+
+def _reading(name: str, family: str, target: str, size: Effect, kind: str, unit_phrase: str | None) -> str:
+    if kind == "boolean":
+        subject = f"{words(name)} (1 rather than 0)"
+    elif unit_phrase:
+        subject = f"each {_step(size.step)} more {unit_phrase}"
+    elif size.step == 1:
+        subject = f"each one-unit increase in {words(name)}"
+    else:
+        subject = f"each increase of {_step(size.step)} in {words(name)}"
+    signed = size.kind == "difference"
+    if family == "binomial":
+        verb = f"multiplies the odds of {words(target)} by {figure(size.value)}"
+    elif family == "poisson":
+        verb = f"multiplies the expected count by {figure(size.value)}"
+    else:
+        verb = f"changes {words(target)} by {figure(size.value, signed)}"
+    interval = ""
+    if size.low is not None and size.high is not None:
+        interval = f" (95% interval {figure(size.low, signed)} to {figure(size.high, signed)})"
+    return f"{subject} {verb}{interval}, other terms held fixed"
+
+
+def _expectation(expect: str, estimate: float) -> str:
+    sign = "positive" if estimate > 0 else "negative" if estimate < 0 else "zero"
+    if sign == expect:
+        return f"expected {expect}: met"
+    return f"expected {expect} but the estimate is {sign}: review the term or the data"
+
+
+def _no_effect(family: str, p_value: float | None) -> str:
+    p = f", {p_text(p_value)}" if p_value is not None else ""
+    return f"the interval includes no effect ({NO_EFFECT[_kind(family)]}){p}: the data do not show a clear effect of this term"
+
+
+def _collinearity(vif: float) -> str:
+    if vif > VIF_STRONG:
+        return (f"VIF {vif:.1f} is above {VIF_STRONG:g}: strong collinearity with other terms makes the estimate "
+                "unstable and its interval wide")
+    return f"VIF {vif:.1f} is above {VIF_MODERATE:g}: moderate collinearity with other terms widens the interval"
+
+
+def _listing(names: list[str]) -> str:
+    return names[0] if len(names) == 1 else f"{', '.join(names[:-1])} and {names[-1]}"
+
+
+def _step(step: float) -> str:
+    return f"{step:g}"
+
+
+def figure(value: float, signed: bool = False) -> str:
+    """A number for a sentence: two decimals from 0.1 up to 1,000, whole above, two significant digits below."""
+    sign = "+" if signed else ""
+    magnitude = abs(value)
+    if not math.isfinite(value):
+        return f"{value:{sign}}"
+    if magnitude >= 1000:
+        return f"{value:{sign},.0f}"
+    if magnitude >= 0.1 or magnitude == 0:
+        return f"{value:{sign}.2f}"
+    return f"{value:{sign}.2g}"
+
+
+def p_text(p_value: float) -> str:
+    return "p < 0.001" if p_value < 0.001 else f"p = {p_value:.2g}"
+
+
+def model_reading(
+    *,
+    family: str,
+    target: str,
+    terms: int,
+    train_rows: int,
+    metrics: Mapping,
+    threshold: float = 0.5,
+    converged: bool = True,
+    penalized: bool = False,
+) -> str:
+    """One paragraph summing up a fitted model and its holdout metrics (see featpipe.metrics)."""
+    if family not in MODEL_NAMES:
+        raise ValueError(f"unknown family '{family}'; use one of {', '.join(MODEL_NAMES)}")
+    plural = "term" if terms == 1 else "terms"
+    sentences = [f"{MODEL_NAMES[family]} of {words(target)} on {terms} {plural}, fitted on {train_rows:,} training rows."]
+    if not converged:
+        sentences.append("The fit did not converge: do not use these estimates.")
+    if penalized:
+        sentences.append("It was fitted with a penalty, so its intervals and p-values are not valid Wald inference.")
+    rows = metrics.get("rows", 0)
+    if not rows:
+        sentences.append("No rows were held out, so there are no holdout metrics.")
+    elif family == "binomial":
+        accuracy, baseline = metrics["accuracy"], metrics["baseline_accuracy"]
+        verdict = "" if accuracy > baseline else ", so at this threshold it is no better than the baseline"
+        auc = f" Its AUC is {metrics['auc']:.2f}." if metrics.get("auc") is not None else ""
+        sentences.append(
+            f"On {rows:,} held-out rows it classifies {accuracy:.1%} correctly at threshold {threshold:g}, against "
+            f"{baseline:.1%} for always predicting the majority class{verdict}.{auc}"
+        )
+    else:
+        sentences.append(
+            f"On {rows:,} held-out rows the mean absolute error is {figure(metrics['mean_absolute_error'])} and the "
+            f"mean prediction {figure(metrics['mean_predicted'])} against a mean observed {figure(metrics['mean_observed'])}."
+        )
+    return " ".join(sentences)
