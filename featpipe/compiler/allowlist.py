@@ -59,7 +59,7 @@ _RANDOM_NAMES = {"RANDOM", "RAND", "UUID", "GEN_RANDOM_UUID", "RANDOM_UUID", "UU
                  "NEXTVAL", "CURRVAL"}
 _CLOCK_NAMES = {"NOW", "GET_CURRENT_TIME", "GET_CURRENT_TIMESTAMP", "TRANSACTION_TIMESTAMP", "STATEMENT_TIMESTAMP",
                 "CLOCK_TIMESTAMP", "TIMEOFDAY", "GETDATE", "SYSDATE", "UNIX_TIMESTAMP"}
-_READER_NAMES = {"GETENV", "CURRENT_SETTING", "SET_CONFIG", "PG_READ_FILE", "PG_READ_BINARY_FILE", "PG_LS_DIR",
+_READER_NAMES = {"GETENV", "CURRENT_SETTING", "SET_CONFIG", "PG_LS_DIR",
                  "PG_STAT_FILE", "LO_IMPORT", "LO_EXPORT", "PARQUET_SCAN", "GLOB", "DBLINK", "LOAD_EXTENSION",
                  "INPUT_FILE_NAME", "INET_CLIENT_ADDR", "PG_BACKEND_PID", "SESSION_USER", "USER"}
 _READER_PREFIXES = ("READ_", "CURRENT_", "DUCKDB_", "PG_READ_")
@@ -86,7 +86,7 @@ ROUND_DIGITS = "ROUND's second argument must be a whole-number literal, e.g. ROU
 STAR = "* is not a term value: name each column"
 STATEMENT = "{name} is a statement, not an expression: a term file holds one SELECT whose projections are the terms"
 OTHER = ("{name} is not allowed in a term: featpipe accepts only portable deterministic scalar SQL (columns, literals, "
-         "arithmetic, comparisons, AND/OR/NOT, IS NULL, BETWEEN, IN (...), CASE, COALESCE, NULLIF, CAST and " + _FUNCTIONS + ")")
+         "arithmetic, comparisons, AND/OR/NOT, IS NULL, BETWEEN, IN (...), CASE, CAST and the functions " + _FUNCTIONS + ")")
 
 
 def check_allowed(expression: exp.Expression, file: str) -> list[Diagnostic]:
@@ -155,7 +155,7 @@ def _problem(node: exp.Expression) -> tuple[str | None, list[exp.Expression]]:
         return _cast_problem(node), [node.this]  # the target type is checked here, not as a child
     # Arguments of a rejected scalar function or of // are ordinary expressions worth checking too;
     # inside anything else rejected (a subquery, an aggregate, a window, a statement) they are not.
-    passes_on = isinstance(node, (exp.Func, exp.IntDiv)) and not isinstance(node, (exp.AggFunc, exp.Window))
+    passes_on = isinstance(node, (exp.Func, exp.IntDiv)) and not isinstance(node, (exp.AggFunc, exp.Window, exp.Exists))
     return _rejected(node), (children if passes_on else [])
 
 
