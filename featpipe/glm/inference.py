@@ -1,0 +1,52 @@
+"""Wald inference and information criteria from the final X'WX, on the original scale of the terms."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from .families import Family
+
+LEVEL = 0.95
+
+
+@dataclass(frozen=True)
+class Wald:
+    stderr: np.ndarray
+    statistic: np.ndarray
+    p_value: np.ndarray
+    ci_low: np.ndarray
+    ci_high: np.ndarray
+
+
+def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: int) -> Wald:
+    """Standard errors, z (or t with `df_residual` degrees of freedom), two-sided p-values, 95% intervals."""
+    stderr = np.sqrt(np.clip(np.diag(covariance), 0.0, None))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        statistic = coef / stderr
+    if family.estimates_dispersion:
+        p_value = 2.0 * stats.t.sf(np.abs(statistic), df_residual)
+        quantile = stats.t.ppf(0.5 + LEVEL / 2, df_residual)
+    else:
+        p_value = 2.0 * stats.norm.sf(np.abs(statistic))
+        quantile = stats.norm.ppf(0.5 + LEVEL / 2)
+    return Wald(stderr, statistic, p_value, coef - quantile * stderr, coef + quantile * stderr)
+
+
+def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: float, constant: float) -> float:
+    """llf as statsmodels and R define it (see `families`); `constant` is the poisson data term."""
+    if family.name == "gaussian":
+        scale = deviance / rows
+        return -0.5 * (rows * math.log(2.0 * math.pi * scale) + rows - log_weight_sum)
+    if family.name == "poisson":
+        return -0.5 * deviance + constant
+    return -0.5 * deviance
+
+
+def information_criteria(llf: float, parameters: int, rows: int) -> tuple[float, float]:
+    """AIC = -2 llf + 2 k (as statsmodels' GLM `aic`: k counts the coefficients, not the scale) and
+    BIC = -2 llf + k ln n (statsmodels' `bic_llf`)."""
+    return -2.0 * llf + 2.0 * parameters, -2.0 * llf + parameters * math.log(rows)

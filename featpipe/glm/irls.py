@@ -1,0 +1,116 @@
+"""IRLS, written once over a statistics source, for several fits in lockstep (a model and its null).
+
+Each pass evaluates every unfinished fit at its current coefficients in one read of the data. A fit
+stops when the step it is about to take would change the deviance by less than `tol` relative,
+(predicted decrease) / (|deviance| + 0.1) as in R's glm criterion; that last step is still applied
+(it is a Newton step, so it squares the remaining error). If a step makes the (penalized) deviance
+worse, it is halved and evaluated again.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import FeatpipeError
+from .linalg import Alias, find_aliased
+from .penalty import ScaledPenalty
+from .sources import Request, Statistics, StatisticsSource
+
+MAX_HALVINGS = 30
+WORSE = 1e-12  # relative increase of the objective that counts as a worse step (not rounding)
+
+
+class AliasedTerms(Exception):
+    """X'WX is singular at the start: some columns are linear combinations of others."""
+
+    def __init__(self, request: int, aliases: list[Alias], xtwx: np.ndarray):
+        super().__init__(f"aliased columns {[alias.column for alias in aliases]}")
+        self.request, self.aliases, self.xtwx = request, aliases, xtwx
+
+
+@dataclass(frozen=True)
+class IrlsResult:
+    terms: tuple[int, ...]
+    beta: np.ndarray  # final coefficients (after the last step)
+    statistics: Statistics  # at the last evaluated coefficients
+    iterations: int  # passes this fit took part in
+    converged: bool
+    change: float  # relative deviance change of the last step
+    aliases: tuple[Alias, ...]  # found at the start (only when they are allowed)
+
+
+@dataclass
+class _Fit:
+    terms: tuple[int, ...]
+    beta: np.ndarray
+    accepted: np.ndarray | None = None
+    objective: float = math.inf
+    statistics: Statistics | None = None
+    iterations: int = 0
+    halvings: int = 0
+    change: float = math.inf
+    converged: bool = False
+    done: bool = False
+    final: np.ndarray | None = None
+    aliases: tuple[Alias, ...] = field(default_factory=tuple)
+
+    def result(self) -> IrlsResult:
+        final = self.final if self.final is not None else self.accepted
+        return IrlsResult(self.terms, final, self.statistics, self.iterations, self.converged, self.change, self.aliases)
+
+
+def run_irls(
+    source: StatisticsSource,
+    starts: Sequence[Request],
+    penalty: ScaledPenalty,
+    total_weight: float,
+    max_iter: int,
+    tol: float,
+    allow_aliasing: bool = False,
+) -> list[IrlsResult]:
+    """Fit every start to convergence (or `max_iter` passes); one result per start, in order.
+
+    Raises `AliasedTerms` when a fit's X'WX is singular at its start and `allow_aliasing` is off.
+    """
+    fits = [_Fit(start.terms, np.asarray(start.beta, dtype=float)) for start in starts]
+    while active := [fit for fit in fits if not fit.done]:
+        evaluated = source.evaluate([Request(fit.terms, fit.beta) for fit in active])
+        for index, (fit, statistics) in enumerate(zip(active, evaluated, strict=True)):
+            fit.iterations += 1
+            _advance(fit, statistics, penalty, total_weight, tol, allow_aliasing, fits.index(fit))
+            if not fit.done and fit.iterations >= max_iter:
+                fit.done = True
+    return [fit.result() for fit in fits]
+
+
+def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_weight: float, tol: float, allow_aliasing: bool, request: int) -> None:
+    objective = statistics.deviance + 2.0 * total_weight * penalty.value(fit.beta)
+    if fit.accepted is None:
+        if not (math.isfinite(objective) and np.isfinite(statistics.xtwx).all()):
+            raise FeatpipeError(
+                "the deviance is not finite at the starting values; check the terms for extreme values "
+                "(a term of order 1e150 or more overflows)"
+            )
+        aliases = find_aliased(statistics.xtwx)
+        if aliases and not allow_aliasing:
+            raise AliasedTerms(request, aliases, statistics.xtwx)
+        fit.aliases = tuple(aliases)
+    elif not objective <= fit.objective + WORSE * abs(fit.objective):  # also catches NaN
+        if fit.halvings < MAX_HALVINGS:
+            fit.halvings += 1
+            fit.beta = (fit.beta + fit.accepted) / 2.0
+            return
+        fit.done = True  # no step along this direction helps: stop at the last accepted point
+        return
+    fit.halvings = 0
+    fit.accepted, fit.objective, fit.statistics = fit.beta, objective, statistics
+    new, decrease = penalty.step(statistics.xtwx, statistics.score, fit.beta, total_weight)
+    fit.change = decrease / (abs(statistics.deviance) + 0.1)
+    if fit.change < tol:
+        fit.converged, fit.done, fit.final = True, True, new
+    else:
+        fit.beta = new

@@ -1,0 +1,169 @@
+"""Problems a fit can meet, each explained with what to do: errors stop the fit, warnings travel with it."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+from ..errors import FeatpipeError
+from ..sqlgen.statistics import TrainingProfile
+from .families import Family
+from .linalg import Alias
+from .sources import Scaling
+
+EVENTS_PER_TERM = 10  # common practice: fewer events per term than this gives unstable estimates
+RUNAWAY_TERMS = 3  # terms named in a separation message
+
+
+def check_training_rows(profile: TrainingProfile, family: Family, where: str, target: str, weight: str | None) -> list[str]:
+    """Refuse data the family cannot fit; return warnings about thin data. `where` names the data."""
+    if profile.rows == 0:
+        raise FeatpipeError(
+            f"{where} has no training rows: every row is held out or has a NULL target, offset, weight or term; "
+            "check holdout.fraction and the terms that produce NULLs"
+        )
+    if weight and profile.nonpositive_weights:
+        raise FeatpipeError(
+            f"{where}: weight '{weight}' is zero or negative on {profile.nonpositive_weights} training rows; "
+            "prior weights must be positive: filter those rows out or fix the weight column"
+        )
+    _check_target_domain(profile, family, where, target)
+    bad = [term.name for term in profile.terms if not all(map(math.isfinite, (term.mean, term.min, term.max)))]
+    if bad:
+        raise FeatpipeError(
+            f"{where}: term(s) {_names(bad)} have infinite or NaN values on the training rows; guard divisions "
+            "with NULLIF and logarithms with a CASE in the term definitions"
+        )
+    constant = [term for term in profile.terms if term.min == term.max]
+    if constant:
+        values = ", ".join(f"'{term.name}' = {term.min:g}" for term in constant)
+        raise FeatpipeError(
+            f"{where}: term(s) constant on all {profile.rows} training rows ({values}), so their coefficients "
+            "cannot be told apart from the intercept; remove them from the model's terms or check their definitions"
+        )
+    coefficients = len(profile.terms) + 1
+    if profile.rows <= coefficients:
+        raise FeatpipeError(
+            f"{where}: {profile.rows} training rows for {coefficients} coefficients; a fit needs more rows than "
+            "coefficients: add data or remove terms"
+        )
+    return _thin_data(profile, family)
+
+
+def _check_target_domain(profile: TrainingProfile, family: Family, where: str, target: str) -> None:
+    observed = f"(training values range from {profile.target_min:g} to {profile.target_max:g})"
+    if family.name == "binomial":
+        if profile.not_binary:
+            raise FeatpipeError(
+                f"{where}: a binomial target must be 0 or 1, but '{target}' has other values on "
+                f"{profile.not_binary} training rows {observed}; recode it as 0/1 or a boolean, or choose "
+                "another family"
+            )
+        if profile.target_sum in (0, profile.rows):
+            raise FeatpipeError(
+                f"{where}: target '{target}' is {profile.target_min:g} on every training row, so there is nothing "
+                "to model; check the target definition and the holdout split"
+            )
+    if family.name == "poisson":
+        if profile.negative:
+            raise FeatpipeError(
+                f"{where}: a poisson target is a count, but '{target}' is negative on {profile.negative} training "
+                f"rows {observed}; fix the target or choose family: gaussian"
+            )
+        if profile.not_integer:
+            raise FeatpipeError(
+                f"{where}: a poisson target is a count, but '{target}' is not a whole number on "
+                f"{profile.not_integer} training rows {observed}; model the count itself and put the exposure "
+                "in `offset: LN(exposure)` instead of dividing by it"
+            )
+        if profile.target_sum == 0:
+            raise FeatpipeError(f"{where}: target '{target}' is 0 on every training row, so there is nothing to model")
+
+
+def _thin_data(profile: TrainingProfile, family: Family) -> list[str]:
+    if family.name == "gaussian" or not profile.terms:
+        return []
+    if family.name == "binomial":
+        events = min(profile.target_sum, profile.rows - profile.target_sum)
+        kind = "events (rows of the rarer outcome)"
+    else:
+        events, kind = profile.target_sum, "events (total count)"
+    per_term = events / len(profile.terms)
+    if per_term >= EVENTS_PER_TERM:
+        return []
+    return [
+        f"only {events:g} {kind} for {len(profile.terms)} terms ({per_term:.1f} per term); with fewer than "
+        f"{EVENTS_PER_TERM} per term (common practice) estimates are unstable and look better than they are: "
+        "remove terms, add data, or add an l2 penalty"
+    ]
+
+
+def aliased_message(aliases: Sequence[Alias], names: Sequence[str], scaling: Scaling, where: str) -> str:
+    """Each aliased term written as the combination of earlier terms it equals, on the original scale."""
+    lines = [_combination(alias, names, scaling) for alias in aliases]
+    dropped = _names([names[alias.column - 1] for alias in aliases])
+    return (
+        f"{where}: term(s) {dropped} are linear combinations of other terms on the training rows, "
+        f"so their coefficients are not identified: {'; '.join(lines)}. Remove {dropped} from the model's terms "
+        "(or one of the terms each is built from)"
+    )
+
+
+def _combination(alias: Alias, names: Sequence[str], scaling: Scaling) -> str:
+    """x_j = m_j + s_j (c_0 + sum_k c_k (x_k - m_k) / s_k), with tiny coefficients left out."""
+    j = alias.column - 1
+    center, scale = scaling.centers[j], scaling.scales[j]
+    constant = center + scale * alias.coefficients[0]
+    parts = []
+    for column, coefficient in zip(alias.basis[1:], alias.coefficients[1:], strict=True):
+        k = column - 1
+        factor = scale * coefficient / scaling.scales[k]
+        constant -= factor * scaling.centers[k]
+        parts.append((factor, names[k]))
+    largest = max([abs(f) for f, _ in parts] + [abs(constant), 1e-300])
+    text = " + ".join(f"{factor:.6g} * '{name}'" for factor, name in parts if abs(factor) > 1e-9 * largest)
+    if abs(constant) > 1e-9 * largest or not text:
+        text = f"{text} + {constant:.6g}" if text else f"{constant:.6g}"
+    return f"'{names[j]}' = {text}"
+
+
+def separation(
+    family: Family, boundary_rows: int, names: Sequence[str], standardized: np.ndarray, statistic: np.ndarray | None
+) -> str:
+    """The separation message naming the terms whose standardized estimates are largest."""
+    order = np.argsort(-np.abs(standardized[1:]), kind="stable")[:RUNAWAY_TERMS]
+    described = []
+    for index in order:
+        z = "" if statistic is None else f", z {statistic[index + 1]:.2f}"
+        described.append(f"'{names[index]}' (estimate per sd {standardized[index + 1]:.3g}{z})")
+    if family.name == "binomial":
+        what = f"{boundary_rows} training rows have fitted probabilities within 1e-10 of 0 or 1"
+        cause = "complete or quasi-complete separation: some terms predict the target perfectly"
+    else:
+        what = f"{boundary_rows} training rows have fitted means below 1e-10"
+        cause = "a group of rows with only zero counts"
+    return (
+        f"{what} ({cause}); the estimates of {', '.join(described)} run away instead of converging. "
+        "Add an l2 penalty to the model spec (penalty: {l2: 0.01}) or drop or merge the terms that separate the target"
+    )
+
+
+def not_converged(max_iter: int, change: float) -> str:
+    return (
+        f"IRLS did not converge in {max_iter} iterations: the last step still changed the deviance by {change:.1e} "
+        "(relative); the estimates are not final. Raise max_iter, rescale terms with extreme values, or add an "
+        "l2 penalty"
+    )
+
+
+def penalized_inference(l2: float, l1: float) -> str:
+    return (
+        f"penalized fit (l2 {l2:g}, l1 {l1:g} on standardized terms): standard errors, p-values and intervals are "
+        "not reported because plain Wald inference does not hold for penalized estimates"
+    )
+
+
+def _names(names: Sequence[str]) -> str:
+    return ", ".join(f"'{name}'" for name in names)

@@ -1,0 +1,238 @@
+"""Where IRLS gets its sufficient statistics: one interface, two ways to compute them.
+
+- `SqlAggregateSource`: one aggregate query per pass (`sqlgen.statistics.statistics_query`); runs on
+  every engine and only the p x p sums leave it.
+- `BatchSource`: the design columns arrive in batches (streamed from DuckDB with `fetch_batches`, or
+  slices of in-memory arrays) and X'WX is accumulated per batch with BLAS (a rank-k update of the
+  upper triangle), so memory holds one batch whatever the row count.
+
+Both evaluate several linear predictors (the model and its intercept-only null model) in one pass.
+Coefficients are on the standardized scale: term t enters as (x - center) / scale.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from typing import Protocol
+
+import numpy as np
+import pyarrow as pa
+from scipy.linalg.blas import dsyrk
+
+from ..engines.base import Engine
+from ..sqlgen.layout import DesignLayout
+from ..sqlgen.statistics import ModelRequest, design_columns_query, statistics_query, upper_pairs
+from .families import Family
+
+
+@dataclass(frozen=True)
+class Scaling:
+    """Centers and scales of the terms (training mean and population sd), in term order."""
+
+    centers: np.ndarray
+    scales: np.ndarray
+
+    def to_original(self) -> np.ndarray:
+        """Matrix T with beta_original = T @ beta_standardized (intercept first)."""
+        size = len(self.centers) + 1
+        transform = np.zeros((size, size))
+        transform[0, 0] = 1.0
+        transform[0, 1:] = -self.centers / self.scales
+        transform[np.arange(1, size), np.arange(1, size)] = 1.0 / self.scales
+        return transform
+
+
+@dataclass(frozen=True)
+class Request:
+    """A linear predictor to evaluate: term indices (into the model's terms) and coefficients."""
+
+    terms: tuple[int, ...]
+    beta: np.ndarray  # intercept first
+
+
+@dataclass(frozen=True)
+class Statistics:
+    """Sums over the training rows at one coefficient vector (q = 1 + number of terms)."""
+
+    deviance: float
+    boundary_rows: int  # fitted value within 1e-10 of 0 or 1 (binomial), below 1e-10 (poisson)
+    score: np.ndarray  # sum of w (y - mu) x, shape (q,)
+    xtwx: np.ndarray  # X'WX, shape (q, q)
+
+
+class StatisticsSource(Protocol):
+    name: str
+    passes: int  # full reads of the training rows so far
+
+    def evaluate(self, requests: Sequence[Request]) -> list[Statistics]: ...
+
+
+class SqlAggregateSource:
+    name = "sql"
+
+    def __init__(self, engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling):
+        self.engine, self.layout, self.family = engine, layout, family
+        self.centers = dict(zip(layout.terms, scaling.centers.tolist(), strict=True))
+        self.scales = dict(zip(layout.terms, scaling.scales.tolist(), strict=True))
+        self.passes = 0
+
+    def evaluate(self, requests: Sequence[Request]) -> list[Statistics]:
+        models = [
+            ModelRequest(tuple(self.layout.terms[i] for i in request.terms), tuple(request.beta.tolist()))
+            for request in requests
+        ]
+        query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models)
+        (row,) = self.engine.fetch(query)
+        self.passes += 1
+        return _unpack(row, [len(request.terms) + 1 for request in requests])
+
+
+def _unpack(row: Sequence, sizes: list[int]) -> list[Statistics]:
+    """Split the row of `statistics_query` into one `Statistics` per model."""
+    values = [np.nan if value is None else float(value) for value in row]
+    out, position = [], 0
+    for size in sizes:
+        deviance, boundary = values[position], values[position + 1]
+        position += 2
+        score = np.array(values[position : position + size])
+        position += size
+        xtwx = np.empty((size, size))
+        for i, j in upper_pairs(size):
+            xtwx[i, j] = xtwx[j, i] = values[position]
+            position += 1
+        out.append(Statistics(deviance, 0 if np.isnan(boundary) else int(boundary), score, xtwx))
+    return out
+
+
+@dataclass(frozen=True)
+class Batch:
+    """Raw design columns of some training rows."""
+
+    y: np.ndarray
+    offset: np.ndarray | None
+    weight: np.ndarray | None
+    terms: list[np.ndarray]  # one column per term, in term order
+
+
+class BatchSource:
+    """Accumulates the statistics over batches with numpy; memory is one batch."""
+
+    def __init__(self, name: str, batches: Callable[[], Iterable[Batch]], family: Family, scaling: Scaling):
+        self.name, self.batches, self.family, self.scaling = name, batches, family, scaling
+        self.inverse_scales = 1.0 / scaling.scales
+        self.passes = 0
+
+    def evaluate(self, requests: Sequence[Request]) -> list[Statistics]:
+        totals = [_Totals(len(request.terms) + 1) for request in requests]
+        for batch in self.batches():
+            standardized = self._standardize(batch.terms, len(batch.y))
+            for request, total in zip(requests, totals, strict=True):
+                total.add(self.family, batch, _select(standardized, request.terms), request.beta)
+        self.passes += 1
+        return [total.statistics() for total in totals]
+
+    def _standardize(self, columns: list[np.ndarray], rows: int) -> np.ndarray:
+        """(x - center) / scale per term, as one Fortran-ordered matrix (columns contiguous for BLAS)."""
+        matrix = np.empty((rows, len(columns)), order="F")
+        for j, values in enumerate(columns):
+            np.subtract(values, self.scaling.centers[j], out=matrix[:, j])
+            matrix[:, j] *= self.inverse_scales[j]
+        return matrix
+
+
+def _select(matrix: np.ndarray, terms: tuple[int, ...]) -> np.ndarray | None:
+    if not terms:
+        return None
+    if terms == tuple(range(matrix.shape[1])):
+        return matrix
+    return np.asfortranarray(matrix[:, list(terms)])
+
+
+class _Totals:
+    """Running sums of one model's statistics."""
+
+    def __init__(self, size: int):
+        self.deviance, self.boundary = 0.0, 0
+        self.score = np.zeros(size)
+        self.xtwx = np.zeros((size, size))
+
+    def add(self, family: Family, batch: Batch, x: np.ndarray | None, beta: np.ndarray) -> None:
+        eta = np.full(len(batch.y), beta[0]) if x is None else x @ beta[1:] + beta[0]
+        if batch.offset is not None:
+            eta += batch.offset
+        eta = family.clamp(eta)
+        mu = family.mean(eta)
+        weight = family.variance(mu)
+        residual = batch.y - mu
+        unit = family.unit_deviance(batch.y, eta, mu)
+        if batch.weight is not None:
+            weight, residual, unit = weight * batch.weight, residual * batch.weight, unit * batch.weight
+        self.deviance += float(unit.sum())
+        self.boundary += int(family.boundary(eta).sum())
+        self.score[0] += residual.sum()
+        self.xtwx[0, 0] += weight.sum()
+        if x is not None:
+            self.score[1:] += residual @ x
+            self.xtwx[0, 1:] += weight @ x
+            rooted = x * np.sqrt(weight)[:, None]
+            self.xtwx[1:, 1:] += dsyrk(1.0, rooted, trans=1, lower=0)  # upper triangle of rooted' rooted
+
+    def statistics(self) -> Statistics:
+        upper = np.triu(self.xtwx)
+        return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T)
+
+
+def array_batches(
+    terms: np.ndarray, y: np.ndarray, offset: np.ndarray | None, weight: np.ndarray | None, batch_rows: int
+) -> Callable[[], Iterator[Batch]]:
+    """Batches over in-memory arrays (rows x terms)."""
+
+    def batches() -> Iterator[Batch]:
+        for start in range(0, len(y), batch_rows):
+            rows = slice(start, start + batch_rows)
+            yield Batch(
+                y[rows],
+                None if offset is None else offset[rows],
+                None if weight is None else weight[rows],
+                [terms[rows, j] for j in range(terms.shape[1])],
+            )
+
+    return batches
+
+
+def engine_batches(engine: Engine, layout: DesignLayout, batch_rows: int) -> Callable[[], Iterator[Batch]]:
+    """Batches streamed from the engine: the design columns of the training rows.
+
+    On DuckDB the next batch is read by a helper thread while numpy works on the current one (both
+    release the GIL); other drivers may be tied to the thread that opened them, so they read inline.
+    """
+    query = design_columns_query(layout)
+
+    def batches() -> Iterator[Batch]:
+        converted = (batch_from_arrow(record_batch, layout) for record_batch in engine.fetch_batches(query, batch_rows))
+        return _read_ahead(converted) if engine.name == "duckdb" else converted
+
+    return batches
+
+
+def _read_ahead(items: Iterator[Batch]) -> Iterator[Batch]:
+    """Yield from `items`, fetching the next item in a helper thread meanwhile (one item ahead)."""
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        pending = pool.submit(next, items, None)
+        while (item := pending.result()) is not None:
+            pending = pool.submit(next, items, None)
+            yield item
+
+
+def batch_from_arrow(record_batch: pa.RecordBatch, layout: DesignLayout) -> Batch:
+    """A `Batch` from the columns of `design_columns_query`: target, [offset], [weight], terms."""
+    columns = [column.to_numpy(zero_copy_only=False) for column in record_batch.columns]
+    position = 1
+    offset = weight = None
+    if layout.offset:
+        offset, position = columns[position], position + 1
+    if layout.weight:
+        weight, position = columns[position], position + 1
+    return Batch(columns[0], offset, weight, columns[position:])
