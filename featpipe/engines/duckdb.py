@@ -54,7 +54,13 @@ class DuckDBEngine:
         return self._run(query).df()
 
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
-        reader = self._run(query).fetch_record_batch(batch_rows)
+        # A relation streams its result; an executed result (DuckDB 2 has no fetch_record_batch) would
+        # first materialize every row.
+        try:
+            reader = self.connection.sql(self.render(query)).to_arrow_reader(batch_rows)
+        except duckdb.Error as error:
+            first_line = str(error).strip().splitlines()[0]
+            raise EngineError(f"duckdb: {first_line}") from None
         yield from reader
 
     def execute(self, statement: exp.Expression) -> None:
