@@ -286,11 +286,15 @@ def _result(
     warnings = list(warnings)
     if model.aliases:
         warnings.append(problems.aliased_message(model.aliases, names, scaling, where))
-    if statistics.boundary_rows:
+    # A step that is still large is a runaway once the deviance has settled (or fitted values sit at
+    # the boundary); before that it is only an unfinished fit.
+    settled = model.converged or statistics.boundary_rows > 0
+    runaway = problems.runaway_terms(model.step) if family.name != "gaussian" and settled else []
+    if runaway or statistics.boundary_rows:
         message = problems.separation(
-            family, statistics.boundary_rows, names, model.beta, None if inference is None else inference.statistic
+            family, statistics.boundary_rows, names, runaway, model.beta, None if inference is None else inference.statistic
         )
-        if not penalty.active:
+        if runaway and not penalty.active:
             raise FeatpipeError(f"{where}: {message}")
         warnings.append(message)
     if not model.converged:

@@ -35,8 +35,9 @@ class AliasedTerms(Exception):
 @dataclass(frozen=True)
 class IrlsResult:
     terms: tuple[int, ...]
-    beta: np.ndarray  # final coefficients (after the last step)
+    beta: np.ndarray  # final coefficients (after the last step when converged)
     statistics: Statistics  # at the last evaluated coefficients
+    step: np.ndarray  # the last step computed (applied when converged): large when estimates run away
     iterations: int  # passes this fit took part in
     converged: bool
     change: float  # relative deviance change of the last step
@@ -56,11 +57,12 @@ class _Fit:
     converged: bool = False
     done: bool = False
     final: np.ndarray | None = None
+    step: np.ndarray | None = None
     aliases: tuple[Alias, ...] = field(default_factory=tuple)
 
     def result(self) -> IrlsResult:
         final = self.final if self.final is not None else self.accepted
-        return IrlsResult(self.terms, final, self.statistics, self.iterations, self.converged, self.change, self.aliases)
+        return IrlsResult(self.terms, final, self.statistics, self.step, self.iterations, self.converged, self.change, self.aliases)
 
 
 def run_irls(
@@ -109,6 +111,7 @@ def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_we
     fit.halvings = 0
     fit.accepted, fit.objective, fit.statistics = fit.beta, objective, statistics
     new, decrease = penalty.step(statistics.xtwx, statistics.score, fit.beta, total_weight)
+    fit.step = new - fit.beta
     fit.change = decrease / (abs(statistics.deviance) + 0.1)
     if fit.change < tol:
         fit.converged, fit.done, fit.final = True, True, new

@@ -15,6 +15,7 @@ from .sources import Scaling
 
 EVENTS_PER_TERM = 10  # common practice: fewer events per term than this gives unstable estimates
 RUNAWAY_TERMS = 3  # terms named in a separation message
+RUNAWAY_STEP = 0.01  # a last step this large (per sd of the term, on the link scale) means no convergence
 
 
 def check_training_rows(profile: TrainingProfile, family: Family, where: str, target: str, weight: str | None) -> list[str]:
@@ -123,36 +124,53 @@ def _combination(alias: Alias, names: Sequence[str], scaling: Scaling) -> str:
         constant -= factor * scaling.centers[k]
         parts.append((factor, names[k]))
     largest = max([abs(f) for f, _ in parts] + [abs(constant), 1e-300])
-    text = " + ".join(f"{factor:.6g} * '{name}'" for factor, name in parts if abs(factor) > 1e-9 * largest)
-    if abs(constant) > 1e-9 * largest or not text:
-        text = f"{text} + {constant:.6g}" if text else f"{constant:.6g}"
+    pieces = [(factor, f" * '{name}'") for factor, name in parts if abs(factor) > 1e-9 * largest]
+    if abs(constant) > 1e-9 * largest or not pieces:
+        pieces.append((constant, ""))
+    text = f"{pieces[0][0]:.6g}{pieces[0][1]}"
+    for value, what in pieces[1:]:
+        text += f" {'-' if value < 0 else '+'} {abs(value):.6g}{what}"
     return f"'{names[j]}' = {text}"
 
 
+def runaway_terms(step: np.ndarray) -> list[int]:
+    """Term indices (0-based) whose last IRLS step still moved the estimate per sd by RUNAWAY_STEP or more.
+
+    At convergence a step is tiny; under separation the likelihood keeps rising along a direction,
+    each step adds about as much as the one before, and only the change in deviance becomes small.
+    """
+    largest = float(np.abs(step[1:]).max(initial=0.0))
+    moving = [j for j in range(len(step) - 1) if abs(step[j + 1]) >= max(RUNAWAY_STEP, largest / 10)]
+    return sorted(moving, key=lambda j: -abs(step[j + 1]))[:RUNAWAY_TERMS]
+
+
 def separation(
-    family: Family, boundary_rows: int, names: Sequence[str], standardized: np.ndarray, statistic: np.ndarray | None
+    family: Family, boundary_rows: int, names: Sequence[str], terms: list[int], standardized: np.ndarray, statistic: np.ndarray | None
 ) -> str:
-    """The separation message naming the terms whose standardized estimates are largest."""
-    order = np.argsort(-np.abs(standardized[1:]), kind="stable")[:RUNAWAY_TERMS]
-    described = []
-    for index in order:
-        z = "" if statistic is None else f", z {statistic[index + 1]:.2f}"
-        described.append(f"'{names[index]}' (estimate per sd {standardized[index + 1]:.3g}{z})")
+    """Explain estimates that run away (`terms`) or fitted values at the boundary of the family."""
     if family.name == "binomial":
-        what = f"{boundary_rows} training rows have fitted probabilities within 1e-10 of 0 or 1"
-        cause = "complete or quasi-complete separation: some terms predict the target perfectly"
+        boundary = f"{boundary_rows} training rows have fitted probabilities within 1e-10 of 0 or 1"
+        cause = "complete or quasi-complete separation: they predict the target perfectly on some rows"
     else:
-        what = f"{boundary_rows} training rows have fitted means below 1e-10"
-        cause = "a group of rows with only zero counts"
+        boundary = f"{boundary_rows} training rows have fitted means below 1e-10"
+        cause = "they single out rows whose counts are all 0"
+    if not terms:
+        return f"{boundary}; check the terms for extreme values"
+    described = []
+    for j in terms:
+        z = "" if statistic is None else f", z {statistic[j + 1]:.2f}"
+        described.append(f"'{names[j]}' (estimate per sd {standardized[j + 1]:.3g}{z})")
+    if boundary_rows:
+        cause = f"{cause}; {boundary}"
     return (
-        f"{what} ({cause}); the estimates of {', '.join(described)} run away instead of converging. "
+        f"the estimates of {', '.join(described)} run away instead of converging ({cause}). "
         "Add an l2 penalty to the model spec (penalty: {l2: 0.01}) or drop or merge the terms that separate the target"
     )
 
 
 def not_converged(max_iter: int, change: float) -> str:
     return (
-        f"IRLS did not converge in {max_iter} iterations: the last step still changed the deviance by {change:.1e} "
+        f"IRLS did not converge within max_iter={max_iter} iterations: the last step still changed the deviance by {change:.1e} "
         "(relative); the estimates are not final. Raise max_iter, rescale terms with extreme values, or add an "
         "l2 penalty"
     )
