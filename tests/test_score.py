@@ -26,6 +26,9 @@ from featpipe.sqlgen.common import render
 from featpipe.sqlgen.score import baseline, render_score, score_query, score_statement
 
 ENGINES = ["duckdb", "sqlite", "postgres"]
+# Spark starts slowly, so it runs the one test that checks every output column.
+PARITY_CASES = [(engine, reasons) for engine in ENGINES for reasons in (0, 3)]
+PARITY_CASES.append(pytest.param("spark", 3, marks=pytest.mark.spark))
 RTOL = 1e-12
 LINK = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}
 ETA_LIMIT = 700.0  # the clamp of the inverse link (featpipe.sqlgen.metrics.ETA_LIMIT)
@@ -172,13 +175,13 @@ def assert_same_scores(actual: dict, expected: dict) -> None:
 
 @pytest.fixture(params=ENGINES)
 def engine(request, tmp_path):
-    """DuckDB and SQLite (Python's sqlite3) in memory; PostgreSQL from tests/fixtures_engines.py."""
+    """DuckDB and SQLite (Python's sqlite3) in memory; PostgreSQL and Spark from tests/fixtures_engines.py."""
     if request.param == "duckdb":
         engine = DuckDBEngine(None)
     elif request.param == "sqlite":
         engine = SQLiteEngine(None)  # registers LN/EXP/SQRT/POWER/LOG10 fallbacks only if the build lacks them
     else:
-        yield request.getfixturevalue("postgres_engine")  # skipped locally without PostgreSQL, fails in CI
+        yield request.getfixturevalue(f"{request.param}_engine")  # skipped locally when absent, fails in CI
         return
     yield engine
     engine.close()
@@ -209,7 +212,7 @@ def test_output_columns_are_key_prediction_linear_predictor_contributions_status
         "order_id", "prediction", "linear_predictor", "offset", "contribution_age", "status"]
 
 
-@pytest.mark.parametrize("reasons", [0, 3])
+@pytest.mark.parametrize(("engine", "reasons"), PARITY_CASES, indirect=["engine"])
 def test_scores_equal_numpy_on_every_engine_and_duckdb_row_by_row(engine, tmp_path, reasons):
     data = orders_data()
     fitted = orders_model()
