@@ -16,7 +16,7 @@ from .engines.base import Engine
 from .fitted import Profile
 from .sqlgen.layout import DesignLayout
 from .sqlgen.metrics import binomial_summary_query, calibration_query, regression_summary_query
-from .sqlgen.profile import moments_query, order_statistics_query, read_profiles
+from .sqlgen.profile import moments_query, order_statistics_query, read_order_statistics, read_profiles
 
 
 def holdout_metrics(
@@ -93,11 +93,14 @@ def _regression(row: tuple) -> dict:
 def training_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
     """A `Profile` per entry of `columns` (a name -> an expression over the design table, e.g. each term
     and "linear_predictor"), over every row that is not held out, complete or not: `nulls` counts that
-    column's NULLs there, the other figures describe its non-NULL values. Two queries for all columns.
+    column's NULLs there, the other figures describe its non-NULL values. Two queries for all columns:
+    the order statistics first, whose medians then centre the one-scan moments.
     Quantile rule and median: see featpipe.sqlgen.profile.
     """
     if not columns:
         return {}
-    moments = engine.fetch(moments_query(layout, columns))
-    order_statistics = engine.fetch(order_statistics_query(layout, columns))
-    return read_profiles(list(columns), moments, order_statistics)
+    names = list(columns)
+    order = read_order_statistics(names, engine.fetch(order_statistics_query(layout, columns)))
+    shifts = {name: order[name].median() or 0.0 for name in names}
+    (moments,) = engine.fetch(moments_query(layout, columns, shifts))
+    return read_profiles(names, order, moments)

@@ -1,4 +1,5 @@
-"""Holdout metrics computed in SQL, checked against scikit-learn (the reference library) on DuckDB and SQLite.
+"""Holdout metrics computed in SQL, checked against scikit-learn (the reference library) on DuckDB, SQLite
+and PostgreSQL.
 
 Each test writes an invented design table to a Parquet file, loads it into a real engine through the
 engine's own `load_file`, and compares every metric the engine computes with scikit-learn's value on
@@ -8,7 +9,6 @@ the same held-out rows, to 1e-12.
 from __future__ import annotations
 
 import math
-from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -37,6 +37,9 @@ from featpipe.sqlgen.metrics import linear_predictor, prediction
 
 TOLERANCE = 1e-12
 ENGINES = {"duckdb": DuckDBEngine, "sqlite": SQLiteEngine}
+ENGINE_KINDS = ["duckdb", "sqlite", "postgres"]
+EMBEDDED = ["duckdb", "sqlite"]  # checks of edge cases, where a throwaway PostgreSQL database per test costs more than it adds
+
 ROWS = 600
 
 BINOMIAL = DesignLayout("design_churn", "account_id", "_target", ("tenure_band", "support_calls"))
@@ -99,20 +102,35 @@ def held_out(table: pa.Table, layout: DesignLayout) -> dict[str, np.ndarray]:
     return {name: rows[name].to_numpy() for name in rows.columns}
 
 
-@pytest.fixture(scope="module", params=sorted(ENGINES))
-def engine(request, tmp_path_factory):
-    """One engine per kind, holding the three invented design tables (and one without a holdout)."""
-    folder: Path = tmp_path_factory.mktemp(request.param)
-    engine = ENGINES[request.param](None)
+def open_engine(request):
+    """An embedded engine, or PostgreSQL from the shared fixture (a throwaway server; see fixtures_engines)."""
+    if request.param == "postgres":
+        return request.getfixturevalue("postgres_engine")
+    return ENGINES[request.param](None)
+
+
+@pytest.fixture(params=ENGINE_KINDS)
+def bare_engine(request):
+    engine = open_engine(request)
+    yield engine
+    if request.param != "postgres":  # the postgres fixture closes its own engine
+        engine.close()
+
+
+@pytest.fixture(params=ENGINE_KINDS)
+def engine(request, tmp_path):
+    """A real engine holding the three invented design tables (and one without a holdout)."""
+    engine = open_engine(request)
     for layout, family, coefficients, seed in TABLES:
-        path = folder / f"{layout.table}.parquet"
+        path = tmp_path / f"{layout.table}.parquet"
         pq.write_table(invented_table(layout, family, coefficients, seed), path)
         engine.load_file(layout.table, path)
-    no_holdout = folder / "design_no_holdout.parquet"
+    no_holdout = tmp_path / "design_no_holdout.parquet"
     pq.write_table(invented_table(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 5, holdout_share=0.0), no_holdout)
     engine.load_file("design_no_holdout", no_holdout)
     yield engine
-    engine.close()
+    if request.param != "postgres":  # the postgres fixture closes its own engine
+        engine.close()
 
 
 def reference_rows(layout, family, coefficients, seed):
@@ -189,11 +207,13 @@ def test_count_and_measurement_metrics_match_scikit_learn(engine, layout, family
     assert_calibration(metrics["calibration"], reference_calibration(rows, layout, mu))
 
 
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
 def test_metrics_are_identical_when_computed_again(engine):
     first = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
     assert holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5) == first
 
 
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
 def test_undefined_ratios_are_none(engine):
     # A threshold no probability reaches: no predicted events, so precision has no denominator.
     metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.999)
@@ -203,6 +223,7 @@ def test_undefined_ratios_are_none(engine):
     assert metrics["accuracy"] == pytest.approx(1 - rows[BINOMIAL.target].mean(), rel=TOLERANCE)
 
 
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
 def test_a_threshold_equal_to_the_probability_predicts_an_event(engine):
     # All coefficients 0: every probability is exactly 1 / (1 + EXP(0)) = 0.5, all tied.
     flat = {name: 0.0 for name in BINOMIAL_COEFFICIENTS}
@@ -215,6 +236,7 @@ def test_a_threshold_equal_to_the_probability_predicts_an_event(engine):
     assert metrics["brier"] == 0.25
 
 
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
 def test_no_holdout_rows_give_only_the_row_count(engine):
     layout = DesignLayout("design_no_holdout", BINOMIAL.key, BINOMIAL.target, BINOMIAL.terms)
     assert holdout_metrics(engine, layout, "binomial", BINOMIAL_COEFFICIENTS, 0.5) == {"rows": 0}
@@ -231,17 +253,14 @@ def test_linear_predictor_writes_exact_literals_and_the_offset():
         linear_predictor(POISSON, {INTERCEPT: 0.1, "engine_litres": 1.0})
 
 
-@pytest.mark.parametrize("kind", sorted(ENGINES))
-def test_prediction_is_finite_for_extreme_linear_predictors(kind):
+def test_prediction_is_finite_for_extreme_linear_predictors(bare_engine):
     """EXP is clamped at +-700 (EXP(1000) is inf on DuckDB and an error on PostgreSQL, SQL-NOTES)."""
-    engine = ENGINES[kind](None)
     eta = {"high": number(1000.0), "low": number(-1000.0), "mid": number(0.5)}
     query = exp.select(*(
         alias(prediction(family, value), f"{family}_{name}")
         for family in ("binomial", "poisson", "gaussian") for name, value in eta.items()
     ))
-    (row,) = engine.fetch(query)
-    engine.close()
+    (row,) = bare_engine.fetch(query)
     # Expected values from Python's math library.
     assert row == pytest.approx((
         1.0, 1 / (1 + math.exp(700)), 1 / (1 + math.exp(-0.5)),

@@ -1,4 +1,4 @@
-"""Training profiles computed in SQL, checked against numpy on DuckDB and SQLite.
+"""Training profiles computed in SQL, checked against numpy on DuckDB, SQLite and PostgreSQL.
 
 Reference: numpy's quantile with method="inverted_cdf" (the order statistic at ceil(q n)), np.median,
 np.std(ddof=1), and bin counts from np.searchsorted (side="left" puts v in bin i when
@@ -8,15 +8,12 @@ be exact; mean and sd (sums in a different order) to 1e-12.
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.engines.sqlite import SQLiteEngine
 from featpipe.fitted import INTERCEPT, Profile
 from featpipe.metrics import training_profiles
 from featpipe.sqlgen.common import column
@@ -24,7 +21,8 @@ from featpipe.sqlgen.layout import DesignLayout
 from featpipe.sqlgen.metrics import linear_predictor
 from featpipe.sqlgen.profile import decile_rank
 
-ENGINES = {"duckdb": DuckDBEngine, "sqlite": SQLiteEngine}
+from test_metrics import EMBEDDED, ENGINE_KINDS, open_engine  # the engines every SQL test runs on
+
 ROWS = 537
 LAYOUT = DesignLayout(
     "design_leases", "lease_id", "_target",
@@ -53,15 +51,16 @@ def invented_design() -> dict[str, np.ndarray]:
     }
 
 
-@pytest.fixture(scope="module", params=sorted(ENGINES))
-def engine(request, tmp_path_factory):
-    path: Path = tmp_path_factory.mktemp(request.param) / "design.parquet"
+@pytest.fixture(params=ENGINE_KINDS)
+def engine(request, tmp_path):
+    path = tmp_path / "design.parquet"
     data = invented_design()
     pq.write_table(pa.table({name: pa.array(values, from_pandas=True) for name, values in data.items()}), path)
-    engine = ENGINES[request.param](None)
+    engine = open_engine(request)
     engine.load_file(LAYOUT.table, path)
     yield engine
-    engine.close()
+    if request.param != "postgres":  # the postgres fixture closes its own engine
+        engine.close()
 
 
 def reference_profile(values: np.ndarray) -> Profile:
@@ -120,6 +119,7 @@ def test_linear_predictor_profile_matches_numpy(engine):
     assert_profile(profiles["linear_predictor"], reference_profile(eta[training]))
 
 
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
 def test_profiles_are_identical_when_computed_again(engine):
     columns = {name: column(name) for name in LAYOUT.terms}
     assert training_profiles(engine, LAYOUT, columns) == training_profiles(engine, LAYOUT, columns)

@@ -2,49 +2,44 @@
 
 The rows profiled are the design table's rows that are not held out, including rows a fit drops for
 a NULL elsewhere: a term's NULL count is then the NULLs of that term among the training-side rows.
-All columns are stacked with UNION ALL into (name, key, value) rows, so one query serves any number
-of columns:
 
-- `moments_query`: per column the non-NULL count, NULL count, sum, min, max and the sum of squared
-  deviations from the column's mean (two-pass, so the sample sd has no cancellation).
-- `order_statistics_query`: per column only the rows at the ranks the deciles and the median need,
-  with the number of values at or below each (ties included), which gives the bin shares.
+- `order_statistics_query`: all columns stacked with UNION ALL into (name, value) rows, counted per
+  distinct value and accumulated in value order; only the values holding the ranks the deciles and
+  the median need come back, each with the number of values at or below it, which gives the bin shares.
+- `moments_query`: one scan; per column the non-NULL count, NULL count, sum, min, max and the sums
+  of (x - median) and its square, from which the sample sd (n - 1) follows without cancellation.
 
 Quantiles follow the inverted empirical CDF (numpy's method="inverted_cdf"): the q-quantile of n
 sorted values is the value at rank ceil(q * n). For the k-th decile that rank is the smallest r with
 10 r >= k n, tested in SQL with integer arithmetic only, so no engine's CEIL or division rules
 matter. The median is the usual one: the mean of the values at ranks floor((n + 1) / 2) and
-ceil((n + 1) / 2). Ranks come from ROW_NUMBER ordered by value, then key, so they are the same on
-every run and engine; the values at a rank do not depend on how ties are ordered.
+ceil((n + 1) / 2). Equal deciles collapse into one edge; bin i holds edges[i-1] < v <= edges[i].
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from functools import reduce
 
 from sqlglot import exp
 
 from ..fitted import Profile
-from .common import alias, column, double
+from .common import alias, column, double, number
 from .layout import DesignLayout
 
 DECILES = range(1, 10)
-NAME, KEY, VALUE, MEAN = "_name", "_key", "_value", "_mean"
-RANK, COUNT, AT_OR_BELOW = "_rank", "_n", "_at_or_below"
+NAME, VALUE = "_name", "_value"
+ROWS, AT_OR_BELOW, COUNT = "_rows", "_at_or_below", "_n"
 
 
 def profile_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Query:
-    """(name, key, value as DOUBLE) of every not-held-out row, for each column, stacked with UNION ALL."""
+    """(name, value as DOUBLE) of every not-held-out row, for each column, stacked with UNION ALL."""
     if not columns:
         raise ValueError("no columns to profile")
     branches = [
-        exp.select(
-            alias(exp.Literal.string(name), NAME),
-            alias(column(layout.key), KEY),
-            alias(double(expression.copy()), VALUE),
-        )
+        exp.select(alias(exp.Literal.string(name), NAME), alias(double(expression.copy()), VALUE))
         .from_(exp.to_table(layout.table))
         .where(exp.not_(column(layout.holdout)))
         for name, expression in columns.items()
@@ -52,78 +47,87 @@ def profile_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) 
     return reduce(lambda left, right: exp.union(left, right, distinct=False), branches)
 
 
-def moments_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
-    """Per column: name, count (non-NULL), nulls, sum, min, max, sum of squared deviations from the mean."""
-    value = column(VALUE)
-    mean = exp.Window(this=exp.Avg(this=column(VALUE)), partition_by=[column(NAME)])
-    centred = exp.select(column(NAME), column(VALUE), alias(mean, MEAN)).from_(
-        profile_values(layout, columns).subquery("_values")
-    )
-    deviation = exp.Paren(this=exp.Sub(this=value.copy(), expression=column(MEAN)))
-    return (
-        exp.select(
-            column(NAME),
-            alias(exp.Count(this=value.copy()), "count"),
-            alias(exp.Sub(this=exp.Count(this=exp.Star()), expression=exp.Count(this=value.copy())), "nulls"),
-            alias(exp.Sum(this=value.copy()), "sum"),
-            alias(exp.Min(this=value.copy()), "min"),
-            alias(exp.Max(this=value.copy()), "max"),
-            alias(exp.Sum(this=exp.Mul(this=deviation, expression=deviation.copy())), "squares"),
-        )
-        .from_(centred.subquery("_centred"))
-        .group_by(column(NAME))
-        .order_by(column(NAME))
-    )
-
-
 def order_statistics_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
-    """Per column, the non-NULL values at the decile and median ranks: name, rank, n, value, at-or-below count."""
-    by_name = [column(NAME)]
-    by_value = exp.Order(expressions=[exp.Ordered(this=column(VALUE))])
-    by_value_then_key = exp.Order(expressions=[exp.Ordered(this=column(VALUE)), exp.Ordered(this=column(KEY))])
-    peers_and_below = exp.WindowSpec(kind="RANGE", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW")
-    ranked = (
-        exp.select(
-            column(NAME),
-            column(VALUE),
-            alias(exp.Window(this=exp.RowNumber(), partition_by=by_name, order=by_value_then_key), RANK),
-            alias(exp.Window(this=exp.Count(this=exp.Star()), partition_by=[column(NAME)]), COUNT),
-            alias(exp.Window(this=exp.Count(this=exp.Star()), partition_by=[column(NAME)], order=by_value,
-                             spec=peers_and_below), AT_OR_BELOW),
-        )
+    """Per column, the distinct non-NULL values that hold a decile or median rank, in value order:
+    name, value, rows with that value, rows at or below it, and n.
+
+    Equal values are grouped first, so a column with few distinct values (an indicator, a count, a
+    binned term) ranks only those, and the ranking is a total order: the same on every run and engine.
+    A value with `rows` r and `at_or_below` c holds the ranks c - r + 1 to c.
+    """
+    counted = (
+        exp.select(column(NAME), column(VALUE), alias(exp.Count(this=exp.Star()), ROWS))
         .from_(profile_values(layout, columns).subquery("_values"))
         .where(column(VALUE).is_(exp.null()).not_())
+        .group_by(column(NAME), column(VALUE))
     )
+    running = exp.WindowSpec(kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW")
+    by_value = exp.Order(expressions=[exp.Ordered(this=column(VALUE))])
+    cumulative = exp.select(
+        column(NAME),
+        column(VALUE),
+        column(ROWS),
+        alias(exp.Window(this=exp.Sum(this=column(ROWS)), partition_by=[column(NAME)], order=by_value, spec=running),
+              AT_OR_BELOW),
+        alias(exp.Window(this=exp.Sum(this=column(ROWS)), partition_by=[column(NAME)]), COUNT),
+    ).from_(counted.subquery("_counted"))
     return (
-        exp.select(column(NAME), column(RANK), column(COUNT), column(VALUE), column(AT_OR_BELOW))
-        .from_(ranked.subquery("_ranked"))
-        .where(exp.or_(*(_is_decile_rank(k) for k in DECILES), _is_median_rank()))
-        .order_by(column(NAME), column(RANK))
+        exp.select(column(NAME), column(VALUE), column(ROWS), column(AT_OR_BELOW), column(COUNT))
+        .from_(cumulative.subquery("_cumulative"))
+        .where(exp.or_(*(_holds_decile(k) for k in DECILES), _holds_median()))
+        .order_by(column(NAME), column(VALUE))
     )
+
+
+def moments_query(layout: DesignLayout, columns: Mapping[str, exp.Expression], shifts: Mapping[str, float]) -> exp.Select:
+    """One scan of the not-held-out rows; per column (in order) seven values: count (non-NULL), nulls,
+    sum, sum of (x - shift), sum of (x - shift)^2, min, max.
+
+    With the median as shift the sample variance from the shifted sums keeps its digits, because the
+    mean lies within one standard deviation of the median.
+    """
+    projections = []
+    for name, expression in columns.items():
+        value = double(expression.copy())
+        shifted = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(shifts[name])))
+        projections += [
+            exp.Count(this=value.copy()),
+            exp.Sub(this=exp.Count(this=exp.Star()), expression=exp.Count(this=value.copy())),
+            exp.Sum(this=value.copy()),
+            exp.Sum(this=shifted),
+            exp.Sum(this=exp.Mul(this=shifted.copy(), expression=shifted.copy())),
+            exp.Min(this=value.copy()),
+            exp.Max(this=value),
+        ]
+    return exp.select(*projections).from_(exp.to_table(layout.table)).where(exp.not_(column(layout.holdout)))
 
 
 def _integer(value: int) -> exp.Literal:
     return exp.Literal.number(value)
 
 
-def _times(factor: int, name: str) -> exp.Mul:
-    return exp.Mul(this=_integer(factor), expression=column(name))
+def _times(factor: int, expression: exp.Expression) -> exp.Mul:
+    return exp.Mul(this=_integer(factor), expression=expression)
 
 
-def _is_decile_rank(k: int) -> exp.Expression:
-    """rank = ceil(k n / 10), as 10 rank >= k n AND 10 (rank - 1) < k n."""
-    previous = exp.Paren(this=exp.Sub(this=column(RANK), expression=_integer(1)))
+def _below() -> exp.Expression:
+    """Rows strictly below the value: at_or_below - rows."""
+    return exp.Paren(this=exp.Sub(this=column(AT_OR_BELOW), expression=column(ROWS)))
+
+
+def _holds_decile(k: int) -> exp.Expression:
+    """The value holds rank ceil(k n / 10): 10 below < k n <= 10 at_or_below."""
     return exp.Paren(this=exp.and_(
-        exp.GTE(this=_times(10, RANK), expression=_times(k, COUNT)),
-        exp.LT(this=exp.Mul(this=_integer(10), expression=previous), expression=_times(k, COUNT)),
+        exp.LT(this=_times(10, _below()), expression=_times(k, column(COUNT))),
+        exp.LTE(this=_times(k, column(COUNT)), expression=_times(10, column(AT_OR_BELOW))),
     ))
 
 
-def _is_median_rank() -> exp.Expression:
-    """rank is floor((n + 1) / 2) or ceil((n + 1) / 2), as n <= 2 rank <= n + 2."""
+def _holds_median() -> exp.Expression:
+    """The value holds rank floor((n + 1) / 2) or ceil((n + 1) / 2): 2 below <= n <= 2 at_or_below."""
     return exp.Paren(this=exp.and_(
-        exp.GTE(this=_times(2, RANK), expression=column(COUNT)),
-        exp.LTE(this=_times(2, RANK), expression=exp.Add(this=column(COUNT), expression=_integer(2))),
+        exp.LTE(this=_times(2, _below()), expression=column(COUNT)),
+        exp.LTE(this=column(COUNT), expression=_times(2, column(AT_OR_BELOW))),
     ))
 
 
@@ -132,41 +136,70 @@ def decile_rank(k: int, n: int) -> int:
     return (k * n + 9) // 10
 
 
-def read_profiles(names: Sequence[str], moments: Sequence[tuple], order_statistics: Sequence[tuple]) -> dict[str, Profile]:
-    """A `Profile` per name, in the order of `names`, from the rows of the two queries above.
+@dataclass(frozen=True)
+class OrderStatistics:
+    """The values of one column that hold the decile and median ranks (n = 0 without values)."""
+
+    n: int
+    values: tuple[tuple[float, int, int], ...] = ()  # (value, rows below it, rows at or below it), ascending
+
+    def at(self, rank: int) -> tuple[float, int]:
+        """The value at `rank` (1-based) and the count of values at or below it."""
+        for value, below, at_or_below in self.values:
+            if below < rank <= at_or_below:
+                return value, at_or_below
+        raise ValueError(f"rank {rank} of {self.n} was not selected")
+
+    def median(self) -> float | None:
+        if self.n == 0:
+            return None
+        return (self.at((self.n + 1) // 2)[0] + self.at((self.n + 2) // 2)[0]) / 2
+
+
+def read_order_statistics(names: Sequence[str], rows: Sequence[tuple]) -> dict[str, OrderStatistics]:
+    """Per name, its `OrderStatistics` from the rows of `order_statistics_query`."""
+    counts = {name: 0 for name in names}
+    values: dict[str, list[tuple[float, int, int]]] = {name: [] for name in names}
+    for name, value, rows_with_value, at_or_below, n in rows:
+        counts[name] = int(n)
+        values[name].append((float(value), int(at_or_below) - int(rows_with_value), int(at_or_below)))
+    return {name: OrderStatistics(counts[name], tuple(values[name])) for name in names}
+
+
+def read_profiles(names: Sequence[str], order: Mapping[str, OrderStatistics], moments: Sequence) -> dict[str, Profile]:
+    """A `Profile` per name, in the order of `names`, from the order statistics and `moments_query`'s row.
 
     A column with no non-NULL value has None for mean, sd, min, max and median and no edges or
     shares; the sample sd of a single value is None.
     """
-    at_rank: dict[str, dict[int, tuple[float, int]]] = {name: {} for name in names}
-    for name, rank, _, value, at_or_below in order_statistics:
-        at_rank[name][int(rank)] = (float(value), int(at_or_below))
     profiles = {}
-    for name, count, nulls, total, low, high, squares in moments:
-        profiles[name] = _profile(int(count), int(nulls), total, low, high, squares, at_rank[name])
-    return {name: profiles[name] for name in names}
+    for index, name in enumerate(names):
+        count, nulls, total, shifted, squares, low, high = moments[7 * index : 7 * index + 7]
+        profiles[name] = _profile(int(count), int(nulls), total, shifted, squares, low, high, order[name])
+    return profiles
 
 
-def _profile(n: int, nulls: int, total, low, high, squares, at_rank: dict[int, tuple[float, int]]) -> Profile:
+def _profile(n: int, nulls: int, total, shifted, squares, low, high, order: OrderStatistics) -> Profile:
     if n == 0:
         return Profile(count=0, nulls=nulls, mean=None, sd=None, min=None, max=None, median=None, edges=(), shares=())
-    lower, upper = at_rank[(n + 1) // 2][0], at_rank[(n + 2) // 2][0]
     edges: list[float] = []
     at_or_below: list[int] = []
     for k in DECILES:
-        value, below = at_rank[decile_rank(k, n)]
+        value, below = order.at(decile_rank(k, n))
         if not edges or value != edges[-1]:
             edges.append(value)
             at_or_below.append(below)
     counts = [b - a for a, b in zip([0, *at_or_below], [*at_or_below, n])]
+    offset = float(shifted) / n
+    variance = max(float(squares) - n * offset * offset, 0.0) / (n - 1) if n > 1 else None
     return Profile(
         count=n,
         nulls=nulls,
         mean=float(total) / n,
-        sd=math.sqrt(float(squares) / (n - 1)) if n > 1 else None,
+        sd=math.sqrt(variance) if variance is not None else None,
         min=float(low),
         max=float(high),
-        median=(lower + upper) / 2,
+        median=order.median(),
         edges=tuple(edges),
         shares=tuple(c / n for c in counts),
     )
