@@ -18,11 +18,13 @@ from __future__ import annotations
 import json
 import tempfile
 from dataclasses import asdict, dataclass
+from functools import lru_cache
 from pathlib import Path, PurePosixPath
 from typing import ClassVar
 
 import sqlglot
-from sqlglot.tokens import TokenType
+from sqlglot.errors import TokenError
+from sqlglot.tokens import Token, TokenType
 
 from .compiler import CompiledModel, CompiledProject, Term, compile_project
 from .compiler.canonical import canonical_sql
@@ -334,9 +336,8 @@ def written_form(source: str, line: int, col: int) -> WrittenForm | None:
     >>> written_form("SELECT\\n  a  +  b AS s,\\n  c AS t\\nFROM x", 2, 14).text
     'a  +  b AS s'
     """
-    try:
-        tokens = sqlglot.Dialect.get_or_raise(TERM_DIALECT).tokenize(source)
-    except sqlglot.errors.TokenError:
+    tokens = _tokens(source)
+    if tokens is None:
         return None
     lines = source.split("\n")
     offset = sum(len(text) + 1 for text in lines[: line - 1]) + col - 1
@@ -359,6 +360,15 @@ def written_form(source: str, line: int, col: int) -> WrittenForm | None:
         tokens=tuple((token.token_type.name, token.text) for token in span),
         comments=tuple(comment for token in span[1:] for comment in token.comments),
     )
+
+
+@lru_cache(maxsize=64)
+def _tokens(source: str) -> tuple[Token, ...] | None:
+    """A term file's tokens, read once per file however many terms it holds."""
+    try:
+        return tuple(sqlglot.Dialect.get_or_raise(TERM_DIALECT).tokenize(source))
+    except TokenError:
+        return None
 
 
 def _text_aspects(before: Term, after: Term, old: WrittenForm | None, new: WrittenForm | None) -> tuple[str, ...]:

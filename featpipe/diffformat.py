@@ -107,8 +107,8 @@ def model_detail(change: ModelChange, quote: Quote) -> str:
 
 
 def stale_detail(fit: StaleFit, short: str) -> str:
-    whose = "this change left it stale" if fit.caused_by_change else f"already stale at {short}"
-    return f"{'; '.join(fit.reasons)} ({whose})"
+    whose = "left stale by this change" if fit.caused_by_change else f"already stale at {short}"
+    return f"{'; '.join(fit.reasons)}; {whose}"
 
 
 def value_lines(fit: FitChange) -> list[tuple[str, ValueChange | str]]:

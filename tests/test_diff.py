@@ -131,6 +131,20 @@ def test_comment_edits_are_text_changes(tmp_path):
     assert data["stale"] == [] and data["edited_files"] == []
 
 
+def test_moving_a_term_to_another_file_keeps_its_meaning(tmp_path):
+    project = committed_project(tmp_path)
+    edit(project, "terms/basket.sql", "  CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern\n", "")
+    edit(project, "terms/basket.sql", "AS item_price,", "AS item_price")
+    (project / "terms" / "where.sql").write_text("SELECT\n  CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern\nFROM orders\n")
+    change, text, markdown, data = diff_all(project)
+
+    assert "  text changed  northern  terms/where.sql:2  same meaning; moved from terms/basket.sql; in models: returns" in text
+    assert "| text changed | `northern` | `terms/where.sql:2` | same meaning; moved from terms/basket.sql; in models: `returns` |" in markdown
+    (term,) = data["terms"]
+    assert term["aspects"] == ["file"] and (term["old_file"], term["old_line"]) == ("terms/basket.sql", 5)
+    assert data["stale"] == [] and data["edited_files"] == []
+
+
 def test_file_comment_edit_changes_no_term(tmp_path):
     project = committed_project(tmp_path)
     edit(project, "terms/basket.sql", "-- Terms about the basket.", "-- Terms about the basket and where it goes.")
@@ -154,7 +168,8 @@ def test_semantic_edit_reports_both_sqls_and_the_stale_fit(tmp_path):
         f"      now     {new_sql}",
     ]
     assert "  returns  terms changed meaning: item_price" in text
-    assert ("  fitted/returns.yaml  term 'item_price' changed meaning (this change left it stale)") in text
+    assert "  fitted/returns.yaml  term 'item_price' changed meaning; left stale by this change" in text
+    assert "- `fitted/returns.yaml`: term 'item_price' changed meaning; left stale by this change" in markdown
     assert text[-1] == "1 fitted model left stale by this change (returns): run `featpipe fit` and commit the fitted files"
     assert "| meaning changed | `item_price` | `terms/basket.sql:4` | changed directly; in models: `returns` |" in markdown
     assert f"| `item_price` | `{old_sql}` | `{new_sql}` |" in markdown
@@ -253,6 +268,22 @@ def test_refit_calls_out_sign_flips_and_moves_outside_the_old_interval(tmp_path)
     assert fit["metrics"][2] == {"path": "calibration[0].mean_predicted", "old": 0.35, "new": 0.375,
                                  "delta": pytest.approx(0.025)}
     assert fit["rows"][0] == {"path": "train", "old": 6, "new": 5, "delta": -1}
+
+
+def test_a_fit_already_stale_at_the_revision_is_not_this_changes_doing(tmp_path):
+    project = committed_project(tmp_path)
+    edit(project, "terms/basket.sql", "NULLIF(items, 0)", "NULLIF(items, 1)")
+    git(project, "commit", "--quiet", "-am", "Divide by one item at least, without refitting")
+    edit(project, "terms/basket.sql", "-- Terms about the basket.", "-- Terms about an order's basket.")
+    change, text, markdown, data = diff_all(project, since="HEAD")
+
+    short = change.since.short
+    assert data["stale"] == [{"model": "returns", "file": "fitted/returns.yaml",
+                              "reasons": ["term 'item_price' changed meaning"], "caused_by_change": False}]
+    assert data["left_stale"] == [] and change.left_stale == ()
+    assert f"  fitted/returns.yaml  term 'item_price' changed meaning; already stale at {short}" in text
+    assert f"- `fitted/returns.yaml`: term 'item_price' changed meaning; already stale at {short}" in markdown
+    assert not any(line.startswith("**") for line in markdown)  # no stale banner: this change is not to blame
 
 
 def test_default_revision_is_the_merge_base_with_main(tmp_path):
