@@ -39,6 +39,7 @@ ROWS = [
     (11, 2147483647, 2, 2147483647.5, 1e-10, True, "n"),
     (12, -4, 3, -8.0, 0.5, None, "q"),
     (13, 12, 5, 127.5, 1.0, False, "South"),
+    (14, 6, 4, 1e17, 0.25, True, "z"),
 ]
 
 # (term as written in a term file, whether its value is boolean)
@@ -117,6 +118,7 @@ EXPECTED = {
     ("ROUND(x)", 10): 0.0,  # 0.49999999999999994 -> 0 (adding 0.5 first would give 1)
     ("ROUND(x, 2)", 7): 2.68,  # 2.675 * 100 is exactly 267.5 in DOUBLE, rounded up
     ("ROUND(x * 1000, -2)", 7): 2700.0,  # 2675 -> 2700
+    ("ROUND(x, 2)", 14): 1e17,  # already whole: kept as it is, never floored
     ("CAST(x AS INTEGER)", 1): 2.0,  # 2.5 -> 2, ties to even as DuckDB and PostgreSQL (SQLite: 2 by truncation)
     ("CAST(x AS INTEGER)", 9): 4.0,  # 3.5 -> 4 (SQLite and Spark truncate to 3)
     ("CAST(x AS INTEGER)", 8): -2.0,  # -2.5 -> -2
@@ -252,8 +254,10 @@ NATIVE_DIFFERS = {
     # ROUND rounds the DOUBLE product 2.675 * 100, which is exactly 267.5, up.
     ("ROUND(x, 2)", 7): 2.68,
     ("x % y", 11): None,  # |x / y| ~ 2e19 >= 2^52: no digits of the remainder are left
+    ("x % y", 14): None,  # |x / y| = 4e17 >= 2^52
     ("EXP(x)", 4): math.exp(700), ("EXP(x)", 6): math.exp(-700), ("EXP(x)", 11): math.exp(700),
     ("EXP(-x)", 4): math.exp(-700), ("EXP(-x)", 6): math.exp(700), ("EXP(-x)", 11): math.exp(-700),
+    ("EXP(x)", 14): math.exp(700), ("EXP(-x)", 14): math.exp(-700),
 }
 # LN(x) / LN(10) instead of LOG10, and DOUBLE instead of DuckDB's exact DECIMAL literal 0.3.
 LAST_DIGITS = {"LOG10(x)", "LOG(2, x)", "LOG(y, x)", "-a * 0.3"}
@@ -306,3 +310,23 @@ def test_substituted_trees_keep_their_precedence():
     hardened = harden(sqlglot.parse_one("2 * (a % b) - ROUND(x) * 3", dialect="duckdb"))
     reparsed = sqlglot.parse_one(hardened.sql(dialect="duckdb"), dialect="duckdb")
     assert isinstance(reparsed, exp.Sub) and isinstance(reparsed.this, exp.Mul) and isinstance(reparsed.expression, exp.Mul)
+
+
+def test_boolean_columns_come_from_the_schema_or_from_sqlglot_types():
+    # PostgreSQL cannot CAST a BOOLEAN to DOUBLE, so a boolean column must become 1.0/0.0 (SQL-NOTES).
+    one_zero = 'CASE WHEN "Flag" THEN CAST(1.0 AS DOUBLE) WHEN NOT ("Flag") THEN CAST(0.0 AS DOUBLE) END * CAST(2 AS DOUBLE)'
+    parsed = sqlglot.parse_one('"Flag" * 2', dialect="duckdb")
+    assert render(harden(parsed, {"flag": "BOOLEAN"}), "duckdb", pretty=False) == one_zero  # names match without case
+    typed = parsed.copy()
+    typed.find(exp.Column).type = "BOOLEAN"  # as sqlglot's annotate_types leaves it
+    assert render(harden(typed), "duckdb", pretty=False) == one_zero
+    assert render(harden(parsed), "duckdb", pretty=False) == 'CAST("Flag" AS DOUBLE) * CAST(2 AS DOUBLE)'
+
+
+def test_as_number_casts_only_what_is_not_a_double_yet():
+    ratio = harden(sqlglot.parse_one("a / b", dialect="duckdb"))
+    assert as_number(ratio, False).sql(dialect="duckdb") == ratio.sql(dialect="duckdb")
+    indicator = harden(sqlglot.parse_one("CASE WHEN a < 2 THEN 1 ELSE 0 END", dialect="duckdb"))
+    assert as_number(indicator, False).sql(dialect="duckdb") == "CAST(CASE WHEN a < 2 THEN 1 ELSE 0 END AS DOUBLE)"
+    assert as_number(column("young"), True).sql(dialect="duckdb") == (
+        'CASE WHEN "young" THEN CAST(1.0 AS DOUBLE) WHEN NOT ("young") THEN CAST(0.0 AS DOUBLE) END')

@@ -27,9 +27,10 @@ raise an error, it gives NULL (EXP saturates instead):
 - IF becomes CASE. Identifiers and their quoting are kept as given.
 
 Not covered: overflow beyond +-1.8e308 in +, -, *, / and POWER (DuckDB gives inf, PostgreSQL raises),
-casts of malformed text to numbers, CAST of a number to text ('1.0' or '1'), and LOWER/UPPER of
-non-ASCII letters (SQLite changes ASCII only). Arguments that need a guard are repeated inside it,
-so deeply nested guarded functions grow the SQL.
+FLOOR/CEIL written in a term beyond +-9.2e18 (Spark's BIGINT result saturates), casts of malformed
+text to numbers, CAST of a number to text ('1.0' or '1'), LOWER/UPPER of non-ASCII letters (SQLite
+changes ASCII only), and the last digit of EXP/POWER on Spark (Java's math library). Arguments that
+need a guard are repeated inside it, so deeply nested guarded functions grow the SQL.
 
 Example:
     >>> import sqlglot
@@ -48,7 +49,7 @@ from sqlglot import exp
 from .common import double, number
 
 NUMBER, TRUTH, VALUE = "number", "truth", "value"  # how the parent uses a node's value
-MOD_LIMIT = 2.0**52  # from here on a DOUBLE quotient has no fractional digits left
+WHOLE = 2.0**52  # from here on every DOUBLE is a whole number
 EXP_LIMIT = 700.0  # EXP(700) ~ 1e304 and EXP(-700) ~ 1e-304 are finite, normal DOUBLEs everywhere
 _INTEGER_RANGE = {  # values that round into the type: [min - 0.5, max + 0.5), exact in DOUBLE
     exp.DataType.Type.TINYINT: (-128.5, 127.5),
@@ -83,6 +84,7 @@ def as_number(expression: exp.Expression, is_boolean: bool) -> exp.Expression:
 class _Hardening:
     def __init__(self, types: dict[str, exp.DataType]):
         self.types = types
+        self.folded = {name.lower(): kind for name, kind in types.items()}  # trees may hold normalized names
 
     def rewrite(self, node: exp.Expression, context: str) -> exp.Expression:
         if isinstance(node, exp.Paren):
@@ -100,11 +102,12 @@ class _Hardening:
             return _divide(self.number(node.this), self.number(node.expression))
         if isinstance(node, exp.Mod):
             return self.modulo(node)
-        if isinstance(node, (exp.Abs, exp.Floor, exp.Ceil)):
-            return type(node)(this=self.number(node.this))
-        if isinstance(node, exp.Sign):
-            signed = exp.Sign(this=self.number(node.this))  # INTEGER in SQLite
-            return double(signed) if context == NUMBER else signed
+        if isinstance(node, exp.Abs):
+            return exp.Abs(this=self.number(node.this))
+        if isinstance(node, (exp.Sign, exp.Floor, exp.Ceil)):
+            # SIGN is an INTEGER in SQLite, FLOOR and CEIL a BIGINT in Spark (so a sum of them would be too)
+            whole = type(node)(this=self.number(node.this))
+            return double(whole) if context == NUMBER else whole
         if isinstance(node, exp.Ln):
             return exp.Ln(this=_positive(self.number(node.this)))
         if isinstance(node, exp.Log):
@@ -181,7 +184,7 @@ class _Hardening:
         return isinstance(node, (exp.Lower, exp.Upper, exp.Trim))
 
     def column_type(self, column: exp.Column) -> exp.DataType | None:
-        declared = self.types.get(column.name)
+        declared = self.types.get(column.name) or self.folded.get(column.name.lower())
         if declared is None and column.type is not None and not column.type.is_type(exp.DataType.Type.UNKNOWN):
             declared = column.type
         return declared
@@ -235,7 +238,7 @@ class _Hardening:
         quotient = _divide(dividend.copy(), divisor.copy())
         whole = exp.Mul(this=exp.Sign(this=quotient.copy()), expression=exp.Floor(this=exp.Abs(this=quotient.copy())))
         remainder = exp.Sub(this=_operand(dividend), expression=exp.Mul(this=_operand(divisor), expression=_operand(whole)))
-        resolved = exp.LT(this=exp.Abs(this=quotient), expression=number(MOD_LIMIT))
+        resolved = exp.LT(this=exp.Abs(this=quotient), expression=number(WHOLE))
         return exp.Case(ifs=[exp.If(this=resolved, true=remainder)])
 
     def logarithm(self, node: exp.Log) -> exp.Expression:
@@ -377,7 +380,7 @@ def _clamped(value: exp.Expression) -> exp.Expression:
 
 
 def _power(base: exp.Expression, exponent: exp.Expression) -> exp.Expression:
-    """POWER, NULL where the result is not a real number or is infinite (a < 0 with b fractional, 0 to b < 0)."""
+    """POWER, NULL where the result is not a real number (a < 0, b fractional) or infinite (0 to b < 0)."""
     known_base, known_exponent = _literal_value(base), _literal_value(exponent)
     zero = exp.Literal.number(0)
     if known_base is not None and known_base > 0:
@@ -401,7 +404,10 @@ def _power(base: exp.Expression, exponent: exp.Expression) -> exp.Expression:
 
 
 def _round_half_away(value: exp.Expression, digits: int) -> exp.Expression:
-    """SIGN(x) * (|x| scaled, rounded half up) unscaled: exact, as ROUND in DuckDB and SQLite."""
+    """SIGN(x) * (|x| * 10^digits rounded half up) / 10^digits, exact on that scaled DOUBLE.
+
+    From 2^52 on a DOUBLE is whole already and is kept as it is (so Spark never floors it into a BIGINT).
+    """
     size = exp.Abs(this=value.copy())
     if digits > 0:
         size = exp.Mul(this=size, expression=number(10.0**digits))
@@ -409,7 +415,8 @@ def _round_half_away(value: exp.Expression, digits: int) -> exp.Expression:
         size = _quotient(size, number(10.0**-digits))
     fraction = exp.Sub(this=_operand(size.copy()), expression=exp.Floor(this=size.copy()))
     rounded = exp.Case(
-        ifs=[exp.If(this=exp.GTE(this=fraction, expression=number(0.5)), true=exp.Ceil(this=size.copy()))],
+        ifs=[exp.If(this=exp.GTE(this=_operand(size.copy()), expression=number(WHOLE)), true=size.copy()),
+             exp.If(this=exp.GTE(this=fraction, expression=number(0.5)), true=exp.Ceil(this=size.copy()))],
         default=exp.Floor(this=size.copy()),
     )
     signed = exp.Mul(this=exp.Sign(this=value), expression=rounded)
