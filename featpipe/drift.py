@@ -1,0 +1,182 @@
+"""Drift API: how far a batch has moved from a fitted model's training rows, term by term and for the score.
+
+    >>> import featpipe.drift as drift
+    >>> project = featpipe.load_project("projects/lease_default")                      # doctest: +SKIP
+    >>> report = drift.drift(project, "default_risk", "leases_2024_06")               # doctest: +SKIP
+    >>> report.score.psi, report.score.reading, [row.name for row in report.terms]   # doctest: +SKIP
+    >>> print(drift.render_drift_sql(project, "default_risk", "leases_2024_06", "postgres"))  # doctest: +SKIP
+
+Everything is computed in the engine by one query (featpipe.sqlgen.drift), the stability index
+included, so the SQL a warehouse runs without Python gives the same numbers; Python only reads the
+row and names the reading. Like scoring, drift refuses a stale model (unless allowed) and a table that
+does not meet the input's column contract.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+from .api import DIALECTS, connect
+from .contract import check_contract
+from .errors import FeatpipeError
+from .fitted import FittedModel, file_hash
+from .project import Project
+from .scoring import _staleness, load_fitted, scoring_contract
+from .sqlgen.common import render
+from .sqlgen.drift import (
+    EMPTY_SHARE, NULL_BIN, ROWS, Monitored, above_column, below_column, bin_column, contribution_column,
+    drift_header, drift_query, expected_shares, mean_column, monitored, output_names, psi_column,
+)
+
+Progress = Callable[[str], None]
+
+# Readings of the stability index (common practice in credit scoring).
+MODERATE_FROM, MAJOR_ABOVE = 0.1, 0.25
+STABLE, MODERATE, MAJOR = "stable", "moderate shift", "major shift"
+
+
+def reading(psi: float) -> str:
+    """below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice)."""
+    if psi < MODERATE_FROM:
+        return STABLE
+    return MODERATE if psi <= MAJOR_ABOVE else MAJOR
+
+
+@dataclass(frozen=True)
+class Bin:
+    low: float | None  # the bin holds low < value <= high; None: unbounded
+    high: float | None
+    expected: float  # share of the training rows (NULLs included)
+    actual: float  # share of the batch's rows
+    rows: int  # the batch's rows in the bin
+
+
+@dataclass(frozen=True)
+class DriftRow:
+    """The drift of one term, or of the score (name 'linear_predictor')."""
+
+    name: str
+    psi: float
+    reading: str
+    bins: tuple[Bin, ...]  # the training bins; the NULL bin is apart, in the null shares
+    null_share: float
+    training_null_share: float
+    below_min_share: float  # batch rows below the training minimum
+    above_max_share: float  # batch rows above the training maximum
+    mean: float | None  # of the batch's non-NULL values (None: all NULL)
+    training_mean: float
+    shift: float | None  # terms: the batch's mean contribution (0 in training); score: mean minus training mean
+    rank: int | None = None  # terms: 1 for the term that moved the scores most (largest |shift|)
+
+    def as_dict(self) -> dict:
+        return {
+            "name": self.name, "psi": self.psi, "reading": self.reading, "rank": self.rank, "shift": self.shift,
+            "mean": self.mean, "training_mean": self.training_mean,
+            "null_share": self.null_share, "training_null_share": self.training_null_share,
+            "below_min_share": self.below_min_share, "above_max_share": self.above_max_share,
+            "bins": [vars(item) for item in self.bins],
+        }
+
+
+@dataclass(frozen=True)
+class DriftReport:
+    model: str
+    table: str
+    rows: int
+    score: DriftRow
+    terms: tuple[DriftRow, ...]  # ranked by |shift|, largest first (ties in model order)
+    stale: tuple[str, ...] = ()  # why the model is stale, when drift was allowed anyway
+
+    def exceeding(self, limit: float) -> tuple[str, ...]:
+        """Names (terms, then 'linear_predictor' for the score) whose PSI is above `limit`."""
+        return tuple(row.name for row in (*self.terms, self.score) if row.psi > limit)
+
+    def as_dict(self) -> dict:
+        return {
+            "model": self.model, "table": self.table, "rows": self.rows, "stale": list(self.stale),
+            "rules": {
+                "psi": "sum over bins of (actual - expected) * ln(actual / expected); NULL is a bin of its own",
+                "empty_share": EMPTY_SHARE,
+                "readings": {STABLE: f"psi < {MODERATE_FROM}", MODERATE: f"{MODERATE_FROM} <= psi <= {MAJOR_ABOVE}",
+                             MAJOR: f"psi > {MAJOR_ABOVE}"},
+            },
+            "score": self.score.as_dict(),
+            "terms": [row.as_dict() for row in self.terms],
+        }
+
+
+def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple) -> DriftReport:
+    """The report from the drift query's one row (`names`: its column names, see output_names)."""
+    values = dict(zip(names, row, strict=True))
+    rows = int(values[ROWS])
+    if rows == 0:
+        raise FeatpipeError(f"table '{table}' has no rows; there is no batch to compare with the training rows")
+    items = monitored(fitted)
+    terms = [_row(item, values, rows) for item in items[:-1]]
+    ranked = sorted(range(len(terms)), key=lambda index: -abs(terms[index].shift or 0.0))
+    for rank, index in enumerate(ranked, start=1):
+        terms[index] = DriftRow(**{**vars(terms[index]), "rank": rank})
+    return DriftReport(fitted.model, table, rows, _row(items[-1], values, rows), tuple(terms[index] for index in ranked))
+
+
+def _row(item: Monitored, values: dict, rows: int) -> DriftRow:
+    profile = item.profile
+    expected = expected_shares(profile)
+    lows = (None, *profile.edges)
+    highs = (*profile.edges, None)
+    bins = tuple(
+        Bin(lows[index - 1], highs[index - 1], expected[index - 1],
+            int(values[bin_column(item.name, index)]) / rows, int(values[bin_column(item.name, index)]))
+        for index in range(1, item.bins + 1)
+    )
+    mean = _optional(values[mean_column(item.name)])
+    if item.estimate is not None:
+        shift = _optional(values[contribution_column(item.name)])
+    else:
+        shift = None if mean is None else mean - profile.mean
+    psi = float(values[psi_column(item.name)])
+    return DriftRow(
+        name=item.name, psi=psi, reading=reading(psi), bins=bins,
+        null_share=int(values[bin_column(item.name, NULL_BIN)]) / rows, training_null_share=expected[-1],
+        below_min_share=int(values[below_column(item.name)]) / rows,
+        above_max_share=int(values[above_column(item.name)]) / rows,
+        mean=mean, training_mean=profile.mean, shift=shift,
+    )
+
+
+def _optional(value) -> float | None:
+    return None if value is None else float(value)
+
+
+def drift(
+    project: Project, model: str, table: str, *, allow_stale: bool = False, progress: Progress | None = None,
+) -> DriftReport:
+    """Compare `table` with the training rows of fitted/MODEL.yaml, in one query inside the project's engine.
+
+    Refuses, before running anything: a model whose definitions changed since its fit (unless
+    `allow_stale`) and a table that does not meet the input's column contract (the columns the model reads).
+    """
+    fitted = load_fitted(project, model)
+    stale = _staleness(project, fitted)
+    if stale and not allow_stale:
+        raise FeatpipeError(f"fitted/{model}.yaml is stale: {'; '.join(stale)}; run `featpipe fit -p {project.root} {model}` "
+                            "or pass --allow-stale to compare with the fitted definitions anyway")
+    contract = scoring_contract(project.inputs[fitted.input], fitted)
+    query = drift_query(fitted, table=table)
+    with connect(project) as engine:
+        check_contract(contract, table, engine.describe(table), engine.name)
+        if progress:
+            progress(f"comparing {table} with the training rows of {model} in {engine.name}")
+        (row,) = engine.fetch(query)
+    report = read_drift(fitted, table, output_names(query), row)
+    return DriftReport(**{**vars(report), "stale": tuple(stale)})
+
+
+def render_drift_sql(project: Project, model: str, table: str | None = None, dialect: str = "duckdb") -> str:
+    """The drift SQL of fitted/MODEL.yaml for `dialect` (default table: the input's name), with its header."""
+    if dialect not in DIALECTS:
+        raise FeatpipeError(f"unknown dialect '{dialect}'; use one of {', '.join(DIALECTS)}")
+    fitted = load_fitted(project, model)
+    query = drift_query(fitted, table=table)
+    return drift_header(fitted, file_hash(project.fitted_path(model))) + render(query, dialect) + ";\n"

@@ -1,0 +1,224 @@
+"""The drift query of a fitted model: one pass over a batch, counted in the training bins, with the PSI.
+
+The batch is read through the scoring query's own steps (term_values, checked_terms, contributions;
+see featpipe.sqlgen.score), so every term value and the linear predictor are computed exactly as
+scoring computes them, from the fitted file alone. The contributions step additionally carries the
+term values, and then:
+
+    drift_counts   one row: the batch's rows and, for each term and for the linear predictor, the
+                   rows per training bin, NULLs, values below the training minimum and above the
+                   training maximum, the mean value and (terms) the mean contribution
+    drift_shares   the same row plus every bin's share of the batch's rows, floored (empty-bin rule)
+    final SELECT   the counts, means and the population stability index of each term and the score
+
+Bins are the training profile's (featpipe.fitted.Profile): bin 1 holds v <= edges[0], bin i holds
+edges[i-2] < v <= edges[i-1], the last bin v > edges[-1]; NULL is a bin of its own (a missing value is
+a category of its own, common practice in credit scoring). Expected shares are the training rows'
+shares of these bins counting the training NULLs, written into the query as literals.
+
+    PSI = SUM over bins of (actual - expected) * LN(actual / expected)
+
+Empty-bin rule (common practice): a share below EMPTY_SHARE (0.0001) counts as 0.0001, for the
+expected and the actual share alike, so an empty bin adds a finite amount. The floored shares are not
+renormalised. LN then always sees a positive ratio, so it needs no guard.
+
+The score's bins are the linear predictor's: the prediction is a monotone function of it, so it falls
+into the same bins. A term's mean contribution is the batch mean of coefficient * (value - training
+mean) over the rows where the term is not NULL, the rows its training mean was taken over; in training
+it is 0 by construction, so the batch value is the shift itself.
+
+Example:
+    >>> query = drift_query(read_fitted(path), table="leases_2024_06")   # doctest: +SKIP
+    >>> row = dict(zip(output_names(query), engine.fetch(query)[0]))     # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from sqlglot import exp
+
+from ..errors import FeatpipeError
+from ..fitted import FittedModel, Profile
+from .common import alias, column, double, number
+from .score import CONTRIBUTIONS, LINEAR_PREDICTOR, model_terms, score_query
+
+EMPTY_SHARE = 0.0001
+COUNTS, SHARES = "drift_counts", "drift_shares"
+ROWS = "rows"
+NULL_BIN = "null"
+
+
+@dataclass(frozen=True)
+class Monitored:
+    """One profiled quantity of the model: a term (with its coefficient) or the linear predictor."""
+
+    name: str
+    profile: Profile
+    estimate: float | None = None  # None for the linear predictor
+
+    @property
+    def bins(self) -> int:
+        return len(self.profile.edges) + 1
+
+
+def bin_column(name: str, index: int) -> str:
+    """Rows of the batch in bin `index` (1-based) of `name`; `NULL_BIN` names the NULL bin."""
+    return f"{name}__{'nulls' if index == NULL_BIN else f'bin_{index}'}"
+
+
+def share_column(name: str, index: int | str) -> str:
+    return f"{name}__share_{index}"
+
+
+def below_column(name: str) -> str:
+    return f"{name}__below_min"
+
+
+def above_column(name: str) -> str:
+    return f"{name}__above_max"
+
+
+def mean_column(name: str) -> str:
+    return f"{name}__mean"
+
+
+def contribution_column(name: str) -> str:
+    return f"{name}__mean_contribution"
+
+
+def psi_column(name: str) -> str:
+    return f"{name}__psi"
+
+
+def monitored(fitted: FittedModel) -> tuple[Monitored, ...]:
+    """Every term in model order, then the linear predictor; refuses a fitted file without profiles."""
+    items = [Monitored(term.name, term.profile, term.estimate) for term in model_terms(fitted)]
+    items.append(Monitored(LINEAR_PREDICTOR, fitted.linear_predictor))
+    for item in items:
+        if item.profile is None:
+            raise FeatpipeError(f"fitted/{fitted.model}.yaml: {item.name} has no training profile; run `featpipe fit` again")
+    return tuple(items)
+
+
+def expected_shares(profile: Profile) -> tuple[float, ...]:
+    """Training share of every bin among all training rows, NULLs included, the NULL bin last.
+
+    The profile keeps shares among the non-NULL rows; times `count` they are whole rows again.
+    """
+    rows = profile.count + profile.nulls
+    if rows == 0:
+        raise ValueError("a profile of no rows has no shares")
+    counts = [round(share * profile.count) for share in profile.shares] or [0]
+    return (*(count / rows for count in counts), profile.nulls / rows)
+
+
+def floored(share: float) -> float:
+    """The empty-bin rule: a share below EMPTY_SHARE counts as EMPTY_SHARE (common practice)."""
+    return max(share, EMPTY_SHARE)
+
+
+def drift_query(fitted: FittedModel, *, table: str | None = None) -> exp.Select:
+    """The drift SELECT of `fitted` over `table` (default: the fitted input's name): one row of counts and PSIs."""
+    items = monitored(fitted)
+    _refuse_clashes(fitted, items)
+    scoring = score_query(fitted, table=table)
+    steps = [(cte.alias, cte.this.copy()) for cte in scoring.ctes]
+    if steps[-1][0] != CONTRIBUTIONS:
+        raise ValueError(f"the scoring query's last step is {steps[-1][0]}, not {CONTRIBUTIONS}")
+    steps[-1] = (CONTRIBUTIONS, steps[-1][1].select(*(column(item.name) for item in items[:-1]), copy=False))
+
+    counted = [alias(exp.Count(this=exp.Star()), ROWS)]
+    for item in items:
+        counted += _counts(item)
+    steps.append((COUNTS, exp.select(*counted).from_(exp.to_table(CONTRIBUTIONS))))
+
+    carried = [column(name) for name in output_names(exp.select(*counted))]
+    shares = [alias(_floored_share(bin_column(item.name, index)), share_column(item.name, index))
+              for item in items for index in _bin_indexes(item)]
+    steps.append((SHARES, exp.select(*carried, *shares).from_(exp.to_table(COUNTS))))
+
+    psis = [alias(_psi(item), psi_column(item.name)) for item in items]
+    query = exp.select(*(c.copy() for c in carried), *psis).from_(exp.to_table(SHARES))
+    for name, step in steps:
+        query = query.with_(name, as_=step, copy=False)
+    return query
+
+
+def output_names(query: exp.Select) -> list[str]:
+    """The column names of a query's result, in order."""
+    return [projection.alias_or_name for projection in query.expressions]
+
+
+def _bin_indexes(item: Monitored) -> list[int | str]:
+    return [*range(1, item.bins + 1), NULL_BIN]
+
+
+def _counts(item: Monitored) -> list[exp.Expression]:
+    value = column(item.name)
+    edges = item.profile.edges
+    counts = []
+    for index in range(1, item.bins + 1):
+        above_previous = exp.GT(this=value.copy(), expression=number(edges[index - 2])) if index > 1 else None
+        up_to_edge = exp.LTE(this=value.copy(), expression=number(edges[index - 1])) if index <= len(edges) else None
+        inside = [test for test in (above_previous, up_to_edge) if test is not None]
+        condition = exp.and_(*inside) if inside else value.copy().is_(exp.null()).not_()
+        counts.append(alias(_count_if(condition), bin_column(item.name, index)))
+    counts.append(alias(_count_if(value.copy().is_(exp.null())), bin_column(item.name, NULL_BIN)))
+    low, high = item.profile.min, item.profile.max
+    never = exp.false()
+    counts.append(alias(_count_if(never if low is None else exp.LT(this=value.copy(), expression=number(low))),
+                        below_column(item.name)))
+    counts.append(alias(_count_if(never.copy() if high is None else exp.GT(this=value.copy(), expression=number(high))),
+                        above_column(item.name)))
+    counts.append(alias(exp.Avg(this=value.copy()), mean_column(item.name)))
+    if item.estimate is not None:
+        centred = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(item.profile.mean)))
+        counts.append(alias(exp.Avg(this=exp.Mul(this=number(item.estimate), expression=centred)),
+                            contribution_column(item.name)))
+    return counts
+
+
+def _count_if(condition: exp.Expression) -> exp.Sum:
+    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))
+
+
+def _floored_share(count_name: str) -> exp.Expression:
+    """count / rows as DOUBLE, floored at EMPTY_SHARE; NULL for a batch of no rows."""
+    share = exp.Div(this=double(column(count_name)), expression=exp.Nullif(this=double(column(ROWS)), expression=number(0.0)))
+    return exp.Case().when(exp.LT(this=share, expression=number(EMPTY_SHARE)), number(EMPTY_SHARE)).else_(share.copy())
+
+
+def _psi(item: Monitored) -> exp.Expression:
+    total: exp.Expression | None = None
+    for index, expected in zip(_bin_indexes(item), expected_shares(item.profile), strict=True):
+        actual, reference = column(share_column(item.name, index)), number(floored(expected))
+        part = exp.Mul(this=exp.Paren(this=exp.Sub(this=actual, expression=reference)),
+                       expression=exp.Ln(this=exp.Div(this=actual.copy(), expression=reference.copy())))
+        total = part if total is None else exp.Add(this=total, expression=part)
+    return total
+
+
+def _refuse_clashes(fitted: FittedModel, items: tuple[Monitored, ...]) -> None:
+    """Output names are `<name>__<what>`; a term named like the linear predictor or the rows column clashes."""
+    names = [item.name for item in items]
+    if ROWS in names or len(set(names)) != len(names) or any("__" in name for name in names):
+        raise FeatpipeError(f"fitted/{fitted.model}.yaml: a term is named '{LINEAR_PREDICTOR}' or '{ROWS}' or has '__' "
+                            "in its name, which the drift query's output columns use; rename the term")
+
+
+def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
+    """SQL comment lines stating what the drift query returns and the rules it applies."""
+    lines = [
+        f"featpipe drift query for model '{fitted.model}', input '{fitted.input}'",
+        f"fitted file fitted/{fitted.model}.yaml, hash {fitted_hash}; model fingerprint {fitted.fingerprint}",
+        "One row: rows; per term and for linear_predictor the rows per training bin (<name>__bin_<i>),",
+        "NULLs (<name>__nulls, a bin of its own), values outside the training range (__below_min, __above_max),",
+        "the mean value (__mean), per term the mean of coefficient * (value - training mean) (__mean_contribution,",
+        "0 in training) and the population stability index (__psi).",
+        "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge.",
+        "PSI = SUM over bins of (actual - expected) * LN(actual / expected); a share below "
+        f"{EMPTY_SHARE:g} counts as {EMPTY_SHARE:g}.",
+        "Reading (common practice in credit scoring): below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift.",
+    ]
+    return "".join(f"-- {line}\n" for line in lines)
