@@ -96,10 +96,10 @@ def check_allowed(expression: exp.Expression, file: str) -> list[Diagnostic]:
     """
     found: list[tuple[exp.Expression, str]] = []
     _check(expression, found)
-    return sorted(Diagnostic(file, *position(node), message) for node, message in found)
+    return sorted(Diagnostic(file, *_position(node), message) for node, message in found)
 
 
-def position(node: exp.Expression) -> tuple[int, int]:
+def _position(node: exp.Expression) -> tuple[int, int]:
     """1-based line and column where `node` starts in its file.
 
     sqlglot records positions on identifiers, literals and function names only, with `col` at the
