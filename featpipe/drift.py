@@ -15,7 +15,7 @@ does not meet the input's column contract.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from .api import DIALECTS, connect
 from .contract import check_contract
@@ -116,7 +116,7 @@ def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple) ->
     terms = [_row(item, values, rows) for item in items[:-1]]
     ranked = sorted(range(len(terms)), key=lambda index: -abs(terms[index].shift or 0.0))
     for rank, index in enumerate(ranked, start=1):
-        terms[index] = DriftRow(**{**vars(terms[index]), "rank": rank})
+        terms[index] = replace(terms[index], rank=rank)
     return DriftReport(fitted.model, table, rows, _row(items[-1], values, rows), tuple(terms[index] for index in ranked))
 
 
@@ -170,7 +170,7 @@ def drift(
             progress(f"comparing {table} with the training rows of {model} in {engine.name}")
         (row,) = engine.fetch(query)
     report = read_drift(fitted, table, output_names(query), row)
-    return DriftReport(**{**vars(report), "stale": tuple(stale)})
+    return replace(report, stale=tuple(stale))
 
 
 def render_drift_sql(project: Project, model: str, table: str | None = None, dialect: str = "duckdb") -> str:

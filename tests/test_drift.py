@@ -13,7 +13,6 @@ Two kinds of checks:
 
 from __future__ import annotations
 
-import csv
 import importlib.util
 import math
 
@@ -206,7 +205,7 @@ def lease(tmp_path_factory):
         }
         for name, frame in frames.items():
             path = root / "build" / f"{name}.csv"
-            frame.to_csv(path, index=False, quoting=csv.QUOTE_MINIMAL)
+            frame.to_csv(path, index=False)
             engine.load_file(name, path)
     finally:
         engine.close()

@@ -214,9 +214,10 @@ def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
         f"fitted file fitted/{fitted.model}.yaml, hash {fitted_hash}; model fingerprint {fitted.fingerprint}",
         "One row: rows; per term and for linear_predictor the rows per training bin (<name>__bin_<i>),",
         "NULLs (<name>__nulls, a bin of its own), values outside the training range (__below_min, __above_max),",
-        "the mean value (__mean), per term the mean of coefficient * (value - training mean) (__mean_contribution,",
-        "0 in training) and the population stability index (__psi).",
-        "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge.",
+        "the mean of the non-NULL values (__mean), per term the mean of coefficient * (value - training mean) over",
+        "its non-NULL values (__mean_contribution, 0 in training) and the population stability index (__psi).",
+        "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge;",
+        "expected shares are the training rows' (NULLs included), written below as literals.",
         "PSI = SUM over bins of (actual - expected) * LN(actual / expected); a share below "
         f"{EMPTY_SHARE:g} counts as {EMPTY_SHARE:g}.",
         "Reading (common practice in credit scoring): below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift.",
