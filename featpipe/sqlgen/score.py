@@ -151,7 +151,11 @@ def status_expression(names: list[str], has_offset: bool) -> exp.Expression:
 
 
 def rank_expression(names: list[str], index: int) -> exp.Expression:
-    """1 + the number of terms whose contribution beats term `index`'s (earlier terms win ties)."""
+    """The rank of term `index` among the contributions that push the prediction up, NULL for the others.
+
+    1 + the number of terms whose contribution beats it; an earlier term wins a tie. Only positive
+    contributions are ranked, so rows spend the comparisons only on the terms that can be reasons.
+    """
     this = column(contribution_column(names[index]))
     total: exp.Expression = exp.Literal.number(1)
     for other, name in enumerate(names):
@@ -160,16 +164,14 @@ def rank_expression(names: list[str], index: int) -> exp.Expression:
         that = column(contribution_column(name))
         beats = exp.GTE(this=that, expression=this.copy()) if other < index else exp.GT(this=that, expression=this.copy())
         total = exp.Add(this=total, expression=exp.Case().when(beats, exp.Literal.number(1)).else_(exp.Literal.number(0)))
-    return total
+    return exp.Case().when(exp.GT(this=this.copy(), expression=number(0.0)), total)
 
 
 def reason_expression(names: list[str], rank: int) -> exp.Expression:
     """The name of the term ranked `rank` among the positive contributions, or NULL."""
     case = exp.Case()
     for name in names:
-        pushes_up = exp.GT(this=column(contribution_column(name)), expression=number(0.0))
-        ranked = exp.EQ(this=column(_rank_column(name)), expression=exp.Literal.number(rank))
-        case = case.when(exp.and_(pushes_up, ranked), exp.Literal.string(name))
+        case = case.when(exp.EQ(this=column(_rank_column(name)), expression=exp.Literal.number(rank)), exp.Literal.string(name))
     return case
 
 
