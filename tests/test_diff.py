@@ -327,3 +327,14 @@ def test_a_revision_that_does_not_compile_is_reported_with_its_position(tmp_path
     message = str(raised.value)
     assert message.startswith(f"the project at merge base with main ({short}) does not load")
     assert f"  {short}:analytics/shop/terms/bad.sql:2:3: " in message
+
+
+def test_an_unreadable_fitted_file_at_the_revision_is_reported_not_fatal(tmp_path):
+    project = committed_project(tmp_path, {"fitted/returns.yaml": "model: returns\n"}, fit=False)
+    write_fitted(project / "fitted" / "returns.yaml", fitted_model(project, FIT))
+    change, text, markdown, data = diff_all(project)
+
+    (fit,) = data["fitted"]
+    assert fit["change"] == "unreadable" and fit["problem"].startswith("fitted/returns.yaml at the revision: not a fitted file")
+    assert any(line.startswith("  fitted/returns.yaml  could not be read: fitted/returns.yaml at the revision:") for line in text)
+    assert data["stale"] == []  # the file now matches the model
