@@ -1,0 +1,132 @@
+"""The one-line reading in words above each section of the report: pure functions from figures to sentences."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+from ..fitted import FittedModel
+from ..notes import figure, model_reading, p_text, words
+from ..sqlgen.score import model_terms
+from .compare import LikelihoodRatio
+from .data import Curve, ModelFigures, Surface
+
+SIGNIFICANCE = 0.05  # common practice
+
+
+def summary(fitted: FittedModel, figures: ModelFigures, warnings: Sequence[str]) -> str:
+    """The model in one paragraph: what it predicts, on what, how well, and whether to trust the fit."""
+    fit = fitted.fit
+    text = model_reading(
+        family=fitted.family, target=fitted.target, terms=len(model_terms(fitted)), train_rows=fitted.rows["train"],
+        metrics=fitted.metrics, threshold=fitted.threshold, converged=bool(fit.get("converged")),
+        penalized=bool(fit.get("penalized")),
+    )
+    dropped = fitted.rows["input"] - fitted.rows["complete"]
+    rows = f" Of {fitted.rows['input']:,} input rows, {fitted.rows['holdout']:,} were held out"
+    rows += f" and {dropped:,} dropped for a missing value." if dropped else " and none was dropped."
+    converged = (f" The fit converged in {fit['iterations']} iterations." if fit.get("converged")
+                 else f" The fit stopped after {fit['iterations']} iterations without converging.")
+    if warnings:
+        caution = f" {len(warnings)} warning{'s' if len(warnings) > 1 else ''} below: read {'them' if len(warnings) > 1 else 'it'} before the figures."
+    else:
+        caution = " The fit raised no warning (separation, collinearity) and matches the current definitions."
+    return text + rows + converged + caution
+
+
+def coefficients(fitted: FittedModel) -> str:
+    terms = [term for term in model_terms(fitted) if term.effect is not None]
+    if not terms:
+        return "The model has no terms besides the intercept."
+    no_effect = 1.0 if terms[0].effect.kind != "difference" else 0.0
+    clear = [t for t in terms if t.effect.low is not None and not t.effect.low <= no_effect <= t.effect.high]
+    strongest = max(terms, key=lambda t: abs(math.log(t.effect.value)) if no_effect == 1.0 and t.effect.value > 0
+                    else abs(t.effect.value - no_effect))
+    return (f"{len(clear)} of {len(terms)} terms have a 95% interval that excludes no effect; per the stated steps the "
+            f"largest is {strongest.name} ({strongest.effect.kind} {figure(strongest.effect.value)} per {strongest.effect.step:g}).")
+
+
+def terms(fitted: FittedModel) -> str:
+    count = len(model_terms(fitted))
+    return (f"Each of the {count} terms is the SQL below, as stored in fitted/{fitted.model}.yaml: the scoring query "
+            "computes exactly this, and a term's fingerprint changes whenever its meaning does.")
+
+
+def curves(fitted: FittedModel, curve_list: Sequence[Curve], held: dict, other: FittedModel | None) -> str:
+    if not curve_list:
+        return "The model's terms read no input column, so there is no curve to draw."
+    swings = []
+    for curve in curve_list:
+        values = [v for v in curve.predictions[fitted.model] if v is not None]
+        if values:
+            swings.append((max(values) - min(values), curve, min(values), max(values)))
+    swing, widest, low, high = max(swings, key=lambda item: item[0])
+    texts = [f"{name} at {held[name]!r}" for name in held if held[name] is not None and isinstance(held[name], str)]
+    levels = f" ({', '.join(texts)})" if texts else ""
+    compared = f", {other.model} in the second colour" if other else ""
+    return (f"How the {_predicted(fitted)} moves as each input crosses its training values (1st to 99th percentile), "
+            f"the other inputs held at their training medians{levels}{compared}; {widest.column} moves it most, "
+            f"between {figure(low)} and {figure(high)}.")
+
+
+def surface(fitted: FittedModel, shown: Surface | None, note: str, other: FittedModel | None) -> str:
+    if shown is None:
+        return f"No decision surface: {note}."
+    combining = shown.combining[fitted.model]
+    if combining:
+        why = f"{', '.join(combining)} read{'s' if len(combining) == 1 else ''} both, which is what bends it"
+    else:
+        why = "no term reads both, so its shape comes only from how each enters the model on its own"
+    if fitted.family == "binomial":
+        lead = (f"Over {shown.a} and {shown.b} (other inputs at their medians) the coloured line is the threshold "
+                f"{fitted.threshold:g}: rows in the orange region would be predicted {words(fitted.target)}; {why}.")
+    else:
+        lead = (f"The {_predicted(fitted)} over {shown.a} and {shown.b} (other inputs at their medians), its colour bands "
+                f"spanning the held-out rows' predictions; {why}.")
+    if other is not None:
+        lead += f" {other.model} is drawn beside it on the same axes."
+    return lead
+
+
+def performance(fitted: FittedModel, figures: ModelFigures) -> str:
+    metrics = fitted.metrics
+    calibration = metrics.get("calibration") or []
+    if not metrics.get("rows"):
+        return "No rows were held out, so there is nothing to check the predictions against."
+    top = calibration[-1] if calibration else None
+    top_text = (f" In the top decile the mean prediction is {figure(top['mean_predicted'])} against "
+                f"{figure(top['mean_observed'])} observed." if top else "")
+    if fitted.family == "binomial":
+        auc = metrics.get("auc")
+        lead = (f"AUC {auc:.2f}: a held-out row with {words(fitted.target)} gets a higher prediction than one without "
+                f"{auc:.0%} of the time (0.5 is chance).") if auc is not None else "The held-out rows hold one class only."
+        return lead + top_text
+    medians = [d["q50"] for d in figures.residual_deciles]
+    spread = (f" Median deviance residuals per decile lie between {figure(min(medians), True)} and "
+              f"{figure(max(medians), True)}." if medians else "")
+    return f"Observed against predicted on {metrics['rows']:,} held-out rows.{top_text}{spread}"
+
+
+def comparison(fitted: FittedModel, other: FittedModel, test: LikelihoodRatio) -> str:
+    aic = fitted.fit["aic"] - other.fit["aic"]
+    better = fitted.model if aic < 0 else other.model
+    aic_text = f"AIC favours {better} by {figure(abs(aic))}"
+    if test.reason:
+        return f"{aic_text}; no likelihood-ratio test: {test.reason}."
+    verdict = ("so the extra terms improve the fit by more than chance would" if test.p_value < SIGNIFICANCE
+               else "so the data do not show that the extra terms improve the fit")
+    return (f"{test.larger} adds {', '.join(test.extra_terms)} to {test.smaller}: likelihood-ratio statistic "
+            f"{figure(test.statistic)} on {test.df} degrees of freedom, {p_text(test.p_value)}, {verdict}; {aic_text}.")
+
+
+def cautions(fitted: FittedModel, inputs: Sequence[str]) -> str:
+    return (f"The model reads {', '.join(inputs) if inputs else 'no input column'}; before it informs decisions about "
+            "people, review what each input stands for.")
+
+
+def _predicted(fitted: FittedModel) -> str:
+    if fitted.family == "binomial":
+        return f"predicted probability of {words(fitted.target)}"
+    if fitted.family == "poisson":
+        return f"expected {words(fitted.target)}"
+    return f"predicted {words(fitted.target)}"
