@@ -21,8 +21,10 @@ from conftest import copy_demo
 from featpipe.api import materialize
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.engines.sqlite import SQLiteEngine
+from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted
 from featpipe.project import load_project
+from featpipe.scoring import render_score_sql, score
 from featpipe.sqlgen.common import column
 from featpipe.sqlgen.layout import OFFSET_COLUMN
 
@@ -83,3 +85,17 @@ def test_demo_scores_match_statsmodels_and_numpy_on_every_engine(demo, demo_engi
     np.testing.assert_allclose(actual["prediction"], demo["statsmodels"], rtol=1e-12, atol=0)
     assert_same_scores(actual, demo["expected"])
     assert demo["expected"]["status"].count("ok") > 0.9 * len(demo["keys"])
+
+
+def test_editing_a_demo_term_after_the_fit_makes_score_refuse_and_leaves_the_exported_sql_alone(tmp_path):
+    root = copy_demo("lease_default", tmp_path)
+    before = render_score_sql(load_project(root), "default_risk", dialect="postgres", reasons=REASONS)
+    terms = root / "terms" / "affordability.sql"
+    terms.write_text(terms.read_text().replace("monthly_payment / NULLIF(monthly_revenue, 0)",
+                                               "12 * monthly_payment / NULLIF(monthly_revenue, 0)"))
+    with pytest.raises(FeatpipeError) as refused:
+        score(load_project(root), "default_risk", table="leases", into="scores")
+    # young_and_stretched is built from payment_to_revenue, so its meaning changed too.
+    assert str(refused.value).startswith("fitted/default_risk.yaml is stale: term 'payment_to_revenue' changed meaning; "
+                                         "term 'young_and_stretched' changed meaning; run `featpipe fit")
+    assert render_score_sql(load_project(root), "default_risk", dialect="postgres", reasons=REASONS) == before
