@@ -5,7 +5,8 @@ tests/ on the path). Fixtures:
 
 - `postgres_dsn` (session): DSN of a private PostgreSQL server on 127.0.0.1 (password authentication,
   so a wrong password is refused); started once, stopped at the end of the run and at exit.
-- `postgres_engine`: a PostgresEngine on a fresh database of that server, dropped after the test.
+- `postgres_engine`: a PostgresEngine on that server whose tables go to a fresh schema, dropped after
+  the test (its `dsn` carries the search_path, for clients such as psql).
 - `spark_session` (session): the one local SparkSession of the run, started by SparkEngine itself
   (warehouse and metastore in a temporary build folder).
 - `spark_engine`: a SparkEngine on that session, in a fresh Spark database dropped after the test.
@@ -36,7 +37,7 @@ from sqlglot import exp
 
 from featpipe.project import EngineConfig
 
-_database_numbers = itertools.count(1)
+_fresh_numbers = itertools.count(1)
 
 
 def pytest_configure(config):
@@ -169,20 +170,23 @@ def postgres_dsn():
 
 @pytest.fixture
 def postgres_engine(postgres_dsn):
-    """A PostgresEngine on a database of its own, so tests never see each other's tables."""
+    """A PostgresEngine whose tables land in a schema of its own (first on its search_path), dropped after
+    the test, so tests never see each other's tables. A schema costs milliseconds; a database 0.4 s."""
     import psycopg
     from psycopg.conninfo import make_conninfo
 
     from featpipe.engines.postgres import PostgresEngine
 
-    database = f"featpipe_test_{next(_database_numbers)}"
+    name = f"featpipe_test_{next(_fresh_numbers)}"
+    schema = psycopg.sql.Identifier(name)
     with psycopg.connect(postgres_dsn, autocommit=True) as admin:
-        admin.execute(psycopg.sql.SQL("CREATE DATABASE {}").format(psycopg.sql.Identifier(database)))
-    engine = PostgresEngine(EngineConfig(kind="postgres", dsn=make_conninfo(postgres_dsn, dbname=database)))
+        admin.execute(psycopg.sql.SQL("CREATE SCHEMA {}").format(schema))
+    dsn = make_conninfo(postgres_dsn, options=f"-c search_path={name}")
+    engine = PostgresEngine(EngineConfig(kind="postgres", dsn=dsn))
     yield engine
     engine.close()
     with psycopg.connect(postgres_dsn, autocommit=True) as admin:
-        admin.execute(psycopg.sql.SQL("DROP DATABASE {} WITH (FORCE)").format(psycopg.sql.Identifier(database)))
+        admin.execute(psycopg.sql.SQL("DROP SCHEMA {} CASCADE").format(schema))
 
 
 @pytest.fixture(scope="session")
@@ -211,7 +215,7 @@ def spark_engine(spark_session):
     """A SparkEngine on the run's session, in a Spark database of its own dropped after the test."""
     from featpipe.engines.spark import SparkEngine
 
-    database = f"featpipe_test_{next(_database_numbers)}"
+    database = f"featpipe_test_{next(_fresh_numbers)}"
     engine = SparkEngine(EngineConfig(kind="spark", database=database))
     yield engine
     spark_session.catalog.setCurrentDatabase("default")

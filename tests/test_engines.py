@@ -233,7 +233,7 @@ def test_postgres_server_not_running(postgres_dsn):
     dsn = with_settings(postgres_dsn, port=str(port))
     with pytest.raises(EngineError) as error:
         PostgresEngine(EngineConfig(kind="postgres", dsn=dsn))
-    assert str(error.value) == f"postgres: cannot connect to 127.0.0.1:{port} (connection refused); is the server running?"
+    assert str(error.value) == f"postgres: no server answers at 127.0.0.1:{port}; is the server running?"
 
 
 def test_postgres_wrong_password(postgres_dsn):

@@ -220,13 +220,17 @@ def _bytea_text(column: pa.Array) -> pa.Array:
 
 
 def _server_address(dsn: str) -> str:
-    """host:port the DSN points at, with libpq's defaults; never includes the password."""
+    """Where the DSN points (host:port, or libpq's local socket); never includes the password."""
     try:
         settings = psycopg.conninfo.conninfo_to_dict(dsn)
     except psycopg.Error:
         settings = {}
-    host = settings.get("host") or os.environ.get("PGHOST") or "localhost"
+    host = settings.get("host") or os.environ.get("PGHOST")
     port = settings.get("port") or os.environ.get("PGPORT") or "5432"
+    if not host:
+        return f"the local socket for port {port} (no host in the dsn or PGHOST)"
+    if str(host).startswith("/"):
+        return f"the socket in {host} for port {port}"
     return f"{host}:{port}"
 
 
@@ -252,7 +256,7 @@ def _connection_error(error: Exception, dsn: str) -> EngineError:
             "check the user and password in the engine dsn or PGPASSWORD"
         )
     if "Connection refused" in text or ("No such file or directory" in text and "socket" in text):
-        return EngineError(f"postgres: cannot connect to {where} (connection refused); is the server running?")
+        return EngineError(f"postgres: no server answers at {where}; is the server running?")
     if "timeout expired" in text:
         return EngineError(f"postgres: timed out connecting to {where}; check the host, the port and any firewall")
     return EngineError(f"postgres: cannot connect to {where}: {_message(error)}")
