@@ -1,0 +1,353 @@
+"""The model report on the demo projects: content, self-containment, and its numbers against references.
+
+The demo projects are copied, fitted and reported once per module. Checks:
+- every term's SQL, doc, fingerprint and notes appear as in the fitted file, every metric as the
+  report's own formatter prints the fitted file's value, and every figure as inline <svg>;
+- nothing in the page refers to a network address;
+- the effect curves equal the scoring SQL run by DuckDB over the same grid built independently here
+  (pandas into an in-memory DuckDB), and for the raw-inputs model also plain numpy arithmetic on the
+  fitted coefficients; the held values equal pandas medians of the fit's training rows;
+- the likelihood-ratio statistic equals twice the difference of the two fits' log-likelihoods and
+  statsmodels' (reference library) GLM fits of both models on the same design-table rows; its p-value
+  equals scipy's chi-squared tail at statsmodels' statistic and degrees of freedom (statsmodels'
+  GLM results offer no compare_lr_test; only its linear-regression results do).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import html
+import json
+import math
+import re
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from scipy.stats import chi2
+
+from conftest import copy_demo
+from featpipe import api
+from featpipe.errors import FeatpipeError
+from featpipe.fitted import FittedTerm, read_fitted, write_fitted
+from featpipe.report import report_path, write_report
+from featpipe.report.compare import likelihood_ratio
+from featpipe.report.data import default_pair, term_inputs
+from featpipe.report.render import CURVES_ID, metric_text
+from featpipe.sqlgen.score import score_query
+
+FORBIDDEN = ("http://", "https://", "//cdn", "<script src", "<link", "xlink:", "<?xml", "<!--")
+
+
+@pytest.fixture(scope="module")
+def demos(tmp_path_factory):
+    """Both demo projects copied, fitted, and reported: the lease pair compared, the claim model alone."""
+    root = tmp_path_factory.mktemp("report")
+    lease = api.load_project(copy_demo("lease_default", root))
+    fleet = api.load_project(copy_demo("fleet_claims", root))
+    api.fit(lease)
+    api.fit(fleet)
+    return {
+        "lease": lease,
+        "fleet": fleet,
+        "compared": write_report(lease, "default_risk", against="default_raw"),
+        "claims": write_report(fleet, "claim_frequency"),
+    }
+
+
+def page(path) -> str:
+    return path.read_text(encoding="utf-8")
+
+
+def text_of(markup: str) -> str:
+    """The page's text: tags removed, entities decoded (the SQL is highlighted, so split into spans)."""
+    return html.unescape(re.sub(r"<[^>]+>", "", markup))
+
+
+def curves_of(markup: str) -> dict:
+    found = re.search(rf'<script type="application/json" id="{CURVES_ID}">(.*?)</script>', markup, re.S)
+    return json.loads(found.group(1))
+
+
+def cells(markup: str, attribute: str, model: str | None = None) -> dict[str, str]:
+    """Table cells carrying data-<attribute>="key" (and data-model when given): key -> printed text."""
+    owner = f' data-model="{model}"' if model else ""
+    pattern = rf'<td class="num" data-{attribute}="([^"]+)"{owner}>([^<]*)</td>'
+    return dict(re.findall(pattern, markup))
+
+
+def training_frame(project, model: str) -> pd.DataFrame:
+    """The fit's training rows of the design table, joined to the raw input columns (read by pandas)."""
+    fitted = read_fitted(project.fitted_path(model))
+    connection = duckdb.connect(str(project.engine.path), read_only=True)
+    try:
+        design = connection.execute(f'SELECT * FROM "design_{model}"').df()
+    finally:
+        connection.close()
+    names = [fitted.target] + [term.name for term in fitted.terms[1:]] + (["_offset"] if fitted.offset else [])
+    rows = design[~design["_holdout"].astype(bool) & design[names].notna().all(axis=1)]
+    raw = pd.read_csv(project.inputs[fitted.input].load)
+    return rows[[fitted.key]].merge(raw, on=fitted.key, how="left")
+
+
+def independent_grid(project, fitted, curves: dict) -> pd.DataFrame:
+    """Every curve's grid points as rows of the input's contract, built here from the page's numbers."""
+    source = project.inputs[fitted.input]
+    held = curves["held"]
+    rows, key = [], 0
+    for curve in curves["curves"]:
+        for value in curve["x"]:
+            row = {name: held.get(name) for name in source.columns}
+            row[source.key] = key
+            row[curve["column"]] = value
+            rows.append(row)
+            key += 1
+    dtypes = {"BIGINT": "Int64", "DOUBLE": "Float64", "VARCHAR": "string"}
+    return pd.DataFrame(rows, columns=list(source.columns)).astype({n: dtypes[t] for n, t in source.columns.items()})
+
+
+def scored_by_duckdb(fitted, grid: pd.DataFrame) -> np.ndarray:
+    connection = duckdb.connect()
+    try:
+        connection.register("grid_frame", grid)
+        connection.execute("CREATE TABLE grid AS SELECT * FROM grid_frame")
+        scored = connection.execute(score_query(fitted, table="grid").sql(dialect="duckdb", identify=True)).df()
+    finally:
+        connection.close()
+    return scored.sort_values(fitted.key)["prediction"].to_numpy(dtype=float)
+
+
+# --- content ------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("report, project, models", [
+    ("compared", "lease", ["default_risk", "default_raw"]),
+    ("claims", "fleet", ["claim_frequency"]),
+])
+def test_every_term_with_its_sql_doc_fingerprint_and_notes_is_in_the_report(demos, report, project, models):
+    text = text_of(page(demos[report]))
+    fitted = read_fitted(demos[project].fitted_path(models[0]))
+    for term in fitted.terms[1:]:
+        assert f"{term.name} {term.kind}" in text
+        assert term.sql in text, term.name
+        assert term.fingerprint in text
+        assert term.doc in text
+        for note in term.notes:
+            assert note in text, note
+    if fitted.offset:
+        assert fitted.offset in text
+
+
+def test_metric_values_are_the_fitted_files_as_the_report_formats_them(demos):
+    markup = page(demos["compared"])
+    risk = read_fitted(demos["lease"].fitted_path("default_risk"))
+    raw = read_fitted(demos["lease"].fitted_path("default_raw"))
+    keys = ["accuracy", "baseline_accuracy", "precision", "recall", "auc", "log_loss", "brier"]
+    model_table = markup.split('id="holdout-metrics"')[1].split("</table>")[0]
+    assert cells(model_table, "metric") == {key: metric_text(risk.metrics[key]) for key in keys}
+    for fitted in (risk, raw):
+        assert cells(markup, "metric", fitted.model) == {key: metric_text(fitted.metrics[key]) for key in keys}
+        shown = cells(markup, "fit", fitted.model)
+        for key in ("log_likelihood", "deviance", "null_deviance", "aic", "bic"):
+            assert shown[key] == metric_text(fitted.fit[key])
+        assert shown["train"] == metric_text(fitted.rows["train"])
+    assert metric_text(0.8017640508703041) == "0.8018" and metric_text(1873.189662245814) == "1,873.19"
+
+    claims = read_fitted(demos["fleet"].fitted_path("claim_frequency"))
+    keys = ["deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted"]
+    assert cells(page(demos["claims"]), "metric") == {key: metric_text(claims.metrics[key]) for key in keys}
+
+
+@pytest.mark.parametrize("report, project, models, performance", [
+    ("compared", "lease", ["default_risk", "default_raw"], 3),  # calibration, ROC, score distribution
+    ("claims", "fleet", ["claim_frequency"], 2),  # observed against predicted, residuals
+])
+def test_every_plot_is_inline_svg(demos, report, project, models, performance):
+    markup = page(demos[report])
+    read = {name for model in models for name in term_inputs(read_fitted(demos[project].fitted_path(model)))}
+    inputs = len(curves_of(markup)["curves"])
+    assert inputs == len(read)
+    figures = re.findall(r"<figure[^>]*>\s*<svg[^>]*>", markup)
+    # the interval plot, one curve per input, the decision surface, and the holdout figures
+    assert len(figures) == 1 + inputs + 1 + performance
+    assert markup.count("<svg") == len(figures) and markup.count("</svg>") == len(figures)
+    assert "<img" not in markup
+
+
+@pytest.mark.parametrize("report", ["compared", "claims"])
+def test_the_page_refers_to_no_network_address(demos, report):
+    markup = page(demos[report])
+    for forbidden in FORBIDDEN:
+        assert forbidden not in markup, forbidden
+    assert "<script" not in markup.replace(f'<script type="application/json" id="{CURVES_ID}">', "")
+
+
+def test_sections_come_in_order_each_with_a_reading(demos):
+    markup = page(demos["compared"])
+    order = ["model", "comparison", "coefficients", "terms", "effect-curves-section", "decision-surface", "performance", "cautions"]
+    positions = [markup.index(f'<section id="{name}">') for name in order]
+    assert positions == sorted(positions)
+    for section in re.findall(r"<section id=[^>]*>(.*?)</section>", markup, re.S):
+        assert re.search(r'<p class="reading">[^<]{40,}</p>', section)
+    text = text_of(markup)
+    assert "Protected characteristics and proxies need review." in text
+    assert "Local law and model-risk policy govern use." in text
+
+
+def test_the_report_is_written_at_its_default_place_and_leaves_no_temporary_table(demos):
+    lease = demos["lease"]
+    assert demos["compared"] == report_path(lease, "default_risk", "default_raw")
+    assert demos["compared"].parent == lease.root / "build" / "reports"
+    assert [p.name for p in demos["compared"].parent.iterdir() if p.name.startswith(".")] == []
+    connection = duckdb.connect(str(lease.engine.path), read_only=True)
+    try:
+        tables = [name for (name,) in connection.execute("SELECT table_name FROM information_schema.tables").fetchall()]
+    finally:
+        connection.close()
+    assert [name for name in tables if name.startswith("featpipe_report")] == []
+
+
+# --- numbers against references -------------------------------------------------------------
+
+
+@pytest.mark.parametrize("report, project", [("compared", "lease"), ("claims", "fleet")])
+def test_effect_curves_equal_the_scoring_sql_on_the_same_grid(demos, report, project):
+    curves = curves_of(page(demos[report]))
+    for model in curves["models"]:
+        fitted = read_fitted(demos[project].fitted_path(model))
+        expected = scored_by_duckdb(fitted, independent_grid(demos[project], fitted, curves))
+        shown = np.array([p for curve in curves["curves"] for p in curve["predictions"][model]], dtype=float)
+        assert len(shown) == len(expected)
+        np.testing.assert_allclose(shown, expected, rtol=1e-12, atol=1e-12)
+
+
+def test_raw_model_curves_equal_numpy_arithmetic_on_its_coefficients(demos):
+    """default_raw's terms are the raw inputs and LN(revenue): its curve is the logistic of a sum (numpy)."""
+    curves = curves_of(page(demos["compared"]))
+    raw = read_fitted(demos["lease"].fitted_path("default_raw"))
+    b = raw.coefficients
+    for curve in curves["curves"]:
+        if curve["kind"] == "levels":
+            continue
+        inputs = {name: np.full(len(curve["x"]), float(value)) for name, value in curves["held"].items()
+                  if not isinstance(value, str)}
+        inputs[curve["column"]] = np.array(curve["x"], dtype=float)
+        eta = (b["(intercept)"] + b["firm_age_years"] * inputs["firm_age_years"]
+               + b["log_revenue"] * np.log(inputs["monthly_revenue"]) + b["monthly_payment"] * inputs["monthly_payment"]
+               + b["past_late_payments"] * inputs["past_late_payments"] + b["term_months"] * inputs["term_months"])
+        np.testing.assert_allclose(curve["predictions"]["default_raw"], 1 / (1 + np.exp(-eta)), rtol=1e-12)
+
+
+@pytest.mark.parametrize("project, model", [("lease", "default_risk"), ("fleet", "claim_frequency")])
+def test_held_values_and_grid_ends_are_pandas_medians_and_percentiles_of_the_training_rows(demos, project, model):
+    report = "compared" if project == "lease" else "claims"
+    curves = curves_of(page(demos[report]))
+    rows = training_frame(demos[project], model)
+    assert len(rows) == read_fitted(demos[project].fitted_path(model)).rows["train"]
+    types = demos[project].inputs[read_fitted(demos[project].fitted_path(model)).input].columns
+    for name, held in curves["held"].items():
+        if types[name] == "VARCHAR":
+            counts = rows[name].value_counts()
+            assert held == sorted(counts[counts == counts.max()].index)[0]
+        elif types[name] == "BIGINT":
+            assert held == math.floor(rows[name].median() + 0.5)
+        else:
+            assert held == pytest.approx(rows[name].median(), rel=1e-12)
+    for curve in curves["curves"]:
+        if types[curve["column"]] == "DOUBLE":
+            # numpy's default (linear) percentile is PERCENTILE_CONT's rule
+            low, high = np.percentile(rows[curve["column"]].dropna(), [1, 99])
+            assert curve["x"][0] == pytest.approx(low, rel=1e-12) and curve["x"][-1] == pytest.approx(high, rel=1e-12)
+
+
+def test_likelihood_ratio_equals_twice_the_log_likelihood_difference_and_statsmodels(demos):
+    lease = demos["lease"]
+    markup = page(demos["compared"])
+    statistic = float(re.search(r'data-lr="statistic" data-value="([^"]+)"', markup).group(1))
+    p_value = float(re.search(r'data-lr="p_value" data-value="([^"]+)"', markup).group(1))
+    df = int(re.search(r'<span data-lr="df">(\d+)</span>', markup).group(1))
+    risk, raw = (read_fitted(lease.fitted_path(name)) for name in ("default_risk", "default_raw"))
+    assert statistic == 2 * (risk.fit["log_likelihood"] - raw.fit["log_likelihood"])
+
+    results = {}
+    connection = duckdb.connect(str(lease.engine.path), read_only=True)
+    try:
+        for fitted in (risk, raw):
+            design = connection.execute(f'SELECT * FROM "design_{fitted.model}"').df()
+            names = [term.name for term in fitted.terms[1:]]
+            rows = design[~design["_holdout"].astype(bool) & design[[fitted.target, *names]].notna().all(axis=1)]
+            results[fitted.model] = sm.GLM(rows[fitted.target], sm.add_constant(rows[names]), family=sm.families.Binomial()).fit()
+    finally:
+        connection.close()
+    big, small = results["default_risk"], results["default_raw"]
+    assert big.nobs == small.nobs == risk.rows["train"]
+    reference = 2 * (big.llf - small.llf)
+    assert statistic == pytest.approx(reference, abs=1e-6)
+    assert df == int(big.df_model - small.df_model) == 6
+    assert p_value == pytest.approx(chi2.sf(reference, big.df_model - small.df_model), rel=1e-6)
+
+
+# --- refusals and reasons -----------------------------------------------------------------------
+
+
+def test_comparing_models_of_different_targets_is_refused(demos):
+    lease = demos["lease"]
+    raw = read_fitted(lease.fitted_path("default_raw"))
+    write_fitted(lease.fitted_path("late_payments"), dataclasses.replace(raw, model="late_payments", target="past_late_payments"))
+    try:
+        with pytest.raises(FeatpipeError, match="compare two models of the same target"):
+            write_report(lease, "default_risk", against="late_payments")
+    finally:
+        lease.fitted_path("late_payments").unlink()
+
+
+def test_likelihood_ratio_says_why_when_it_does_not_apply(demos):
+    lease = demos["lease"]
+    risk, raw = (read_fitted(lease.fitted_path(name)) for name in ("default_risk", "default_raw"))
+    rows = risk.rows["train"]
+    assert likelihood_ratio(risk, raw, (rows, rows, rows)).reason is None
+    assert likelihood_ratio(raw, risk, (rows, rows, rows)).larger == "default_risk"
+    assert "not fitted on the same rows" in likelihood_ratio(risk, raw, (rows, rows + 7, rows)).reason
+    extra = dataclasses.replace(raw.terms[1], name="other_term", fingerprint="ffffffffffffffff")
+    not_nested = dataclasses.replace(raw, terms=(*raw.terms, extra))
+    assert "not nested" in likelihood_ratio(risk, not_nested, (rows, rows, rows)).reason
+    penalized = dataclasses.replace(raw, penalty={"l2": 0.5, "l1": 0.0})
+    assert "penalty" in likelihood_ratio(risk, penalized, (rows, rows, rows)).reason
+    assert "same terms" in likelihood_ratio(risk, dataclasses.replace(risk, model="copy"), (rows, rows, rows)).reason
+    assert isinstance(raw.terms[1], FittedTerm)
+
+
+def test_default_pair_is_the_two_inputs_most_terms_read_together(demos):
+    risk = read_fitted(demos["lease"].fitted_path("default_risk"))
+    claims = read_fitted(demos["fleet"].fitted_path("claim_frequency"))
+    raw = read_fitted(demos["lease"].fitted_path("default_raw"))
+    numeric = {"monthly_payment", "monthly_revenue", "firm_age_years", "past_late_payments", "term_months"}
+    # payment_to_revenue and young_and_stretched both read payment and revenue
+    assert default_pair(risk, numeric) == ("monthly_payment", "monthly_revenue")
+    # night_share and heavy_night_share both read annual and night kilometres
+    assert default_pair(claims, {"vehicle_age_years", "annual_km", "drivers", "night_km"}) == ("annual_km", "night_km")
+    # no term of the raw model reads two inputs: its first two numeric inputs
+    assert default_pair(raw, numeric) == ("firm_age_years", "monthly_revenue")
+
+
+def test_a_chosen_pair_and_a_stale_fit_show_in_the_report(demos, tmp_path):
+    lease = demos["lease"]
+    with pytest.raises(FeatpipeError, match="column 'sector' is not numeric"):
+        write_report(lease, "default_risk", pair=("sector", "monthly_payment"), out=tmp_path / "never.html")
+    with pytest.raises(FeatpipeError, match="does not read column 'sector'; choose among firm_age_years"):
+        write_report(lease, "default_raw", pair=("sector", "monthly_payment"), out=tmp_path / "never.html")
+    assert not (tmp_path / "never.html").exists()
+    terms = lease.root / "terms" / "affordability.sql"
+    original = terms.read_text(encoding="utf-8")
+    terms.write_text(original.replace("LN(CASE WHEN monthly_revenue > 0", "LN(CASE WHEN monthly_revenue > 1"), encoding="utf-8")
+    try:
+        written = write_report(api.load_project(lease.root), "default_raw", pair=("term_months", "firm_age_years"),
+                               out=tmp_path / "raw.html")
+    finally:
+        terms.write_text(original, encoding="utf-8")
+    text = text_of(page(written))
+    assert "Over term_months and firm_age_years" in text
+    assert "stale: term 'log_revenue' changed meaning; run `featpipe fit default_raw`" in text
+    assert written == tmp_path / "raw.html"
