@@ -40,6 +40,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 SEED = 20240612
 CHUNK_ROWS = 1_000_000
+ROW_GROUP_ROWS = 122_880  # DuckDB's own row group size: readers split the file across threads by row group
 SECTORS = ["construction", "retail", "logistics", "food_service", "manufacturing", "health"]
 
 TERMS_SQL = """\
@@ -124,7 +125,7 @@ def write_leases(path: Path, rows: int) -> None:
         })
         if writer is None:
             writer = pq.ParquetWriter(path, chunk.schema)
-        writer.write_table(chunk)
+        writer.write_table(chunk, row_group_size=ROW_GROUP_ROWS)
     writer.close()
 
 

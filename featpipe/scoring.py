@@ -1,7 +1,7 @@
 """Scoring API: the exported scoring SQL of a fitted model, and batch scoring inside the engine.
 
-    >>> import featpipe.scoring as scoring
-    >>> project = featpipe.load_project("projects/lease_default")                     # doctest: +SKIP
+    >>> from featpipe import load_project, scoring
+    >>> project = load_project("projects/lease_default")                              # doctest: +SKIP
     >>> print(scoring.render_score_sql(project, "default_risk", dialect="postgres"))  # doctest: +SKIP
     >>> scoring.score(project, "default_risk", table="new_leases", into="scores")     # doctest: +SKIP
 
@@ -12,12 +12,11 @@ whose terms changed since it was fitted (unless allowed).
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass
 
 from sqlglot import exp
 
-from .api import DIALECTS, connect
+from .api import DIALECTS, Progress, connect
 from .compiler import compile_project
 from .contract import check_contract
 from .errors import FeatpipeError
@@ -25,8 +24,6 @@ from .fitted import FittedModel, file_hash, read_fitted, staleness
 from .project import PROJECT_FILE, InputSpec, Project
 from .sqlgen.common import column
 from .sqlgen.score import FITTED_DIALECT, STATUS, model_terms, render_score, score_query, score_statement
-
-Progress = Callable[[str], None]
 
 
 @dataclass(frozen=True)
@@ -93,7 +90,8 @@ def score(
         raise FeatpipeError(f"--into '{into}' is the table being scored; write the scores to another table")
     stale = _staleness(project, fitted)
     if stale and not allow_stale:
-        raise FeatpipeError(f"fitted/{model}.yaml is stale: {'; '.join(stale)}; run `featpipe fit -p {project.root} {model}` "
+        raise FeatpipeError(f"fitted/{model}.yaml is stale: {'; '.join(stale)}; "
+                            f"run `featpipe fit -p {project.root} {model}` "
                             "or pass --allow-stale to score with the fitted definitions anyway")
     contract = scoring_contract(project.inputs[fitted.input], fitted)
     query = score_query(fitted, table=table, reasons=reasons)

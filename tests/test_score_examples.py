@@ -15,7 +15,7 @@ import sys
 import pytest
 import sqlglot
 from fixtures_engines import require_engine
-from test_score_command import database, shop, write_shop_fit  # noqa: F401 - shop is a fixture
+from test_score_command import database, shop  # noqa: F401 - shop is a fixture
 
 from conftest import REPO
 from featpipe.project import load_project

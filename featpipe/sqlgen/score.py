@@ -10,6 +10,9 @@ files, so a later edit of a term cannot change what a fitted model scores. The q
     reason_ranks   (with reasons) each term's rank among the contributions
     final SELECT   the prediction through the inverse link, and the reason codes
 
+The prediction uses the fit's own inverse link (`metrics.prediction`): the linear predictor is clamped
+to [-700, 700] before EXP, so EXP never overflows, nor underflows to an error on PostgreSQL.
+
 Output columns, in order: the key, `prediction`, `linear_predictor`, `offset` (models with an offset
 only), `contribution_<term>` per term in model order, `status`, and with reasons K > 0,
 `reason_1` .. `reason_K`.
@@ -94,47 +97,67 @@ def score_query(fitted: FittedModel, *, table: str | None = None, reasons: int =
     if not 0 <= reasons <= len(terms):
         raise FeatpipeError(f"--reasons must be between 0 and {len(terms)}, the number of terms of model '{fitted.model}'")
     _refuse_clashes(fitted, terms)
-    key = fitted.key
     names = [term.name for term in terms]
-    has_offset = fitted.offset is not None
-
-    values = [alias(column(key), key)]
-    values += [alias(term_value(fitted, term), term.name) for term in terms]
-    if has_offset:
-        values.append(alias(_parsed(fitted, "offset", fitted.offset, is_boolean=False), OFFSET_COLUMN))
-    term_values = exp.select(*values).from_(exp.to_table(table or fitted.input))
-
-    carried = [column(key), *map(column, names), *([column(OFFSET_COLUMN)] if has_offset else [])]
-    checked = exp.select(*carried, alias(status_expression(names, has_offset), STATUS)).from_(exp.to_table(TERM_VALUES))
-
-    ok = column(STATUS).eq(exp.Literal.string(OK))
-    contributions = [
-        alias(exp.Case().when(ok, exp.Mul(this=number(term.estimate), expression=exp.Paren(this=exp.Sub(
-            this=column(term.name), expression=number(_mean(fitted, term)))))), contribution_column(term.name))
-        for term in terms
+    steps = [
+        (TERM_VALUES, _term_values(fitted, terms, table or fitted.input)),
+        (CHECKED, _checked_terms(fitted, names)),
+        (CONTRIBUTIONS, _contributions(fitted, terms)),
     ]
-    offset_out = [alias(column(OFFSET_COLUMN), OFFSET)] if has_offset else []
-    # checked_terms has the shape of a design table (key, DOUBLE terms, offset), so the fit's own
-    # linear predictor and inverse link apply to it unchanged.
-    shape = DesignLayout(CHECKED, key, fitted.target, tuple(names), offset=OFFSET_COLUMN if has_offset else None)
-    eta = linear_predictor(shape, fitted.coefficients)
-    linear = exp.select(column(key), column(STATUS), alias(eta, LINEAR_PREDICTOR), *offset_out, *contributions).from_(exp.to_table(CHECKED))
-
-    outputs = [column(key), alias(_prediction(fitted.family, column(LINEAR_PREDICTOR)), PREDICTION), column(LINEAR_PREDICTOR)]
-    outputs += [column(OFFSET)] if has_offset else []
+    outputs = [column(fitted.key), alias(_prediction(fitted.family, column(LINEAR_PREDICTOR)), PREDICTION),
+               column(LINEAR_PREDICTOR)]
+    outputs += [column(OFFSET)] if fitted.offset is not None else []
     outputs += [column(contribution_column(name)) for name in names]
     outputs.append(column(STATUS))
-    ctes = [(TERM_VALUES, term_values), (CHECKED, checked), (CONTRIBUTIONS, linear)]
     if reasons:
-        ranks = exp.select(*(column(e.alias_or_name) for e in linear.expressions), *(
-            alias(rank_expression(names, index), _rank_column(name)) for index, name in enumerate(names)
-        )).from_(exp.to_table(CONTRIBUTIONS))
-        ctes.append((RANKS, ranks))
+        steps.append((RANKS, _reason_ranks(names, steps[-1][1])))
         outputs += [alias(reason_expression(names, rank), reason_column(rank)) for rank in range(1, reasons + 1)]
-    query = exp.select(*outputs).from_(exp.to_table(ctes[-1][0]))
-    for name, step in ctes:
+    query = exp.select(*outputs).from_(exp.to_table(steps[-1][0]))
+    for name, step in steps:
         query = query.with_(name, as_=step)
     return query
+
+
+def _term_values(fitted: FittedModel, terms: tuple[FittedTerm, ...], table: str) -> exp.Select:
+    """The key, each term's value as DOUBLE and the offset, from the input table."""
+    values = [column(fitted.key), *(alias(term_value(fitted, term), term.name) for term in terms)]
+    if fitted.offset is not None:
+        values.append(alias(_parsed(fitted, "offset", fitted.offset, is_boolean=False), OFFSET_COLUMN))
+    return exp.select(*values).from_(exp.to_table(table))
+
+
+def _checked_terms(fitted: FittedModel, names: list[str]) -> exp.Select:
+    """Everything of term_values, plus the row's status."""
+    has_offset = fitted.offset is not None
+    carried = [column(fitted.key), *map(column, names), *([column(OFFSET_COLUMN)] if has_offset else [])]
+    status = alias(status_expression(names, has_offset), STATUS)
+    return exp.select(*carried, status).from_(exp.to_table(TERM_VALUES))
+
+
+def _contributions(fitted: FittedModel, terms: tuple[FittedTerm, ...]) -> exp.Select:
+    """The key, status, linear predictor, offset and, on complete rows, each term's contribution.
+
+    checked_terms has the shape of a design table (key, DOUBLE terms, offset), so the fit's own linear
+    predictor applies to it unchanged.
+    """
+    names = tuple(term.name for term in terms)
+    has_offset = fitted.offset is not None
+    shape = DesignLayout(CHECKED, fitted.key, fitted.target, names, offset=OFFSET_COLUMN if has_offset else None)
+    complete = column(STATUS).eq(exp.Literal.string(OK))
+    projections = [column(fitted.key), column(STATUS),
+                   alias(linear_predictor(shape, fitted.coefficients), LINEAR_PREDICTOR)]
+    projections += [alias(column(OFFSET_COLUMN), OFFSET)] if has_offset else []
+    for term in terms:
+        centred = exp.Paren(this=exp.Sub(this=column(term.name), expression=number(_mean(fitted, term))))
+        contribution = exp.Case().when(complete.copy(), exp.Mul(this=number(term.estimate), expression=centred))
+        projections.append(alias(contribution, contribution_column(term.name)))
+    return exp.select(*projections).from_(exp.to_table(CHECKED))
+
+
+def _reason_ranks(names: list[str], contributions: exp.Select) -> exp.Select:
+    """Everything of contributions, plus each term's rank among the positive contributions."""
+    carried = [column(projection.alias_or_name) for projection in contributions.expressions]
+    ranks = [alias(rank_expression(names, index), _rank_column(name)) for index, name in enumerate(names)]
+    return exp.select(*carried, *ranks).from_(exp.to_table(CONTRIBUTIONS))
 
 
 def term_value(fitted: FittedModel, term: FittedTerm) -> exp.Expression:
@@ -171,7 +194,8 @@ def reason_expression(names: list[str], rank: int) -> exp.Expression:
     """The name of the term ranked `rank` among the positive contributions, or NULL."""
     case = exp.Case()
     for name in names:
-        case = case.when(exp.EQ(this=column(_rank_column(name)), expression=exp.Literal.number(rank)), exp.Literal.string(name))
+        ranked = exp.EQ(this=column(_rank_column(name)), expression=exp.Literal.number(rank))
+        case = case.when(ranked, exp.Literal.string(name))
     return case
 
 
