@@ -161,7 +161,7 @@ def fit_models(engine: Engine, project: Project, compiled: CompiledProject, mode
         fitted = fit_model(engine, compiled, model)
         path = project.fitted_path(model.name)
         before = path.read_bytes() if path.is_file() else None
-        write_fitted(path, fitted)
+        fitted = write_fitted(path, fitted)
         outcomes.append(FitOutcome(model.name, path, fitted, before != path.read_bytes()))
     return outcomes
 

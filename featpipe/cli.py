@@ -135,6 +135,7 @@ def materialize(
 class Part(str, Enum):
     terms = "terms"
     design = "design"
+    drift = "drift"
 
 
 @app.command()
@@ -146,7 +147,13 @@ def sql(
     table: Annotated[Optional[str], typer.Option("--table", help="Read this table instead of the input's name.")] = None,
 ) -> None:
     """Print the generated SQL of a model, rendered for a dialect."""
-    print(api.render_sql(load_project(project), model, part.value, dialect, table), end="")
+    loaded = load_project(project)
+    if part == Part.drift:
+        from .drift import render_drift_sql
+
+        print(render_drift_sql(loaded, model, table, dialect), end="")
+        return
+    print(api.render_sql(loaded, model, part.value, dialect, table), end="")
 
 
 def _number(value, digits: int = 4) -> str:
@@ -247,6 +254,85 @@ def refresh(project: ProjectOption = None, json_output: JsonOption = False) -> N
     for outcome in outcomes:
         _print_fit_summary(outcome.fitted)
         out.print(f"wrote {outcome.path}" + ("" if outcome.changed else " (unchanged)"))
+
+
+@app.command()
+def drift(
+    model: Annotated[str, typer.Argument(help="Model name (fitted/NAME.yaml).")],
+    table: Annotated[str, typer.Option("--table", "-t", help="The batch to compare with the model's training rows.")],
+    project: ProjectOption = None,
+    json_output: JsonOption = False,
+    fail_above: Annotated[Optional[float], typer.Option(
+        "--fail-above", help="Exit 1 when any term's or the score's PSI is above this (0.25: a major shift).")] = None,
+    allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Compare even if the model's terms changed since its fit.")] = False,
+) -> None:
+    """Stability of each term and of the score in a batch against the training rows (population stability index)."""
+    from .drift import drift as compare
+
+    report = compare(load_project(project), model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
+    if json_output:
+        _print_json(report.as_dict())
+    else:
+        out.print(drift_table(report))
+        out.print("terms ranked by how far their mean contribution to the linear predictor moved (0 in training); "
+                  "PSI over the training deciles with NULL as a bin of its own, empty bins counted as 0.0001; "
+                  "below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice)")
+        for reason in report.stale:
+            out.print(f"[red]stale:[/red] {reason}")
+    if fail_above is not None:
+        over = report.exceeding(fail_above)
+        if over:
+            err.print(f"PSI above {fail_above:g}: {', '.join(over)}", markup=False)
+            raise typer.Exit(1)
+
+
+def drift_table(report) -> Table:
+    """One line per term (ranked by |shift|) and one for the score."""
+    table = Table(title=f"{report.model}: table {report.table}, {report.rows} rows against the training rows")
+    for heading in ("rank", "term", "PSI", "reading", "shift", "NULL (training)", "below min", "above max"):
+        table.add_column(heading, justify="left" if heading in ("term", "reading") else "right")
+
+    def share(value: float) -> str:
+        return f"{value:.1%}"
+
+    for row in (*report.terms, report.score):
+        name = "score (linear predictor)" if row.rank is None else row.name
+        table.add_row(
+            "" if row.rank is None else str(row.rank), name, f"{row.psi:.4f}", row.reading, _number(row.shift, 3),
+            f"{share(row.null_share)} ({share(row.training_null_share)})", share(row.below_min_share), share(row.above_max_share),
+            end_section=row.rank == len(report.terms),
+        )
+    return table
+
+
+class DiffFormat(str, Enum):
+    text = "text"
+    markdown = "markdown"
+
+
+@app.command()
+def diff(
+    project: ProjectOption = None,
+    since: Annotated[Optional[str], typer.Option(
+        "--since", help="Git revision to compare with (default: the merge base with the default branch, else HEAD).")] = None,
+    json_output: JsonOption = False,
+    format: Annotated[DiffFormat, typer.Option("--format", help="text, or markdown to post as a review comment.")] = DiffFormat.text,
+    fail_on_stale: Annotated[bool, typer.Option(
+        "--fail-on-stale", help="Exit 1 when a change leaves a fitted model stale (for CI gates).")] = False,
+) -> None:
+    """What changed in meaning since a git revision, and which fits went stale."""
+    from .diff import diff_project
+    from .diffformat import render_markdown, render_text
+
+    change = diff_project(project, since)
+    if json_output:
+        _print_json(change.as_dict())
+    elif format == DiffFormat.markdown:
+        print(render_markdown(change), end="")
+    else:
+        print(render_text(change), end="")
+    if fail_on_stale and change.left_stale:
+        raise typer.Exit(1)
 
 
 def main() -> None:

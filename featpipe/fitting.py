@@ -116,7 +116,7 @@ def _fitted_term(glm, index: int, term: Term | None, spec, model: CompiledModel,
     vif = _optional(glm.vif, index)
     notes = term_notes(
         name=term.name, family=spec.family, target=spec.target, estimate=estimate, ci_low=low, ci_high=high,
-        p_value=common["p_value"], step=step, expect=spec.expect.get(term.name), vif=vif, related=related,
+        p_value=common["p_value"], step=step, kind=term.kind, expect=spec.expect.get(term.name), vif=vif, related=related,
         human_note=spec.notes.get(term.name), penalized=spec.penalty.active,
     )
     return FittedTerm(

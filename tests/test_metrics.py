@@ -208,12 +208,6 @@ def test_count_and_measurement_metrics_match_scikit_learn(engine, layout, family
 
 
 @pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
-def test_metrics_are_identical_when_computed_again(engine):
-    first = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
-    assert holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5) == first
-
-
-@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
 def test_undefined_ratios_are_none(engine):
     # A threshold no probability reaches: no predicted events, so precision has no denominator.
     metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.999)

@@ -119,12 +119,6 @@ def test_linear_predictor_profile_matches_numpy(engine):
     assert_profile(profiles["linear_predictor"], reference_profile(eta[training]))
 
 
-@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
-def test_profiles_are_identical_when_computed_again(engine):
-    columns = {name: column(name) for name in LAYOUT.terms}
-    assert training_profiles(engine, LAYOUT, columns) == training_profiles(engine, LAYOUT, columns)
-
-
 @pytest.mark.parametrize("n", [1, 2, 9, 10, 11, 29, 30, 31, 99, 100, 101, 537])
 def test_decile_rank_is_numpys_inverted_cdf_order_statistic(n):
     ordered = np.arange(n, dtype=float)

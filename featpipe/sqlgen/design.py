@@ -33,9 +33,9 @@ def holdout_flag(key: str, holdout: Holdout) -> exp.Expression:
     return exp.LT(this=digits, expression=exp.Literal.string(holdout_threshold(holdout.fraction)))
 
 
-def term_value(term: Term) -> exp.Expression:
+def term_value(term: Term, source: InputSpec) -> exp.Expression:
     """A term's value as DOUBLE from its inlined expression; booleans become 1.0/0.0, NULL stays NULL."""
-    return as_number(harden(term.inlined), term.kind == "boolean")
+    return as_number(harden(term.inlined, schema=source.columns), term.kind == "boolean")
 
 
 def target_value(name: str, declared_type: str) -> exp.Expression:
@@ -46,7 +46,7 @@ def target_value(name: str, declared_type: str) -> exp.Expression:
 def terms_query(terms: list[Term], source: InputSpec, table: str | None = None) -> exp.Select:
     """Key and every term value of one input."""
     projections = [alias(column(source.key), source.key)]
-    projections += [alias(term_value(term), term.name) for term in terms]
+    projections += [alias(term_value(term, source), term.name) for term in terms]
     return exp.select(*projections).from_(exp.to_table(table or source.name))
 
 
@@ -58,9 +58,9 @@ def design_query(model: CompiledModel, source: InputSpec, table: str | None = No
         alias(target_value(spec.target, source.columns[spec.target]), layout.target),
     ]
     if model.offset is not None:
-        projections.append(alias(as_number(harden(model.offset), False), layout.offset))
+        projections.append(alias(as_number(harden(model.offset, schema=source.columns), False), layout.offset))
     if spec.weights:
         projections.append(alias(double(column(spec.weights)), layout.weight))
     projections.append(alias(holdout_flag(source.key, spec.holdout), layout.holdout))
-    projections += [alias(term_value(term), term.name) for term in model.terms]
+    projections += [alias(term_value(term, source), term.name) for term in model.terms]
     return exp.select(*projections).from_(exp.to_table(table or source.name))

@@ -1,0 +1,110 @@
+"""`featpipe fit` on the demo projects, end to end: the fitted file against statsmodels, determinism,
+atomic failure, staleness, explain and refresh."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+
+import featpipe
+from featpipe import api
+from featpipe.engines.statements import select_all
+from featpipe.errors import FeatpipeError
+from featpipe.explain import explain
+from featpipe.fitted import read_fitted
+from conftest import copy_demo
+
+FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson()}
+
+
+@pytest.fixture(scope="module")
+def fitted_demos(tmp_path_factory):
+    root = tmp_path_factory.mktemp("fits")
+    projects = {name: featpipe.load_project(copy_demo(name, root)) for name in ("lease_default", "fleet_claims")}
+    for project in projects.values():
+        api.fit(project)
+    return projects
+
+
+@pytest.mark.parametrize("demo, model", [("lease_default", "default_risk"), ("lease_default", "default_raw"),
+                                         ("fleet_claims", "claim_frequency")])
+def test_the_fitted_file_agrees_with_statsmodels_on_the_same_rows(fitted_demos, demo, model):
+    project = fitted_demos[demo]
+    fitted = read_fitted(project.fitted_path(model))
+    layout = api.check(project).models[model].layout
+    with api.connect(project) as engine:
+        rows = engine.fetch_frame(select_all(layout.table).where(layout.training_rows())).sort_values(layout.key)
+    design = sm.add_constant(rows[list(layout.terms)].to_numpy(float), has_constant="add")
+    offset = rows[layout.offset].to_numpy(float) if layout.offset else None
+    # Reference library: statsmodels GLM, the same rows and terms, default IRLS.
+    reference = sm.GLM(rows[layout.target].to_numpy(float), design, family=FAMILIES[fitted.family], offset=offset).fit()
+    assert fitted.rows["train"] == len(rows)
+    np.testing.assert_allclose([t.estimate for t in fitted.terms], reference.params, rtol=1e-6)
+    np.testing.assert_allclose([t.std_error for t in fitted.terms], reference.bse, rtol=1e-6)
+    np.testing.assert_allclose([t.p_value for t in fitted.terms], reference.pvalues, rtol=1e-5)
+    assert fitted.fit["deviance"] == pytest.approx(reference.deviance, rel=1e-9)
+    assert fitted.fit["null_deviance"] == pytest.approx(reference.null_deviance, rel=1e-9)
+    assert fitted.fit["aic"] == pytest.approx(reference.aic, rel=1e-9)
+    low, high = reference.conf_int().T
+    np.testing.assert_allclose([t.ci_low for t in fitted.terms], low, rtol=1e-6)
+    np.testing.assert_allclose([t.ci_high for t in fitted.terms], high, rtol=1e-6)
+
+
+def test_the_same_definitions_and_data_give_a_byte_identical_file(fitted_demos):
+    project = fitted_demos["lease_default"]
+    path = project.fitted_path("default_risk")
+    before = path.read_bytes()
+    (outcome,) = api.fit(project, ["default_risk"])
+    assert not outcome.changed and path.read_bytes() == before
+
+
+def test_every_term_carries_fingerprint_sql_effect_and_notes(fitted_demos):
+    fitted = read_fitted(fitted_demos["lease_default"].fitted_path("default_risk"))
+    ratio = fitted.term("payment_to_revenue")
+    assert ratio.sql == '"monthly_payment" / NULLIF("monthly_revenue", 0)'
+    assert ratio.effect.kind == "odds ratio" and ratio.effect.step == 0.1
+    assert ratio.effect.value == pytest.approx(np.exp(0.1 * ratio.estimate), rel=1e-11)
+    assert ratio.notes[0] == "Underwriting guidance treats a payment above 15% of revenue as stretched."
+    assert any(note.startswith("each increase of 0.1 in payment to revenue multiplies the odds") for note in ratio.notes)
+    assert any("read together with" in note and "young_and_stretched" in note for note in ratio.notes)
+    assert fitted.rows["dropped"] == {"null term payment_to_revenue": 58, "null term young_and_stretched": 58,
+                                      "null term log_revenue": 58}
+    assert fitted.metrics["rows"] == fitted.rows["holdout"]
+
+
+def test_a_failed_fit_leaves_the_previous_file(fitted_demos, tmp_path):
+    project_root = copy_demo("lease_default", tmp_path)
+    api.fit(featpipe.load_project(project_root), ["default_risk"])
+    path = project_root / "fitted" / "default_risk.yaml"
+    before = path.read_bytes()
+    spec = project_root / "models" / "default_risk.yaml"
+    spec.write_text(spec.read_text().replace("max_dropped: 0.03", "max_dropped: 0.001"))
+    with pytest.raises(FeatpipeError, match=r"58 of 5000 rows \(1.2%\) have a NULL .* more than max_dropped 0.001"):
+        api.fit(featpipe.load_project(project_root), ["default_risk"])
+    assert path.read_bytes() == before
+
+
+def test_an_edited_term_makes_the_fit_stale_and_refresh_refits(tmp_path):
+    root = copy_demo("fleet_claims", tmp_path)
+    project = featpipe.load_project(root)
+    assert [o.model for o in api.refresh(project)] == ["claim_frequency"]
+    assert api.refresh(project) == []  # everything is up to date
+    usage = root / "terms" / "usage.sql"
+    usage.write_text(usage.read_text().replace("/ 1000.0", "/ 100.0"))
+    project = featpipe.load_project(root)
+    assert api.check_report(project).stale == ("fitted/claim_frequency.yaml is stale: term 'km_per_driver' changed meaning",)
+    assert [o.model for o in api.refresh(project)] == ["claim_frequency"]
+    assert api.check_report(featpipe.load_project(root)).stale == ()
+
+
+def test_explain_a_term_and_a_model(fitted_demos):
+    compiled = api.check(fitted_demos["lease_default"])
+    term = explain(compiled, "payment_to_revenue")
+    assert term["where"] == "terms/affordability.sql:5:51"
+    assert [use["model"] for use in term["models"]] == ["default_risk"]
+    assert term["models"][0]["fitted"]["estimate"] > 0 and term["models"][0]["stale"] == []
+    model = explain(compiled, "default_raw")
+    assert model["fitted"]["family"] == "binomial"
+    with pytest.raises(FeatpipeError, match="did you mean 'payment_to_revenue'"):
+        explain(compiled, "payment_to_revenu")
