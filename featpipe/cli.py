@@ -195,7 +195,10 @@ ModelsArgument = Annotated[Optional[list[str]], typer.Argument(help="Models to f
 @app.command()
 def fit(models: ModelsArgument = None, project: ProjectOption = None, json_output: JsonOption = False) -> None:
     """Fit models in the engine, write fitted/MODEL.yaml and print the coefficient table."""
-    outcomes = api.fit(load_project(project), models, progress=None if json_output else _progress)
+    _print_outcomes(api.fit(load_project(project), models, progress=None if json_output else _progress), json_output)
+
+
+def _print_outcomes(outcomes: list[api.FitOutcome], json_output: bool) -> None:
     if json_output:
         _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed, "fitted": asdict(o.fitted)} for o in outcomes])
         return
@@ -246,14 +249,9 @@ def explain(
 def refresh(project: ProjectOption = None, json_output: JsonOption = False) -> None:
     """Check, then bring every stale design table and fit up to date."""
     outcomes = api.refresh(load_project(project), progress=None if json_output else _progress)
-    if json_output:
-        _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed} for o in outcomes])
-        return
-    if not outcomes:
+    if not outcomes and not json_output:
         out.print("everything is up to date")
-    for outcome in outcomes:
-        _print_fit_summary(outcome.fitted)
-        out.print(f"wrote {outcome.path}" + ("" if outcome.changed else " (unchanged)"))
+    _print_outcomes(outcomes, json_output)
 
 
 @app.command()
