@@ -34,7 +34,7 @@ from featpipe.errors import FeatpipeError
 from featpipe.fitted import FittedTerm, read_fitted, write_fitted
 from featpipe.report import report_path, write_report
 from featpipe.report.compare import likelihood_ratio
-from featpipe.report.data import default_pair, term_inputs
+from featpipe.report.data import default_pair, gather, term_inputs
 from featpipe.report.render import CURVES_ID, metric_text
 from featpipe.sqlgen.score import score_query
 
@@ -351,3 +351,93 @@ def test_a_chosen_pair_and_a_stale_fit_show_in_the_report(demos, tmp_path):
     assert "Over term_months and firm_age_years" in text
     assert "stale: term 'log_revenue' changed meaning; run `featpipe fit default_raw`" in text
     assert written == tmp_path / "raw.html"
+
+
+def test_the_report_data_are_the_same_on_postgresql(demos, postgres_engine):
+    """Ranges, held values, grids and predictions gathered on PostgreSQL equal DuckDB's (real engines)."""
+    lease = demos["lease"]
+    source = lease.inputs["leases"]
+    risk, raw = (read_fitted(lease.fitted_path(name)) for name in ("default_risk", "default_raw"))
+    postgres_engine.load_file("leases", source.load)
+    on_postgres = gather(postgres_engine, source, risk, raw)
+    with api.connect(lease) as engine:
+        on_duckdb = gather(engine, source, risk, raw)
+    assert on_postgres.held.keys() == on_duckdb.held.keys()
+    for name, value in on_duckdb.held.items():
+        assert on_postgres.held[name] == (value if isinstance(value, str) else pytest.approx(value, rel=1e-12)), name
+    assert on_postgres.shared_rows == on_duckdb.shared_rows == (3435, 3435, 3435)
+    assert on_postgres.figures == on_duckdb.figures
+    for mine, theirs in zip(on_postgres.curves, on_duckdb.curves, strict=True):
+        assert mine.x == theirs.x if mine.kind == "levels" else mine.x == pytest.approx(theirs.x, rel=1e-12)
+        for model in ("default_risk", "default_raw"):
+            np.testing.assert_allclose(mine.predictions[model], theirs.predictions[model], rtol=1e-12)
+    for model in ("default_risk", "default_raw"):
+        np.testing.assert_allclose(on_postgres.surface.predictions[model], on_duckdb.surface.predictions[model], rtol=1e-12)
+    assert on_postgres.surface.points == on_duckdb.surface.points  # the same MD5-ordered sample
+
+
+def holdout_deviance_residual_deciles(project, fitted, family) -> list[dict]:
+    """Deciles of the held-out predictions (numpy on the design table, NTILE's split: larger groups first)
+    with statsmodels' deviance residuals (reference library) summarised by numpy's linear percentiles."""
+    connection = duckdb.connect(str(project.engine.path), read_only=True)
+    try:
+        design = connection.execute(f'SELECT * FROM "design_{fitted.model}"').df()
+    finally:
+        connection.close()
+    names = [term.name for term in fitted.terms[1:]]
+    needed = [fitted.target, *names, *(["_offset"] if fitted.offset else [])]
+    rows = design[design["_holdout"].astype(bool) & design[needed].notna().all(axis=1)]
+    b = fitted.coefficients
+    eta = b["(intercept)"] + sum(b[name] * rows[name].to_numpy() for name in names)
+    eta = eta + (rows["_offset"].to_numpy() if fitted.offset else 0.0)
+    mu = np.exp(eta) if family is sm.families.Poisson else eta
+    y = rows[fitted.target].to_numpy()
+    order = np.lexsort((rows[fitted.key].to_numpy(), mu))
+    residuals = family().resid_dev(y, mu)
+    deciles = []
+    for number, chunk in enumerate(np.array_split(order, 10), start=1):
+        q10, q25, q50, q75, q90 = np.percentile(residuals[chunk], [10, 25, 50, 75, 90])
+        deciles.append({"decile": number, "rows": len(chunk), "mean_predicted": mu[chunk].mean(),
+                        "mean_observed": y[chunk].mean(), "q10": q10, "q25": q25, "q50": q50, "q75": q75, "q90": q90})
+    return deciles
+
+
+def test_poisson_residual_deciles_equal_statsmodels_deviance_residuals(demos):
+    fleet = demos["fleet"]
+    fitted = read_fitted(fleet.fitted_path("claim_frequency"))
+    with api.connect(fleet) as engine:
+        shown = gather(engine, fleet.inputs["vehicle_years"], fitted).figures.residual_deciles
+    expected = holdout_deviance_residual_deciles(fleet, fitted, sm.families.Poisson)
+    assert [d["rows"] for d in shown] == [d["rows"] for d in expected] == [121] * 8 + [120] * 2
+    for mine, theirs, calibration in zip(shown, expected, fitted.metrics["calibration"], strict=True):
+        assert mine == pytest.approx(theirs, rel=1e-9, abs=1e-12)
+        assert mine["mean_predicted"] == pytest.approx(calibration["mean_predicted"], rel=1e-12)
+
+
+GAUSSIAN_MODEL = """\
+input: leases
+target: monthly_payment
+family: gaussian
+terms: [firm_age_years, log_revenue, term_months, sector_health]
+holdout: {fraction: 0.3, salt: "v1"}
+"""
+
+
+def test_a_gaussian_model_gets_its_report_with_residuals_by_decile(demos):
+    lease = demos["lease"]
+    spec = lease.root / "models" / "payment_size.yaml"
+    spec.write_text(GAUSSIAN_MODEL, encoding="utf-8")
+    try:
+        project = api.load_project(lease.root)
+        api.fit(project, ["payment_size"])
+        written = write_report(project, "payment_size")
+        fitted = read_fitted(project.fitted_path("payment_size"))
+        with api.connect(project) as engine:
+            shown = gather(engine, project.inputs["leases"], fitted).figures.residual_deciles
+    finally:
+        spec.unlink()
+    markup = page(written)
+    assert len(re.findall(r"<figure[^>]*>\s*<svg", markup)) == 1 + 4 + 1 + 2  # intervals, 4 inputs, surface, 2 checks
+    assert "difference per step" in markup and "Deviance residuals by decile" in markup
+    for mine, theirs in zip(shown, holdout_deviance_residual_deciles(project, fitted, sm.families.Gaussian), strict=True):
+        assert mine == pytest.approx(theirs, rel=1e-9, abs=1e-9)

@@ -126,7 +126,9 @@ def curve_plot(curve: Curve, models: Sequence[FittedModel], name: str) -> str:
         _readable_ticks(axes.xaxis)
     if fitted.family == "binomial":
         axes.axhline(fitted.threshold, color="#444444", linewidth=0.8, linestyle=":")
-    axes.set_ylim(bottom=0)
+    if fitted.family != "gaussian":  # probabilities and counts start at zero
+        axes.set_ylim(bottom=0)
+    axes.margins(y=0.08)
     axes.set_ylabel(prediction_label(fitted), fontsize=7.5)
     if len(models) > 1:
         axes.legend(loc="best")

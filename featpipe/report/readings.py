@@ -60,6 +60,8 @@ def curves(fitted: FittedModel, curve_list: Sequence[Curve], held: dict, other: 
         values = [v for v in curve.predictions[fitted.model] if v is not None]
         if values:
             swings.append((max(values) - min(values), curve, min(values), max(values)))
+    if not swings:
+        return "No grid point could be scored (a term is NULL at the held values), so the curves are empty."
     swing, widest, low, high = max(swings, key=lambda item: item[0])
     texts = [f"{name} at {held[name]!r}" for name in held if held[name] is not None and isinstance(held[name], str)]
     levels = f" ({', '.join(texts)})" if texts else ""

@@ -21,14 +21,14 @@ from ..notes import figure
 from ..sqlgen.score import model_terms
 from . import plots, readings
 from .compare import LikelihoodRatio
-from .data import LEVELS, ReportData, roc_points
+from .data import INTEGER, LEVELS, ReportData, roc_points
 
 CURVES_ID = "effect-curves"
 HISTOGRAM_BINS = 40
 METRICS = {
     "binomial": (
         ("accuracy", "accuracy at the threshold"),
-        ("baseline_accuracy", "accuracy of always predicting the majority class"),
+        ("baseline_accuracy", "baseline accuracy (majority class)"),
         ("precision", "precision"),
         ("recall", "recall"),
         ("auc", "AUC"),
@@ -197,9 +197,10 @@ def _curve(curve, models, held, index: int) -> dict:
                    f"'{held[curve.column]}' in the other curves.")
     else:
         span = curve.range
-        caption = (f"{curve.column}: training values {figure(span.minimum)} to {figure(span.maximum)}, drawn "
-                   f"from the 1st to the 99th percentile ({figure(span.low)} to {figure(span.high)}); held at "
-                   f"the median {figure(held[curve.column])} in the other curves. Ticks: a sample of training values.")
+        shown = (lambda value: f"{value:,.0f}") if curve.kind == INTEGER else figure
+        caption = (f"{curve.column}: training values {shown(span.minimum)} to {shown(span.maximum)}, drawn "
+                   f"from the 1st to the 99th percentile ({shown(span.low)} to {shown(span.high)}); held at "
+                   f"the median {shown(held[curve.column])} in the other curves. Ticks: a sample of training values.")
     return {"column": curve.column, "svg": Markup(plots.curve_plot(curve, models, f"curve{index}")), "caption": caption}
 
 
