@@ -168,3 +168,19 @@ def test_exported_sql_names_the_fitted_file_hash_and_runs_without_featpipe(shop)
 def test_unknown_dialect_is_refused(shop):
     with pytest.raises(FeatpipeError, match="unknown dialect 'oracle'"):
         render_score_sql(load_project(shop), "returns", dialect="oracle")
+
+
+def test_score_runs_in_a_postgres_project(tmp_path, postgres_engine, monkeypatch):
+    """The same command with `engine: {kind: postgres, dsn: ${SCORE_TEST_DSN}}`: the scores are written there."""
+    from conftest import PROJECT_YAML
+
+    monkeypatch.setenv("SCORE_TEST_DSN", postgres_engine.dsn)
+    postgres_yaml = PROJECT_YAML.replace("  kind: duckdb\n  path: build/shop.duckdb\n", "  kind: postgres\n  dsn: ${SCORE_TEST_DSN}\n")
+    root = write_project(tmp_path / "shop", {"featpipe.yaml": postgres_yaml})
+    write_shop_fit(root)
+    postgres_engine.load_file("orders", root / "data" / "orders.csv")
+    result = score(load_project(root), "returns", table="orders", into="scores", reasons=1)
+    assert (result.rows, result.status) == (8, {"missing: item_price": 2, "ok": 6})
+    rows = postgres_engine.fetch(sqlglot.parse_one("SELECT prediction, status FROM scores WHERE order_id = 1"))
+    eta = -0.5 + 0.01 * (120.5 / 3) - 0.8 * 1.0 + 0.25 * 3
+    assert rows[0][0] == pytest.approx(1 / (1 + math.exp(-eta)), rel=1e-12) and rows[0][1] == "ok"
