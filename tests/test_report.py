@@ -31,7 +31,7 @@ from scipy.stats import chi2
 from conftest import copy_demo
 from featpipe import api
 from featpipe.errors import FeatpipeError
-from featpipe.fitted import FittedTerm, read_fitted, write_fitted
+from featpipe.fitted import read_fitted, write_fitted
 from featpipe.report import report_path, write_report
 from featpipe.report.compare import likelihood_ratio
 from featpipe.report.data import default_pair, gather, term_inputs
@@ -316,7 +316,6 @@ def test_likelihood_ratio_says_why_when_it_does_not_apply(demos):
     penalized = dataclasses.replace(raw, penalty={"l2": 0.5, "l1": 0.0})
     assert "penalty" in likelihood_ratio(risk, penalized, (rows, rows, rows)).reason
     assert "same terms" in likelihood_ratio(risk, dataclasses.replace(risk, model="copy"), (rows, rows, rows)).reason
-    assert isinstance(raw.terms[1], FittedTerm)
 
 
 def test_default_pair_is_the_two_inputs_most_terms_read_together(demos):
@@ -334,11 +333,12 @@ def test_default_pair_is_the_two_inputs_most_terms_read_together(demos):
 
 def test_a_chosen_pair_and_a_stale_fit_show_in_the_report(demos, tmp_path):
     lease = demos["lease"]
+    (tmp_path / "never.html").write_text("an earlier report", encoding="utf-8")
     with pytest.raises(FeatpipeError, match="column 'sector' is not numeric"):
         write_report(lease, "default_risk", pair=("sector", "monthly_payment"), out=tmp_path / "never.html")
     with pytest.raises(FeatpipeError, match="does not read column 'sector'; choose among firm_age_years"):
         write_report(lease, "default_raw", pair=("sector", "monthly_payment"), out=tmp_path / "never.html")
-    assert not (tmp_path / "never.html").exists()
+    assert (tmp_path / "never.html").read_text(encoding="utf-8") == "an earlier report"  # a refusal writes nothing
     terms = lease.root / "terms" / "affordability.sql"
     original = terms.read_text(encoding="utf-8")
     terms.write_text(original.replace("LN(CASE WHEN monthly_revenue > 0", "LN(CASE WHEN monthly_revenue > 1"), encoding="utf-8")

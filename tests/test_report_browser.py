@@ -15,7 +15,6 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
-import pytest
 from PIL import Image
 
 from conftest import REPO, copy_demo

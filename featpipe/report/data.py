@@ -247,7 +247,11 @@ def _sample(engine: Engine, table: str, key: str, columns: Sequence[str], where:
     return {name: tuple(row[index] for row in found if row[index] is not None) for index, name in enumerate(columns)}
 
 
-def _curves(engine, grid_table, source, key, models, inputs, ranges, held, rug) -> list[Curve]:
+def _curves(
+    engine: Engine, grid_table: str, source: InputSpec, key: str, models: Sequence[FittedModel], inputs: Sequence[str],
+    ranges: dict[str, InputRange], held: dict[str, object], rug: dict[str, tuple],
+) -> list[Curve]:
+    """One grid table holding every input's curve (block b of keys for input b), scored by each model."""
     blocks, grids = [], {}
     for block, name in enumerate(inputs):
         grids[name] = ranges[name].grid(CURVE_POINTS)
@@ -271,7 +275,10 @@ def _grid_predictions(engine: Engine, fitted: FittedModel, grid_table: str) -> d
             for k, p in zip(frame[fitted.key], frame[PREDICTION])}
 
 
-def _surface(engine, grid_table, rows_table, source, models, pair, ranges, held) -> Surface:
+def _surface(
+    engine: Engine, grid_table: str, rows_table: str, source: InputSpec, models: Sequence[FittedModel],
+    pair: tuple[str, str], ranges: dict[str, InputRange], held: dict[str, object],
+) -> Surface:
     a, b = pair
     xs, ys = ranges[a].grid(SURFACE_POINTS), ranges[b].grid(SURFACE_POINTS)
     key = models[0].key

@@ -23,6 +23,7 @@ from ..notes import words
 from ..sqlgen.score import model_terms
 from .data import LEVELS, Curve, Surface
 from .queries import SCORE_BINS
+from .readings import predicted_words
 
 MODEL_COLOURS = ("#1b5e8c", "#c8611a")
 LINE_STYLES = ("-", "--")
@@ -53,14 +54,6 @@ def _styled(draw):
             return draw(*args, **kwargs)
 
     return styled
-
-
-def prediction_label(fitted: FittedModel) -> str:
-    if fitted.family == "binomial":
-        return f"predicted probability of {words(fitted.target)}"
-    if fitted.family == "poisson":
-        return f"predicted {words(fitted.target)} (expected count)"
-    return f"predicted {words(fitted.target)}"
 
 
 @_styled
@@ -129,7 +122,7 @@ def curve_plot(curve: Curve, models: Sequence[FittedModel], name: str) -> str:
     if fitted.family != "gaussian":  # probabilities and counts start at zero
         axes.set_ylim(bottom=0)
     axes.margins(y=0.08)
-    axes.set_ylabel(prediction_label(fitted), fontsize=7.5)
+    axes.set_ylabel(predicted_words(fitted), fontsize=7.5)
     if len(models) > 1:
         axes.legend(loc="best")
     return to_svg(figure, name)
@@ -183,7 +176,7 @@ def surface_plot(surface: Surface, models: Sequence[FittedModel], name: str) -> 
         _readable_ticks(axes.yaxis)
     panels[0].set_ylabel(surface.b)
     if shading is not None:
-        bar = figure.colorbar(shading, ax=list(panels), label=prediction_label(fitted), shrink=0.9, pad=0.02)
+        bar = figure.colorbar(shading, ax=list(panels), label=predicted_words(fitted), shrink=0.9, pad=0.02)
         bar.ax.yaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(lambda value, _: figure_text(value)))
     panels[0].legend(loc="upper right", fontsize=7, framealpha=0.85, frameon=True)
     return to_svg(figure, name)

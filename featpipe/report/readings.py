@@ -66,7 +66,7 @@ def curves(fitted: FittedModel, curve_list: Sequence[Curve], held: dict, other: 
     texts = [f"{name} at {held[name]!r}" for name in held if held[name] is not None and isinstance(held[name], str)]
     levels = f" ({', '.join(texts)})" if texts else ""
     compared = f", {other.model} in the second colour" if other else ""
-    return (f"How the {_predicted(fitted)} moves as each input crosses its training values (1st to 99th percentile), "
+    return (f"How the {predicted_words(fitted)} moves as each input crosses its training values (1st to 99th percentile), "
             f"the other inputs held at their training medians{levels}{compared}; {widest.column} moves it most, "
             f"between {figure(low)} and {figure(high)}.")
 
@@ -83,7 +83,7 @@ def surface(fitted: FittedModel, shown: Surface | None, note: str, other: Fitted
         lead = (f"Over {shown.a} and {shown.b} (other inputs at their medians) the coloured line is the threshold "
                 f"{fitted.threshold:g}: rows in the orange region would be predicted {words(fitted.target)}; {why}.")
     else:
-        lead = (f"The {_predicted(fitted)} over {shown.a} and {shown.b} (other inputs at their medians), its colour bands "
+        lead = (f"The {predicted_words(fitted)} over {shown.a} and {shown.b} (other inputs at their medians), its colour bands "
                 f"spanning the held-out rows' predictions; {why}.")
     if other is not None:
         lead += f" {other.model} is drawn beside it on the same axes."
@@ -126,7 +126,8 @@ def cautions(fitted: FittedModel, inputs: Sequence[str]) -> str:
             "people, review what each input stands for.")
 
 
-def _predicted(fitted: FittedModel) -> str:
+def predicted_words(fitted: FittedModel) -> str:
+    """What the model's prediction is, in words: also the axis label of every prediction."""
     if fitted.family == "binomial":
         return f"predicted probability of {words(fitted.target)}"
     if fitted.family == "poisson":
