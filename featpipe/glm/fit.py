@@ -7,7 +7,14 @@ keeps X'WX well conditioned and gives the penalty its scale (see `penalty`).
 
 On an engine the data is read a few times only: a deterministic sample (the first `sample_rows`
 training rows; by key order on engines without a stable scan order) is fitted in memory first, so the
-passes over the whole table start next to the answer.
+passes over the whole table start next to the answer (two or three IRLS passes instead of five to
+eight from the intercept-only start).
+
+Precision: IRLS stops when the next step would change the deviance by less than `tol` (relative) and
+still takes that step, so at tol=1e-10 estimates agree with a fully converged fit to about 1e-9. The
+standard errors come from X'WX at the last evaluated coefficients, one small step before the final
+ones: about 1e-7 relative on small tables, somewhat more on very large ones (no extra pass is spent
+on them).
 """
 
 from __future__ import annotations
@@ -44,15 +51,14 @@ from .sources import (
     Scaling,
     SqlAggregateSource,
     StatisticsSource,
-    array_batches,
     batch_from_arrow,
     engine_batches,
+    in_memory_batches,
 )
 
 INTERCEPT = "(intercept)"
-SAMPLE_ROWS = 100_000  # rows of the warm-start sample
+SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
-SAMPLE_TOL = 1e-8  # the warm start only has to land near the full-data answer
 
 
 @dataclass(frozen=True)
@@ -133,8 +139,14 @@ def fit_glm(
         statistics: StatisticsSource = BatchSource("stream", engine_batches(engine, layout, batch_rows), glm_family, scaling)
     else:
         statistics = SqlAggregateSource(engine, layout, glm_family, scaling)
-    warm = sample if profile.rows > len(sample.y) else None
-    return _fit(statistics, glm_family, layout.terms, where, profile, constant, scaling, penalty, warm, max_iter, tol, passes, warnings)
+    warm = None
+    if profile.rows > len(sample.y):  # a strict subset: worth fitting first
+        sample_weight = float(len(sample.y) if sample.weight is None else sample.weight.sum())
+        warm = (BatchSource("sample", in_memory_batches(sample, batch_rows), glm_family, scaling), sample_weight)
+    return _fit(
+        statistics, glm_family, layout.terms, where, profile, constant, scaling, penalty, warm, max_iter, tol, passes, warnings,
+        has_offset=layout.offset is not None,
+    )
 
 
 def fit_glm_arrays(
@@ -162,8 +174,12 @@ def fit_glm_arrays(
     warnings = problems.check_training_rows(profile, glm_family, "the arrays", "y", "weights" if weights is not None else None)
     constant = poisson_constant(target, np.ones_like(target) if weights is None else weights)
     scaling = _scaling(profile)
-    statistics = BatchSource("arrays", array_batches(terms, target, offset, weights, batch_rows), glm_family, scaling)
-    return _fit(statistics, glm_family, names, "the arrays", profile, constant, scaling, penalty, None, max_iter, tol, 1, warnings)
+    data = Batch(target, offset, weights, [terms[:, j] for j in range(terms.shape[1])])
+    statistics = BatchSource("arrays", in_memory_batches(data, batch_rows), glm_family, scaling)
+    return _fit(
+        statistics, glm_family, names, "the arrays", profile, constant, scaling, penalty, None, max_iter, tol, 1, warnings,
+        has_offset=offset is not None,
+    )
 
 
 def profile_from_arrays(terms: np.ndarray, y: np.ndarray, offset, weights, names) -> TrainingProfile:
@@ -215,20 +231,19 @@ def _starts(family: Family, profile: TrainingProfile, size: int) -> list[Request
     return [Request(tuple(range(size)), np.r_[intercept, np.zeros(size)]), Request((), np.array([intercept]))]
 
 
-def _warm_starts(sample: Batch, family: Family, scaling: Scaling, starts: list[Request], penalty: ScaledPenalty, max_iter: int) -> list[Request]:
-    """Starts fitted on the in-memory sample; the plain starts if the sample cannot be fitted cleanly."""
-    offset = sample.offset is not None
-    source = BatchSource("sample", lambda: [sample], family, scaling)
-    total = float(len(sample.y) if sample.weight is None else sample.weight.sum())
+def _warm_starts(
+    sample: StatisticsSource, total_weight: float, starts: list[Request], penalty: ScaledPenalty, max_iter: int, tol: float, refine_null: bool
+) -> list[Request]:
+    """Starts fitted on the sample; the plain starts when the sample cannot be fitted cleanly (aliased on
+    its rows, not converging, running away). Without an offset the null model's plain start is already
+    exact, so only the model's is replaced."""
     try:
-        results = run_irls(source, starts, penalty, total, max_iter, SAMPLE_TOL, allow_aliasing=penalty.active)
+        model, null = run_irls(sample, starts, penalty, total_weight, max_iter, tol, allow_aliasing=penalty.active)
     except (AliasedTerms, FeatpipeError):
         return starts
-    if not all(result.converged and result.statistics.boundary_rows == 0 for result in results):
+    if not (model.converged and null.converged) or problems.runaway_terms(model.step):
         return starts
-    model, null = results
-    # Without an offset the null start from the profile is already exact; the sample's is not.
-    return [Request(model.terms, model.beta), Request(null.terms, null.beta) if offset else starts[1]]
+    return [Request(model.terms, model.beta), Request(null.terms, null.beta) if refine_null else starts[1]]
 
 
 def _fit(
@@ -240,16 +255,17 @@ def _fit(
     constant: float,
     scaling: Scaling,
     penalty: Penalty,
-    warm: Batch | None,
+    warm: tuple[StatisticsSource, float] | None,  # the sample source and its total weight
     max_iter: int,
     tol: float,
     passes: int,
     warnings: list[str],
+    has_offset: bool,
 ) -> GlmFit:
     scaled = ScaledPenalty(penalty.l2, penalty.l1)
     starts = _starts(family, profile, len(names))
     if warm is not None:
-        starts = _warm_starts(warm, family, scaling, starts, scaled, max_iter)
+        starts = _warm_starts(*warm, starts, scaled, max_iter, tol, refine_null=has_offset)
     try:
         model, null = run_irls(source, starts, scaled, profile.weight_sum, max_iter, tol, allow_aliasing=scaled.active)
     except AliasedTerms as error:

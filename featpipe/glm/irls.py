@@ -27,9 +27,9 @@ WORSE = 1e-12  # relative increase of the objective that counts as a worse step 
 class AliasedTerms(Exception):
     """X'WX is singular at the start: some columns are linear combinations of others."""
 
-    def __init__(self, request: int, aliases: list[Alias], xtwx: np.ndarray):
+    def __init__(self, aliases: list[Alias]):
         super().__init__(f"aliased columns {[alias.column for alias in aliases]}")
-        self.request, self.aliases, self.xtwx = request, aliases, xtwx
+        self.aliases = aliases
 
 
 @dataclass(frozen=True)
@@ -44,7 +44,7 @@ class IrlsResult:
     aliases: tuple[Alias, ...]  # found at the start (only when they are allowed)
 
 
-@dataclass
+@dataclass(eq=False)
 class _Fit:
     terms: tuple[int, ...]
     beta: np.ndarray
@@ -81,15 +81,15 @@ def run_irls(
     fits = [_Fit(start.terms, np.asarray(start.beta, dtype=float)) for start in starts]
     while active := [fit for fit in fits if not fit.done]:
         evaluated = source.evaluate([Request(fit.terms, fit.beta) for fit in active])
-        for index, (fit, statistics) in enumerate(zip(active, evaluated, strict=True)):
+        for fit, statistics in zip(active, evaluated, strict=True):
             fit.iterations += 1
-            _advance(fit, statistics, penalty, total_weight, tol, allow_aliasing, fits.index(fit))
+            _advance(fit, statistics, penalty, total_weight, tol, allow_aliasing)
             if not fit.done and fit.iterations >= max_iter:
                 fit.done = True
     return [fit.result() for fit in fits]
 
 
-def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_weight: float, tol: float, allow_aliasing: bool, request: int) -> None:
+def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_weight: float, tol: float, allow_aliasing: bool) -> None:
     objective = statistics.deviance + 2.0 * total_weight * penalty.value(fit.beta)
     if fit.accepted is None:
         if not (math.isfinite(objective) and np.isfinite(statistics.xtwx).all()):
@@ -99,7 +99,7 @@ def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_we
             )
         aliases = find_aliased(statistics.xtwx)
         if aliases and not allow_aliasing:
-            raise AliasedTerms(request, aliases, statistics.xtwx)
+            raise AliasedTerms(aliases)
         fit.aliases = tuple(aliases)
     elif not objective <= fit.objective + WORSE * abs(fit.objective):  # also catches NaN
         if fit.halvings < MAX_HALVINGS:
@@ -113,7 +113,9 @@ def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_we
     new, decrease = penalty.step(statistics.xtwx, statistics.score, fit.beta, total_weight)
     fit.step = new - fit.beta
     fit.change = decrease / (abs(statistics.deviance) + 0.1)
-    if fit.change < tol:
+    if not np.isfinite(new).all():
+        fit.done = True  # the solve broke down: stop at the last good point, reported as not converged
+    elif fit.change < tol:
         fit.converged, fit.done, fit.final = True, True, new
     else:
         fit.beta = new

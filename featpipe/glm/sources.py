@@ -184,20 +184,16 @@ class _Totals:
         return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T)
 
 
-def array_batches(
-    terms: np.ndarray, y: np.ndarray, offset: np.ndarray | None, weight: np.ndarray | None, batch_rows: int
-) -> Callable[[], Iterator[Batch]]:
-    """Batches over in-memory arrays (rows x terms)."""
+def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Batch]]:
+    """Batches of `batch_rows` rows over data already in memory (temporaries stay one batch)."""
+
+    def cut(values: np.ndarray | None, rows: slice) -> np.ndarray | None:
+        return None if values is None else values[rows]
 
     def batches() -> Iterator[Batch]:
-        for start in range(0, len(y), batch_rows):
+        for start in range(0, len(data.y), batch_rows):
             rows = slice(start, start + batch_rows)
-            yield Batch(
-                y[rows],
-                None if offset is None else offset[rows],
-                None if weight is None else weight[rows],
-                [terms[rows, j] for j in range(terms.shape[1])],
-            )
+            yield Batch(data.y[rows], cut(data.offset, rows), cut(data.weight, rows), [values[rows] for values in data.terms])
 
     return batches
 

@@ -1,0 +1,229 @@
+"""Fit a logistic regression on a large design table: featpipe in the engine vs pandas + scikit-learn.
+
+    .venv/bin/python benchmarks/bench_fit.py --rows 1000000
+    .venv/bin/python benchmarks/bench_fit.py --rows 10000000 --keep build/bench10m.duckdb
+
+A seeded synthetic binomial design table (30% held out, 15 continuous terms on mixed scales with some
+correlation, 10 indicators) is generated inside DuckDB with SQL, so building it never holds the table
+in Python. Each competitor then runs in its own subprocess against the same database file, so each
+peak RSS (measured in the child) is its own:
+
+- featpipe: `fit_glm` streaming the training rows from DuckDB in batches (the default on DuckDB);
+- featpipe, SQL aggregates: one aggregate query per IRLS pass (what PostgreSQL and Spark use);
+- pandas + scikit-learn: fetch the training rows into a DataFrame, then
+  LogisticRegression(solver="newton-cholesky", C=inf) (scikit-learn >= 1.8 spells penalty=None as C=inf).
+
+Printed side by side: seconds, peak RSS, passes over the data, ratios, and the largest relative
+difference between coefficients. Targets at 10M rows: featpipe time <= half of fetch + fit, peak
+memory <= a fifth.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from sqlglot import exp
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from featpipe.engines.duckdb import DuckDBEngine  # noqa: E402
+from featpipe.sqlgen.common import alias, column, number  # noqa: E402
+from featpipe.sqlgen.layout import DesignLayout  # noqa: E402
+from featpipe.sqlgen.statistics import design_columns_query  # noqa: E402
+
+TABLE = "design_bench"
+CONTINUOUS = 15
+INDICATORS = 10
+SEED = 20240611
+TWO_52 = 2**52
+STREAMS = 1000  # random streams per row
+
+
+def layout() -> DesignLayout:
+    terms = tuple(f"x{j:02d}" for j in range(CONTINUOUS)) + tuple(f"d{j:02d}" for j in range(INDICATORS))
+    return DesignLayout(TABLE, "id", "y", terms)
+
+
+def _uniform(stream: int) -> exp.Expression:
+    """A uniform in [0, 1) from a hash of one integer per (row, stream, seed): deterministic, parallel-safe.
+
+    (With row and stream as separate arguments their hashes would be combined linearly, and the
+    streams of a row would depend on each other.)"""
+    key = exp.Add(this=exp.Mul(this=column("i"), expression=exp.Literal.number(STREAMS)), expression=exp.Literal.number(stream))
+    hashed = exp.Anonymous(this="hash", expressions=[key, exp.Literal.number(SEED)])
+    return exp.Div(this=exp.Paren(this=exp.Mod(this=hashed, expression=exp.Literal.number(TWO_52))), expression=number(TWO_52))
+
+
+def _normal(stream: int) -> exp.Expression:
+    """Box-Muller from two uniforms."""
+    radius = exp.Sqrt(this=exp.Mul(this=number(-2.0), expression=exp.Ln(this=exp.Sub(this=number(1.0), expression=_uniform(2 * stream)))))
+    angle = exp.Mul(this=number(2 * math.pi), expression=_uniform(2 * stream + 1))
+    return exp.Mul(this=radius, expression=exp.Anonymous(this="cos", expressions=[angle]))
+
+
+def table_query(rows: int) -> exp.Select:
+    """Rows of the synthetic design table, built in three nested SELECTs (no lateral aliases)."""
+    source = exp.Table(
+        this=exp.Anonymous(this="range", expressions=[exp.Literal.number(rows)]),
+        alias=exp.TableAlias(this=exp.to_identifier("t"), columns=[exp.to_identifier("i")]),
+    )
+    raw = [alias(column("i"), "id"), alias(exp.LT(this=_uniform(999), expression=number(0.3)), "_holdout")]
+    raw += [alias(_normal(j), f"z{j:02d}") for j in range(CONTINUOUS)]
+    raw += [alias(_uniform(500 + j), f"u{j:02d}") for j in range(INDICATORS)]
+    raw.append(alias(_uniform(998), "u_target"))
+    inner = exp.select(*raw).from_(source).subquery("draws")
+
+    scales = [1.0, 10.0, 0.2, 1000.0, 3.0] * 3
+    terms = [alias(column("id"), "id"), alias(column("_holdout"), "_holdout"), alias(column("u_target"), "u_target")]
+    for j in range(CONTINUOUS):
+        value = column(f"z{j:02d}")
+        if j % 3 == 1:  # correlated with the previous term
+            value = exp.Add(this=exp.Mul(this=number(0.6), expression=column(f"z{j - 1:02d}")), expression=exp.Mul(this=number(0.8), expression=value))
+        scaled = exp.Add(this=exp.Mul(this=number(scales[j]), expression=exp.Paren(this=value)), expression=number(0.5 * scales[j] * (j % 4)))
+        terms.append(alias(exp.Round(this=scaled, decimals=exp.Literal.number(3)), f"x{j:02d}"))
+    for j in range(INDICATORS):
+        share = 0.05 + 0.045 * j
+        flag = exp.Case(ifs=[exp.If(this=exp.LT(this=column(f"u{j:02d}"), expression=number(share)), true=number(1.0))], default=number(0.0))
+        terms.append(alias(flag, f"d{j:02d}"))
+    middle = exp.select(*terms).from_(inner).subquery("terms")
+
+    # About 0.3 on the log-odds scale per sd of each continuous term: a useful but not perfect model.
+    slopes = [0.3, -0.03, 1.5, 0.0003, -0.1] * 3 + [0.4, -0.4, 0.3, -0.3, 0.2, -0.2, 0.1, -0.1, 0.0, 0.25]
+    names = layout().terms
+    eta = number(-0.5)
+    for name, slope in zip(names, slopes, strict=True):
+        eta = exp.Add(this=eta, expression=exp.Mul(this=number(slope), expression=column(name)))
+    probability = exp.Div(this=number(1.0), expression=exp.Paren(this=exp.Add(this=number(1.0), expression=exp.Exp(this=exp.Neg(this=exp.Paren(this=eta))))))
+    target = exp.Case(ifs=[exp.If(this=exp.LT(this=column("u_target"), expression=probability), true=number(1.0))], default=number(0.0))
+    outer = [alias(column("id"), "id"), alias(target, "y"), alias(column("_holdout"), "_holdout")]
+    outer += [alias(column(name), name) for name in names]
+    return exp.select(*outer).from_(middle)
+
+
+def build_table(path: Path, rows: int) -> None:
+    engine = DuckDBEngine(path)
+    try:
+        existing = engine.describe(TABLE)
+        if existing is not None and engine.fetch(exp.select(exp.Count(this=exp.Star())).from_(TABLE))[0][0] == rows:
+            return
+        engine.create_table(TABLE, table_query(rows))
+    finally:
+        engine.close()
+
+
+def peak_rss_mb() -> float:
+    """Peak resident memory of this process since it started.
+
+    Linux's VmHWM belongs to the process image, while getrusage's ru_maxrss also keeps the peak of
+    the parent it was forked from (here the benchmark driver that built the table).
+    """
+    status = Path("/proc/self/status")
+    if status.exists():
+        for line in status.read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024.0
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kilobytes on Linux
+
+
+def child_featpipe(path: Path, source: str) -> dict:
+    from featpipe.glm import fit_glm
+
+    engine = DuckDBEngine(path, read_only=True)
+    start_rss = peak_rss_mb()
+    started = time.perf_counter()
+    fit = fit_glm(engine, layout(), "binomial", source=source)
+    seconds = time.perf_counter() - started
+    return {
+        "seconds": seconds, "peak_rss_mb": peak_rss_mb(), "start_rss_mb": start_rss, "passes": fit.passes_over_data,
+        "iterations": fit.iterations, "rows": fit.n_train, "coef": list(fit.coef), "converged": fit.converged,
+    }
+
+
+def child_sklearn(path: Path) -> dict:
+    from sklearn.linear_model import LogisticRegression
+
+    engine = DuckDBEngine(path, read_only=True)
+    start_rss = peak_rss_mb()
+    started = time.perf_counter()
+    frame = engine.fetch_frame(design_columns_query(layout()))
+    fetched = time.perf_counter()
+    x = frame[list(layout().terms)].to_numpy()
+    y = frame["_y"].to_numpy()
+    model = LogisticRegression(solver="newton-cholesky", C=np.inf).fit(x, y)
+    seconds = time.perf_counter() - started
+    return {
+        "seconds": seconds, "fetch_seconds": fetched - started, "peak_rss_mb": peak_rss_mb(), "start_rss_mb": start_rss,
+        "passes": 1, "iterations": int(model.n_iter_[0]), "rows": len(y),
+        "coef": [float(model.intercept_[0]), *map(float, model.coef_[0])],
+    }
+
+
+def run_child(kind: str, path: Path, source: str = "auto") -> dict:
+    command = [sys.executable, __file__, "--child", kind, "--source", source, "--db", str(path)]
+    result = subprocess.run(command, capture_output=True, text=True, check=True)
+    return json.loads(result.stdout.strip().splitlines()[-1])
+
+
+def max_relative_difference(a, b) -> float:
+    a, b = np.asarray(a), np.asarray(b)
+    return float(np.max(np.abs(a - b) / np.maximum(np.abs(b), 1e-12)))
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--rows", type=int, default=1_000_000, help="rows of the design table (30%% are held out)")
+    parser.add_argument("--keep", type=Path, help="DuckDB file to build (or reuse when it has --rows rows) and keep")
+    parser.add_argument("--child", choices=["featpipe", "sklearn"], help=argparse.SUPPRESS)
+    parser.add_argument("--source", default="auto", help=argparse.SUPPRESS)
+    parser.add_argument("--db", type=Path, help=argparse.SUPPRESS)
+    arguments = parser.parse_args()
+    if arguments.child == "featpipe":
+        print(json.dumps(child_featpipe(arguments.db, arguments.source)))
+        return
+    if arguments.child == "sklearn":
+        print(json.dumps(child_sklearn(arguments.db)))
+        return
+
+    with tempfile.TemporaryDirectory() as folder:
+        path = arguments.keep or Path(folder) / "bench.duckdb"
+        started = time.perf_counter()
+        build_table(path, arguments.rows)
+        print(f"design table: {arguments.rows:,} rows x {len(layout().terms)} terms in {path} "
+              f"(built or reused in {time.perf_counter() - started:.1f} s)")
+        stream = run_child("featpipe", path, "stream")
+        aggregate = run_child("featpipe", path, "sql")
+        sklearn = run_child("sklearn", path)
+
+    print(f"training rows: {stream['rows']:,} (scikit-learn: {sklearn['rows']:,})\n")
+    header = f"{'':34}{'seconds':>9}{'peak RSS MB':>13}{'RSS at start':>14}{'passes':>8}{'iterations':>12}"
+    print(header)
+    print("-" * len(header))
+    rows = [
+        ("featpipe (DuckDB stream, default)", stream),
+        ("featpipe (SQL aggregates)", aggregate),
+        ("pandas fetch + scikit-learn", sklearn),
+    ]
+    for label, result in rows:
+        print(f"{label:34}{result['seconds']:9.2f}{result['peak_rss_mb']:13.0f}{result['start_rss_mb']:14.0f}"
+              f"{result['passes']:8d}{result['iterations']:12d}")
+    print(f"  (scikit-learn: fetch {sklearn['fetch_seconds']:.2f} s, fit {sklearn['seconds'] - sklearn['fetch_seconds']:.2f} s)")
+    print()
+    print(f"time   featpipe / (fetch + scikit-learn): {stream['seconds'] / sklearn['seconds']:.3f}   (target <= 0.5)")
+    print(f"memory featpipe / (fetch + scikit-learn): {stream['peak_rss_mb'] / sklearn['peak_rss_mb']:.3f}   (target <= 0.2)")
+    print(f"time   SQL aggregates / (fetch + scikit-learn): {aggregate['seconds'] / sklearn['seconds']:.3f}")
+    print(f"memory SQL aggregates / (fetch + scikit-learn): {aggregate['peak_rss_mb'] / sklearn['peak_rss_mb']:.3f}")
+    print(f"coefficients, max relative difference: featpipe vs scikit-learn {max_relative_difference(stream['coef'], sklearn['coef']):.2e}, "
+          f"stream vs SQL aggregates {max_relative_difference(stream['coef'], aggregate['coef']):.2e}")
+
+
+if __name__ == "__main__":
+    main()
