@@ -9,35 +9,20 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
-from sqlglot import exp
-
+from .builds import read_builds
 from .compiler import CompiledModel, CompiledProject, Term, compile_project
-from .builds import input_signature, read_builds, record_builds
-from .contract import check_contract
-from .engines import open_engine
 from .engines.base import Engine
 from .errors import Diagnostic, FeatpipeError
 from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
 from .fitting import fit_model
-from .project import Project, load_project
-from .sqlgen.common import render
+from .materialize import BuiltTable, Progress, build_designs, connect, design_signature, say
+from .project import Project, load_project  # re-exported: the API starts with loading a project
+from .report import write_reports
+from .sqlgen.common import DIALECTS, check_dialect, render
 from .sqlgen.design import design_query, terms_query
-
-DIALECTS = ("duckdb", "postgres", "spark", "snowflake", "bigquery", "sqlite")
-Progress = Callable[[str], None]
-
-
-@dataclass(frozen=True)
-class BuiltTable:
-    model: str
-    table: str
-    rows: int
-
 
 def check(project: Project) -> CompiledProject:
     """All static validation; raises FeatpipeError listing every problem."""
@@ -88,54 +73,6 @@ def select_models(compiled: CompiledProject, names: list[str] | None) -> list[Co
     return [compiled.models[name] for name in names]
 
 
-@contextmanager
-def connect(project: Project):
-    engine = open_engine(project.engine)
-    try:
-        yield engine
-    finally:
-        engine.close()
-
-
-def prepare_inputs(
-    engine: Engine, project: Project, inputs: set[str], builds: dict[str, str], progress: Progress | None = None
-) -> None:
-    """Load each input's `load:` file when it changed, and check the engine's table against the contract."""
-    for name in sorted(inputs):
-        source = project.inputs[name]
-        signature = input_signature(source)
-        if source.load is not None and builds.get(name) != signature:
-            _say(progress, f"loading {source.load.relative_to(project.root)} into {engine.name} table {name}")
-            engine.load_file(name, source.load)
-        check_contract(source, name, engine.describe(name), engine.name)
-        builds[name] = signature
-
-
-def design_signature(project: Project, model: CompiledModel) -> str:
-    return f"{model.fingerprint}:{input_signature(project.inputs[model.spec.input])}"
-
-
-def build_designs(
-    engine: Engine, project: Project, models: list[CompiledModel], *, only_stale: bool = False,
-    progress: Progress | None = None,
-) -> list[BuiltTable]:
-    """Build (or, with only_stale, rebuild when changed) each model's design table; a failure keeps the old one."""
-    builds = read_builds(engine)
-    prepare_inputs(engine, project, {model.spec.input for model in models}, builds, progress)
-    built = []
-    for model in models:
-        signature = design_signature(project, model)
-        if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
-            continue
-        _say(progress, f"building {model.layout.table}")
-        engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
-        builds[model.layout.table] = signature
-        rows = engine.fetch(_count(model.layout.table))[0][0]
-        built.append(BuiltTable(model.name, model.layout.table, rows))
-    record_builds(engine, builds)
-    return built
-
-
 def materialize(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[BuiltTable]:
     """Build each model's design table in the engine; a failure keeps the previous table."""
     chosen = select_models(check(project), models)
@@ -157,7 +94,7 @@ def fit_models(engine: Engine, project: Project, compiled: CompiledProject, mode
     build_designs(engine, project, models, only_stale=True, progress=progress)
     outcomes = []
     for model in models:
-        _say(progress, f"fitting {model.name} ({model.spec.family}, {len(model.terms)} terms)")
+        say(progress, f"fitting {model.name} ({model.spec.family}, {len(model.terms)} terms)")
         fitted = fit_model(engine, compiled, model)
         path = project.fitted_path(model.name)
         before = path.read_bytes() if path.is_file() else None
@@ -175,7 +112,8 @@ def fit(project: Project, models: list[str] | None = None, progress: Progress | 
 
 
 def refresh(project: Project, progress: Progress | None = None) -> list[FitOutcome]:
-    """Check, then refit every model whose fitted file is missing or stale or whose data file changed."""
+    """Check, then refit every model whose fitted file is missing or stale or whose data file changed,
+    and write the reports of the models whose fit changed."""
     compiled = check(project)
     with connect(project) as engine:
         builds = read_builds(engine)
@@ -185,22 +123,14 @@ def refresh(project: Project, progress: Progress | None = None) -> list[FitOutco
             current = builds.get(model.layout.table) == design_signature(project, model)
             if not path.is_file() or staleness(read_fitted(path), model) or not current:
                 stale.append(model)
-        return fit_models(engine, project, compiled, stale, progress) if stale else []
-
-
-def _say(progress: Progress | None, message: str) -> None:
-    if progress:
-        progress(message)
-
-
-def _count(table: str) -> exp.Select:
-    return exp.select(exp.Count(this=exp.Star())).from_(exp.to_table(table))
+        outcomes = fit_models(engine, project, compiled, stale, progress) if stale else []
+        write_reports(project, [o.model for o in outcomes if o.changed], engine=engine, progress=progress)
+        return outcomes
 
 
 def render_sql(project: Project, model: str, part: str = "design", dialect: str = "duckdb", table: str | None = None) -> str:
     """The generated SQL of one model, rendered for `dialect`."""
-    if dialect not in DIALECTS:
-        raise FeatpipeError(f"unknown dialect '{dialect}'; use one of {', '.join(DIALECTS)}")
+    check_dialect(dialect)
     compiled = check(project)
     (chosen,) = select_models(compiled, [model])
     source = project.inputs[chosen.spec.input]

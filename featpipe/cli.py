@@ -19,7 +19,7 @@ from rich.console import Console
 from rich.syntax import Syntax
 from rich.table import Table
 
-from . import api
+from . import api, scoring
 from .errors import Diagnostic, FeatpipeError
 from .fitted import FittedModel, read_fitted
 from .project import load_project
@@ -135,25 +135,57 @@ def materialize(
 class Part(str, Enum):
     terms = "terms"
     design = "design"
+    score = "score"
     drift = "drift"
 
 
 @app.command()
 def sql(
-    model: Annotated[str, typer.Argument(help="Model name (models/NAME.yaml).")],
+    model: Annotated[str, typer.Argument(help="Model name (models/NAME.yaml; for --part score or drift, fitted/NAME.yaml).")],
     project: ProjectOption = None,
     dialect: Annotated[str, typer.Option("--dialect", "-d", help=f"One of {', '.join(api.DIALECTS)}.")] = "duckdb",
     part: Annotated[Part, typer.Option("--part", help="Which query to print.")] = Part.design,
     table: Annotated[Optional[str], typer.Option("--table", help="Read this table instead of the input's name.")] = None,
+    reasons: Annotated[int, typer.Option("--reasons", min=0, help="--part score: add reason_1..reason_K, the K terms pushing the prediction up most.")] = 0,
+    as_view: Annotated[Optional[str], typer.Option("--as-view", help="--part score: wrap the query as CREATE VIEW NAME.")] = None,
+    into: Annotated[Optional[str], typer.Option("--into", help="--part score: wrap the query as CREATE TABLE NAME AS.")] = None,
 ) -> None:
     """Print the generated SQL of a model, rendered for a dialect."""
     loaded = load_project(project)
-    if part == Part.drift:
+    if part != Part.score and (reasons or as_view or into):
+        raise FeatpipeError("--reasons, --as-view and --into apply to --part score only")
+    if part == Part.score:
+        text = scoring.render_score_sql(loaded, model, dialect=dialect, table=table, reasons=reasons, as_view=as_view, into=into)
+    elif part == Part.drift:
         from .drift import render_drift_sql
 
-        print(render_drift_sql(loaded, model, table, dialect), end="")
+        text = render_drift_sql(loaded, model, table, dialect)
+    else:
+        text = api.render_sql(loaded, model, part.value, dialect, table)
+    print(text, end="")
+
+
+@app.command()
+def score(
+    model: Annotated[str, typer.Argument(help="Model name (fitted/NAME.yaml).")],
+    table: Annotated[str, typer.Option("--table", "-t", help="Table to score, in the project's engine.")],
+    into: Annotated[str, typer.Option("--into", "-o", help="Table to write the scores to (replaced atomically).")],
+    project: ProjectOption = None,
+    reasons: Annotated[int, typer.Option("--reasons", min=0, help="Add reason_1..reason_K: the K terms pushing the prediction up most.")] = 0,
+    allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Score even if terms changed since the fit (with the fitted definitions).")] = False,
+    json_output: JsonOption = False,
+) -> None:
+    """Batch-score a table inside the engine with the fitted model's scoring SQL."""
+    result = scoring.score(load_project(project), model, table=table, into=into, reasons=reasons,
+                           allow_stale=allow_stale, progress=None if json_output else _progress)
+    if json_output:
+        _print_json(result.as_dict())
         return
-    print(api.render_sql(loaded, model, part.value, dialect, table), end="")
+    for reason in result.stale:
+        err.print(f"warning: scored with a stale fit ({reason})", markup=False)
+    out.print(f"{result.into}: {result.rows} rows scored from {result.table}", markup=False)
+    for status, rows in result.status.items():
+        out.print(f"  {rows:>10}  {status}", markup=False)
 
 
 def _number(value, digits: int = 4) -> str:
@@ -252,6 +284,26 @@ def refresh(project: ProjectOption = None, json_output: JsonOption = False) -> N
     if not outcomes and not json_output:
         out.print("everything is up to date")
     _print_outcomes(outcomes, json_output)
+
+
+@app.command()
+def report(
+    model: Annotated[str, typer.Argument(help="A fitted model (fitted/MODEL.yaml).")],
+    project: ProjectOption = None,
+    output: Annotated[Optional[Path], typer.Option("--out", "-o", help="HTML file to write (default: build/reports/MODEL.html).")] = None,
+    against: Annotated[Optional[str], typer.Option("--against", help="Compare with this model of the same target.")] = None,
+    pair: Annotated[Optional[str], typer.Option("--pair", help="Two numeric inputs for the decision surface, as a,b.")] = None,
+    json_output: JsonOption = False,
+) -> None:
+    """Write a self-contained HTML report of a fitted model with plots, optionally compared with another model."""
+    from .report import write_report
+
+    chosen = tuple(part.strip() for part in pair.split(",")) if pair is not None else None
+    path = write_report(load_project(project), model, against=against, pair=chosen, out=output)
+    if json_output:
+        _print_json({"model": model, "against": against, "path": str(path)})
+        return
+    out.print(f"wrote {path}")
 
 
 @app.command()

@@ -17,7 +17,8 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
-from .api import DIALECTS, connect
+from .materialize import connect
+from .sqlgen.common import check_dialect
 from .contract import check_contract
 from .errors import FeatpipeError
 from .fitted import FittedModel, file_hash
@@ -175,8 +176,7 @@ def drift(
 
 def render_drift_sql(project: Project, model: str, table: str | None = None, dialect: str = "duckdb") -> str:
     """The drift SQL of fitted/MODEL.yaml for `dialect` (default table: the input's name), with its header."""
-    if dialect not in DIALECTS:
-        raise FeatpipeError(f"unknown dialect '{dialect}'; use one of {', '.join(DIALECTS)}")
+    check_dialect(dialect)
     fitted = load_fitted(project, model)
     query = drift_query(fitted, table=table)
     return drift_header(fitted, file_hash(project.fitted_path(model))) + render(query, dialect) + ";\n"

@@ -16,7 +16,8 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from .api import DIALECTS, Progress, connect
+from .materialize import Progress, connect
+from .sqlgen.common import check_dialect
 from .compiler import compile_project
 from .contract import check_contract
 from .errors import FeatpipeError
@@ -53,8 +54,7 @@ def render_score_sql(
     as_view: str | None = None, into: str | None = None,
 ) -> str:
     """The scoring SQL of fitted/MODEL.yaml for `dialect`, with its header comment."""
-    if dialect not in DIALECTS:
-        raise FeatpipeError(f"unknown dialect '{dialect}'; use one of {', '.join(DIALECTS)}")
+    check_dialect(dialect)
     fitted = load_fitted(project, model)
     statement = score_statement(fitted, table=table, reasons=reasons, as_view=as_view, into=into)
     return render_score(statement, fitted, file_hash(project.fitted_path(model)), dialect)

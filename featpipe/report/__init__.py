@@ -14,7 +14,7 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from ..api import connect, prepare_inputs
+from ..materialize import connect, prepare_inputs
 from ..atomic import write_text_atomic
 from ..builds import read_builds, record_builds
 from ..compiler import compile_project

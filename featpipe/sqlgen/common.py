@@ -6,6 +6,10 @@ import math
 
 from sqlglot import exp
 
+from ..errors import FeatpipeError
+
+DIALECTS = ("duckdb", "postgres", "spark", "snowflake", "bigquery", "sqlite")
+
 
 def column(name: str, table: str | None = None) -> exp.Column:
     """A quoted column reference (identifiers are always quoted when rendered)."""
@@ -32,3 +36,9 @@ def alias(expression: exp.Expression, name: str) -> exp.Alias:
 
 def render(statement: exp.Expression, dialect: str, pretty: bool = True) -> str:
     return statement.sql(dialect=dialect, identify=True, pretty=pretty)
+
+
+def check_dialect(dialect: str) -> None:
+    """Refuse a dialect featpipe does not render for."""
+    if dialect not in DIALECTS:
+        raise FeatpipeError(f"unknown dialect '{dialect}'; use one of {', '.join(DIALECTS)}")
