@@ -155,6 +155,9 @@ def test_failed_create_table_keeps_the_previous_table(engine, tmp_path, failure)
     assert engine.fetch(sql("SELECT lease_id FROM north ORDER BY lease_id")) == [(1,), (4,)]
     assert list(engine.describe("north")) == ["lease_id"]
     assert engine.describe(statements.building_name("north")) is None
+    # Nothing of the failed build is in the way of the next one (Spark would refuse a leftover folder).
+    engine.create_table("north", sql("SELECT lease_id FROM leases WHERE region = 'south'"))
+    assert engine.fetch(sql("SELECT lease_id FROM north")) == [(2,)]
 
 
 def test_missing_table_is_a_one_line_error_naming_the_engine(engine):
@@ -301,6 +304,16 @@ def test_spark_refuses_a_metastore_another_process_holds(tmp_path):
         holder.kill()
         holder.wait()
     check_metastore_free(metastore)  # free again once the holder is gone
+
+
+def test_spark_connect_url_with_no_server_fails_at_once():
+    from featpipe.engines.spark import check_connect_server
+
+    port = free_port()
+    with pytest.raises(EngineError) as error:
+        check_connect_server(f"sc://127.0.0.1:{port}")
+    assert one_line_error(error, "spark").startswith(f"spark: no Spark Connect server answers at 127.0.0.1:{port} ")
+    assert str(error.value).endswith("is the server running?")
 
 
 def test_sqlite_python_math_agrees_with_the_builtins():

@@ -14,7 +14,9 @@ import atexit
 import contextlib
 import logging
 import shutil
+import socket
 import tempfile
+import urllib.parse
 import warnings
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -60,6 +62,7 @@ except ImportError:  # pragma: no cover - Windows: Derby's own error reports a l
 
 WAREHOUSE_FOLDER = "spark-warehouse"
 METASTORE_FOLDER = "spark-metastore"
+CONNECT_DEFAULT_PORT = 15002
 
 
 class SparkEngine:
@@ -173,6 +176,7 @@ class SparkEngine:
 
 def _start_session(config: EngineConfig):
     if config.url:
+        check_connect_server(config.url)
         builder = SparkSession.builder.remote(config.url)
         where = f"Spark Connect at {config.url}"
     else:
@@ -205,12 +209,32 @@ def _start_session(config: EngineConfig):
     try:
         with _quiet_pandas_check():
             session = builder.getOrCreate()
+    except ImportError as error:  # Spark Connect's client packages (grpcio and friends) are optional
+        raise EngineError(
+            f"spark: Spark Connect needs more packages ({_first_line(error)}); "
+            "install them with pip install 'pyspark[connect]'"
+        ) from None
     except (PySparkException, Py4JError, OSError) as error:
         hint = "is the server running?" if config.url else "check that Java 17 or newer is installed (JAVA_HOME or java on PATH)"
         raise EngineError(f"spark: cannot start {where}: {_first_line(error)}; {hint}") from None
     if not config.url:
         session.sparkContext.setLogLevel("FATAL")  # failures reach the user as EngineErrors, not JVM logs
     return session
+
+
+def check_connect_server(url: str) -> None:
+    """Refuse at once when nothing listens at a sc://host:port URL; the client would retry for minutes."""
+    address = urllib.parse.urlsplit(url.split(";")[0])
+    if address.scheme != "sc" or not address.hostname:
+        return
+    port = address.port or CONNECT_DEFAULT_PORT
+    try:
+        socket.create_connection((address.hostname, port), timeout=10).close()
+    except OSError as error:
+        raise EngineError(
+            f"spark: no Spark Connect server answers at {address.hostname}:{port} ({error.strerror or error}); "
+            "is the server running?"
+        ) from None
 
 
 def check_metastore_free(metastore: Path) -> None:
