@@ -88,20 +88,22 @@ class PostgresServer:
 
     def __init__(self, initdb: str, pg_ctl: str):
         self.initdb, self.pg_ctl = initdb, pg_ctl
+        self.as_owner: list[str] = []
+        owner = None
+        if os.geteuid() == 0:
+            try:
+                owner = pwd.getpwnam("postgres")
+            except KeyError:
+                require_engine("postgres", "running as root needs a 'postgres' account to own the server")
+            self.as_owner = ["runuser", "-u", "postgres", "--"]
         self.folder = Path(tempfile.mkdtemp(prefix="featpipe-pg-"))
+        if owner is not None:
+            os.chown(self.folder, owner.pw_uid, owner.pw_gid)
         self.data = self.folder / "data"
         self.log = self.folder / "server.log"
         self.password = secrets.token_hex(12)
         self.port: int | None = None
         self.running = False
-        self.as_owner: list[str] = []
-        if os.geteuid() == 0:
-            try:
-                account = pwd.getpwnam("postgres")
-            except KeyError:
-                require_engine("postgres", "running as root needs a 'postgres' account to own the server")
-            os.chown(self.folder, account.pw_uid, account.pw_gid)
-            self.as_owner = ["runuser", "-u", "postgres", "--"]
 
     def start(self) -> str:
         """initdb, then start on a free port; returns the DSN (host, port, user, password, dbname)."""

@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import sqlglot
-from fixtures_engines import free_port
+from fixtures_engines import free_port, require_engine
 from sqlglot import exp
 
 from featpipe.engines import statements
@@ -314,6 +314,13 @@ def test_spark_connect_url_with_no_server_fails_at_once():
         check_connect_server(f"sc://127.0.0.1:{port}")
     assert one_line_error(error, "spark").startswith(f"spark: no Spark Connect server answers at 127.0.0.1:{port} ")
     assert str(error.value).endswith("is the server running?")
+
+
+@pytest.mark.parametrize(("ci", "outcome"), [("true", pytest.fail.Exception), ("", pytest.skip.Exception)])
+def test_missing_engine_software_skips_locally_but_fails_in_ci(monkeypatch, ci, outcome):
+    monkeypatch.setenv("CI", ci)
+    with pytest.raises(outcome, match="postgres is not available: initdb not found"):
+        require_engine("postgres", "initdb not found")
 
 
 def test_sqlite_python_math_agrees_with_the_builtins():
