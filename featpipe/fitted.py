@@ -1,11 +1,12 @@
 """The fitted file `fitted/MODEL.yaml`: dataclasses, deterministic YAML, atomic writes, staleness.
 
 The file is reviewed as a diff, so the same definitions and data must give the same bytes: keys
-keep a fixed order and every float is written with 12 significant digits. Engines add up floating
-point sums in parallel in no fixed order, so the last few of a double's 17 digits can differ from run
-to run; 12 digits keep every figure far beyond its statistical precision while making the file
-repeatable (coefficients agree with reference fits to about 1e-12, and scoring uses exactly the
-digits written here).
+keep a fixed order and every float that comes from a sum is written with 12 significant digits.
+Engines add up floating point sums in parallel in no fixed order, so the last few of a double's 17
+digits can differ from run to run; 12 digits keep every figure far beyond its statistical precision
+while making the file repeatable (coefficients agree with reference fits to about 1e-12, and scoring
+uses exactly the digits written here). Order statistics (bin edges, min, median, max) are data
+values, exact on every run, and are written in full so a value on an edge stays in its bin.
 """
 
 from __future__ import annotations
@@ -88,6 +89,7 @@ class FittedModel:
     holdout: dict
     threshold: float
     penalty: dict
+    columns: dict  # declared SQL type of the key and of every input column the terms and offset read
     rows: dict  # input, complete, train, holdout, dropped {reason: count}
     fit: dict  # converged, iterations, deviance, null_deviance, log_likelihood, aic, bic, ...
     terms: tuple[FittedTerm, ...]  # the intercept first
@@ -112,16 +114,22 @@ def to_yaml(fitted: FittedModel) -> str:
 
 
 SIGNIFICANT_DIGITS = 12
+ORDER_STATISTICS = {"edges", "min", "median", "max"}
 
 
-def _plain(value):
-    """Tuples to lists and floats to 12 significant digits, recursively, so the YAML is plain and repeatable."""
-    if isinstance(value, float):
-        return float(f"{value:.{SIGNIFICANT_DIGITS}g}")
+def as_written(value: float) -> float:
+    """`value` at the precision the fitted file keeps for figures computed from sums."""
+    return float(f"{value:.{SIGNIFICANT_DIGITS}g}")
+
+
+def _plain(value, exact: bool = False):
+    """Tuples to lists and summed floats to 12 significant digits, recursively: plain, repeatable YAML."""
+    if isinstance(value, float) and not exact:
+        return as_written(value)
     if isinstance(value, dict):
-        return {key: _plain(item) for key, item in value.items()}
+        return {key: _plain(item, exact or key in ORDER_STATISTICS) for key, item in value.items()}
     if isinstance(value, (list, tuple)):
-        return [_plain(item) for item in value]
+        return [_plain(item, exact) for item in value]
     return value
 
 

@@ -6,10 +6,12 @@ profiles and the holdout metrics are all queries; only small results come back.
 
 from __future__ import annotations
 
+from sqlglot import exp
+
 from .compiler import CompiledModel, CompiledProject, Term
 from .engines.base import Engine
 from .errors import FeatpipeError
-from .fitted import INTERCEPT, FittedModel, FittedTerm
+from .fitted import INTERCEPT, FittedModel, FittedTerm, as_written
 from .glm import fit_glm
 from .metrics import holdout_metrics, training_profiles
 from .notes import effect, term_notes
@@ -44,7 +46,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model)
     glm = fit_glm(engine, layout, spec.family, spec.penalty)
-    coefficients = dict(zip(glm.names, glm.coef))
+    # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
+    coefficients = {name: as_written(value) for name, value in zip(glm.names, glm.coef)}
     profiles = training_profiles(
         engine, layout,
         {**{name: column(name) for name in layout.terms}, "linear_predictor": linear_predictor(layout, coefficients)},
@@ -67,6 +70,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         holdout={"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
         threshold=spec.threshold,
         penalty={"l2": spec.penalty.l2, "l1": spec.penalty.l1},
+        columns=_read_columns(compiled, model),
         rows=rows,
         fit={
             "converged": bool(glm.converged),
@@ -85,6 +89,15 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         metrics=metrics,
         warnings=tuple(glm.warnings),
     )
+
+
+def _read_columns(compiled: CompiledProject, model: CompiledModel) -> dict[str, str]:
+    """The contract of what the fitted model reads, so its scoring SQL can be built from the file alone."""
+    declared = compiled.project.inputs[model.spec.input].columns
+    read = {model.layout.key, *(name for term in model.terms for name in term.columns)}
+    if model.offset is not None:
+        read.update(node.name for node in model.offset.find_all(exp.Column))
+    return {name: declared[name] for name in sorted(read)}
 
 
 def _optional(values, index: int) -> float | None:

@@ -16,15 +16,14 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from .materialize import Progress, connect
-from .sqlgen.common import check_dialect
 from .compiler import compile_project
 from .contract import check_contract
 from .errors import FeatpipeError
 from .fitted import FittedModel, file_hash, read_fitted, staleness
+from .materialize import Progress, connect
 from .project import PROJECT_FILE, InputSpec, Project
-from .sqlgen.common import column
-from .sqlgen.score import FITTED_DIALECT, STATUS, model_terms, render_score, score_query, score_statement
+from .sqlgen.common import check_dialect, column
+from .sqlgen.score import STATUS, render_score, score_query, score_statement
 
 
 @dataclass(frozen=True)
@@ -65,10 +64,7 @@ def scoring_contract(source: InputSpec, fitted: FittedModel) -> InputSpec:
 
     A table to score need not hold the target or columns no term uses.
     """
-    expressions = [term.sql for term in model_terms(fitted)] + ([fitted.offset] if fitted.offset else [])
-    read = {fitted.key}
-    for sql in expressions:
-        read.update(node.name for node in exp.maybe_parse(sql, dialect=FITTED_DIALECT).find_all(exp.Column))
+    read = set(fitted.columns)
     undeclared = sorted(read - set(source.columns))
     if undeclared:
         raise FeatpipeError(f"{PROJECT_FILE}: fitted/{fitted.model}.yaml reads column(s) {', '.join(undeclared)} "

@@ -49,6 +49,7 @@ def fitted_model(project: Path, estimates: dict[str, tuple[float, float, float]]
         model="returns", fingerprint=model.fingerprint, input="orders", key="order_id", target="returned",
         family="binomial", link="logit", offset=None, weights=None, holdout={"fraction": 0.3, "salt": "v1"},
         threshold=0.5, penalty={"l2": 0.0, "l1": 0.0},
+        columns={"order_id": "BIGINT", "amount": "DOUBLE", "items": "BIGINT", "region": "VARCHAR"},
         rows={"input": 8, "complete": 7, "train": train, "holdout": 7 - train, "dropped": {"null term item_price": 1}},
         fit={"converged": True, "iterations": 5, "deviance": 7.5, "aic": 15.5},
         terms=tuple(terms),

@@ -43,6 +43,11 @@ def fitted_term(name: str, estimate: float, sql: str, mean: float, kind: str = "
                       kind=kind, profile=profile)
 
 
+# The declared types of the invented orders table (see write_orders); a fitted file records them.
+ORDER_COLUMNS = {"order_id": "BIGINT", "amount": "DOUBLE", "items": "BIGINT", "region": "VARCHAR",
+                 "exposure": "DOUBLE", "age": "DOUBLE"}
+
+
 def fitted_model(terms, intercept: float, family: str = "binomial", offset: str | None = None,
                  key: str = "order_id", input: str = "orders", model: str = "returns",
                  fingerprint: str = "0123456789abcdef") -> FittedModel:
@@ -50,7 +55,7 @@ def fitted_model(terms, intercept: float, family: str = "binomial", offset: str 
     return FittedModel(
         model=model, fingerprint=fingerprint, input=input, key=key, target="returned", family=family,
         link=LINK[family], offset=offset, weights=None, holdout={"fraction": 0.3, "salt": "v1"}, threshold=0.5,
-        penalty={"l2": 0.0, "l1": 0.0}, rows={}, fit={}, terms=(intercept_term, *terms),
+        penalty={"l2": 0.0, "l1": 0.0}, columns=ORDER_COLUMNS, rows={}, fit={}, terms=(intercept_term, *terms),
     )
 
 

@@ -248,7 +248,7 @@ def _parsed(fitted: FittedModel, what: str, sql: str | None, *, is_boolean: bool
     problems = check_allowed(tree, _source(fitted))
     if problems:
         raise FeatpipeError(f"{_source(fitted)}: {what}: {problems[0].message}; run `featpipe fit` again")
-    return as_number(harden(tree), is_boolean)
+    return as_number(harden(tree, schema=fitted.columns), is_boolean)
 
 
 def _prediction(family: str, eta: exp.Expression) -> exp.Expression:
