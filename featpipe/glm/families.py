@@ -17,7 +17,7 @@ import math
 from abc import ABC, abstractmethod
 
 import numpy as np
-from scipy.special import expit
+from scipy.special import expit, gammaln
 
 from ..sqlgen.statistics import BOUNDARY_ETA, ETA_LIMIT
 
@@ -91,6 +91,12 @@ class Poisson(Family):
 
     def link_of_mean(self, mean):
         return math.log(mean)
+
+    @staticmethod
+    def likelihood_constant(y: np.ndarray) -> np.ndarray:
+        """Per row, y ln y - y - ln y!: the part of the log-likelihood the deviance leaves out."""
+        y_ln_y = np.where(y > 0, y * np.log(np.where(y > 0, y, 1.0)), 0.0)
+        return y_ln_y - y - gammaln(y + 1.0)
 
 
 class Gaussian(Family):

@@ -2,8 +2,14 @@
 
 Both run the same steps: a training profile (counts, domain checks, term means and sds), IRLS over a
 statistics source for the model and its intercept-only null model together, then inference on the
-original scale of the terms. Terms are standardized inside (training mean, population sd), which
-keeps X'WX well conditioned and gives the penalty its scale (see `penalty`).
+original scale of the terms. The SQL source reads the profile with one aggregate query first; a batch
+source (streamed or in memory) gathers it during its first IRLS pass and the checks run before that
+pass's statistics are used.
+
+IRLS works on standardized terms, centered and scaled by the mean and population sd of the sample
+(close to the training ones), which keeps X'WX well conditioned; the penalty is defined on terms
+standardized by the training mean and population sd (see `penalty`), and results are reported on
+the terms' own scale.
 
 On an engine the data is read a few times only: a deterministic sample (the first `sample_rows`
 training rows; by key order on engines without a stable scan order) is fitted in memory first, so the
@@ -24,7 +30,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
-from scipy.special import gammaln
 
 from ..engines.base import Engine
 from ..errors import FeatpipeError
@@ -39,7 +44,7 @@ from ..sqlgen.statistics import (
     target_counts_query,
 )
 from . import problems
-from .families import Family, get_family
+from .families import Family, Poisson, get_family
 from .inference import information_criteria, log_likelihood, wald
 from .irls import AliasedTerms, IrlsResult, run_irls
 from .linalg import inverse_spd, variance_inflation
@@ -120,33 +125,21 @@ def fit_glm(
         raise ValueError(f"unknown statistics source {source!r}")
     glm_family = get_family(family)
     streamed = source == "stream" or (source == "auto" and engine.name == "duckdb")
-    ordered = not streamed
-    frame = engine.fetch_frame(design_columns_query(layout, limit=sample_rows, ordered=ordered))
+    frame = engine.fetch_frame(design_columns_query(layout, limit=sample_rows, ordered=not streamed))
     sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
-    passes = 1 if ordered else 0  # ORDER BY key reads every row once
-    shifts = {term: float(np.mean(values)) if len(values) else 0.0 for term, values in zip(layout.terms, sample.terms)}
-    profile = read_profile(engine.fetch(profile_query(layout, shifts))[0], layout, shifts)
-    passes += 1
-    where = f"design table {layout.table}"
-    warnings = problems.check_training_rows(profile, glm_family, where, layout.target, layout.weight)
-    constant = 0.0
-    if glm_family.name == "poisson":
-        counts = engine.fetch(target_counts_query(layout))
-        passes += 1
-        constant = poisson_constant(np.array([float(v) for v, _ in counts]), np.array([float(w) for _, w in counts]))
-    scaling = _scaling(profile)
+    passes = 0 if streamed else 1  # ORDER BY key reads every row once
+    scaling = Scaling.of(sample.terms)
+    data = _Data(layout.terms, f"design table {layout.table}", layout.target, layout.weight, layout.offset is not None)
     if streamed:
         statistics: StatisticsSource = BatchSource("stream", engine_batches(engine, layout, batch_rows), glm_family, scaling)
+        known = None  # the first streamed pass gathers the profile
     else:
         statistics = SqlAggregateSource(engine, layout, glm_family, scaling)
-    warm = None
-    if profile.rows > len(sample.y):  # a strict subset: worth fitting first
-        sample_weight = float(len(sample.y) if sample.weight is None else sample.weight.sum())
-        warm = (BatchSource("sample", in_memory_batches(sample, batch_rows), glm_family, scaling), sample_weight)
-    return _fit(
-        statistics, glm_family, layout.terms, where, profile, constant, scaling, penalty, warm, max_iter, tol, passes, warnings,
-        has_offset=layout.offset is not None,
-    )
+        known, read = _profile_in_sql(engine, layout, glm_family, scaling)
+        passes += read
+    # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
+    warm = BatchSource("sample", in_memory_batches(sample, batch_rows), glm_family, scaling) if len(sample.y) >= sample_rows > 0 else None
+    return _fit(statistics, glm_family, data, sample, scaling, penalty, warm, known, max_iter, tol, passes)
 
 
 def fit_glm_arrays(
@@ -166,111 +159,106 @@ def fit_glm_arrays(
     glm_family = get_family(family)
     terms = np.asarray(X, dtype=float)
     terms = terms.reshape(len(terms), -1)
-    target = np.asarray(y, dtype=float)
-    offset = None if offset is None else np.asarray(offset, dtype=float)
-    weights = None if weights is None else np.asarray(weights, dtype=float)
     names = tuple(names) if names is not None else tuple(f"x{j + 1}" for j in range(terms.shape[1]))
-    profile = profile_from_arrays(terms, target, offset, weights, names)
-    warnings = problems.check_training_rows(profile, glm_family, "the arrays", "y", "weights" if weights is not None else None)
-    constant = poisson_constant(target, np.ones_like(target) if weights is None else weights)
-    scaling = _scaling(profile)
-    data = Batch(target, offset, weights, [terms[:, j] for j in range(terms.shape[1])])
+    data = Batch(
+        np.asarray(y, dtype=float),
+        None if offset is None else np.asarray(offset, dtype=float),
+        None if weights is None else np.asarray(weights, dtype=float),
+        [terms[:, j] for j in range(terms.shape[1])],
+    )
+    scaling = Scaling.of(data.terms)
     statistics = BatchSource("arrays", in_memory_batches(data, batch_rows), glm_family, scaling)
-    return _fit(
-        statistics, glm_family, names, "the arrays", profile, constant, scaling, penalty, None, max_iter, tol, 1, warnings,
-        has_offset=offset is not None,
-    )
+    about = _Data(names, "the arrays", "y", None if weights is None else "weights", offset is not None)
+    return _fit(statistics, glm_family, about, data, scaling, penalty, None, None, max_iter, tol, 0)
 
 
-def profile_from_arrays(terms: np.ndarray, y: np.ndarray, offset, weights, names) -> TrainingProfile:
-    """The `TrainingProfile` of in-memory arrays, as `profile_query` computes it in SQL."""
-    rows = len(y)
-    w = np.ones(rows) if weights is None else weights
-    term_profiles = tuple(
-        TermProfile(name, rows, float(values.mean()), float(values.std(ddof=1)) if rows > 1 else 0.0, float(values.min()), float(values.max()))
-        if rows
-        else TermProfile(name, 0, math.nan, math.nan, math.nan, math.nan)
-        for name, values in zip(names, terms.T, strict=True)
-    )
-    return TrainingProfile(
-        rows=rows,
-        weight_sum=float(w.sum()),
-        weighted_target_sum=float(w @ y),
-        target_sum=float(y.sum()),
-        target_min=float(y.min()) if rows else None,
-        target_max=float(y.max()) if rows else None,
-        weighted_offset_sum=0.0 if offset is None else float(w @ offset),
-        log_weight_sum=0.0 if weights is None else float(np.log(weights[weights > 0]).sum()),
-        not_binary=int(((y != 0) & (y != 1)).sum()),
-        negative=int((y < 0).sum()),
-        not_integer=int((y != np.floor(y)).sum()),
-        nonpositive_weights=0 if weights is None else int((weights <= 0).sum()),
-        terms=term_profiles,
-    )
+@dataclass(frozen=True)
+class _Data:
+    """What messages and starts need to know about the data being fitted."""
+
+    names: tuple[str, ...]
+    where: str  # how messages name the data
+    target: str
+    weight: str | None
+    has_offset: bool
 
 
-def poisson_constant(values: np.ndarray, weights: np.ndarray) -> float:
-    """sum w (y ln y - y - ln y!), the part of the poisson log-likelihood the deviance leaves out."""
-    positive = np.where(values > 0, values, 1.0)
-    per_row = np.where(values > 0, values * np.log(positive), 0.0) - values - gammaln(values + 1.0)
-    order = np.argsort(values, kind="stable")  # a fixed summation order: same data, same digits
-    return float((weights[order] * per_row[order]).sum())
+def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling) -> tuple[tuple[TrainingProfile, float], int]:
+    """The training profile and poisson log-likelihood constant from aggregate queries; and how many
+    full reads that took."""
+    shifts = dict(zip(layout.terms, scaling.centers.tolist(), strict=True))
+    profile = read_profile(engine.fetch(profile_query(layout, shifts))[0], layout, shifts)
+    if family.name != "poisson":
+        return (profile, 0.0), 1
+    counts = sorted((float(value), float(weight)) for value, weight in engine.fetch(target_counts_query(layout)))
+    values = np.array([value for value, _ in counts])
+    weights = np.array([weight for _, weight in counts])
+    return (profile, float(weights @ Poisson.likelihood_constant(values))), 2
 
 
-def _scaling(profile: TrainingProfile) -> Scaling:
-    rows = profile.rows
-    centers = np.array([term.mean for term in profile.terms])
-    scales = np.array([term.sd * math.sqrt((rows - 1) / rows) for term in profile.terms])
-    return Scaling(centers, scales)
-
-
-def _starts(family: Family, profile: TrainingProfile, size: int) -> list[Request]:
-    """Model and null model at the intercept of the mean target (exact for the null without offset)."""
-    total = profile.weight_sum
-    intercept = family.link_of_mean(profile.weighted_target_sum / total) - profile.weighted_offset_sum / total
+def _starts(family: Family, sample: Batch, size: int) -> list[Request]:
+    """Model and null model at the intercept of the sample's mean target (kept inside the family's range)."""
+    rows = len(sample.y)
+    weight = np.ones(rows) if sample.weight is None else sample.weight
+    total = float(weight.sum()) if rows else 1.0
+    mean = float(weight @ sample.y) / total if rows else 0.5
+    if family.name == "binomial":
+        mean = min(max(mean, 0.5 / (rows + 1)), 1 - 0.5 / (rows + 1))
+    elif family.name == "poisson":
+        mean = max(mean, 0.5 / (rows + 1))
+    offset = float(weight @ sample.offset) / total if rows and sample.offset is not None else 0.0
+    intercept = family.link_of_mean(mean) - offset
     return [Request(tuple(range(size)), np.r_[intercept, np.zeros(size)]), Request((), np.array([intercept]))]
 
 
-def _warm_starts(
-    sample: StatisticsSource, total_weight: float, starts: list[Request], penalty: ScaledPenalty, max_iter: int, tol: float, refine_null: bool
-) -> list[Request]:
+def _warm_starts(sample: BatchSource, data: Batch, starts: list[Request], penalty: ScaledPenalty, max_iter: int, tol: float) -> list[Request]:
     """Starts fitted on the sample; the plain starts when the sample cannot be fitted cleanly (aliased on
-    its rows, not converging, running away). Without an offset the null model's plain start is already
-    exact, so only the model's is replaced."""
+    its rows, not converging, running away)."""
+    total_weight = float(len(data.y) if data.weight is None else data.weight.sum())
     try:
         model, null = run_irls(sample, starts, penalty, total_weight, max_iter, tol, allow_aliasing=penalty.active)
     except (AliasedTerms, FeatpipeError):
         return starts
     if not (model.converged and null.converged) or problems.runaway_terms(model.step):
         return starts
-    return [Request(model.terms, model.beta), Request(null.terms, null.beta) if refine_null else starts[1]]
+    return [Request(model.terms, model.beta), Request(null.terms, null.beta)]
+
+
+def _penalty_factors(profile: TrainingProfile, scaling: Scaling) -> np.ndarray:
+    """Working coefficient to coefficient per training (population) sd, for each term."""
+    rows = profile.rows
+    training_sd = np.array([term.sd * math.sqrt((rows - 1) / rows) for term in profile.terms])
+    return training_sd / scaling.scales
 
 
 def _fit(
     source: StatisticsSource,
     family: Family,
-    names: tuple[str, ...],
-    where: str,
-    profile: TrainingProfile,
-    constant: float,
+    data: _Data,
+    sample: Batch,
     scaling: Scaling,
     penalty: Penalty,
-    warm: tuple[StatisticsSource, float] | None,  # the sample source and its total weight
+    warm: BatchSource | None,
+    known: tuple[TrainingProfile, float] | None,  # profile and poisson constant, unless the first pass gathers them
     max_iter: int,
     tol: float,
     passes: int,
-    warnings: list[str],
-    has_offset: bool,
 ) -> GlmFit:
-    scaled = ScaledPenalty(penalty.l2, penalty.l1)
-    starts = _starts(family, profile, len(names))
+    starts = _starts(family, sample, len(data.names))
     if warm is not None:
-        starts = _warm_starts(*warm, starts, scaled, max_iter, tol, refine_null=has_offset)
+        starts = _warm_starts(warm, sample, starts, ScaledPenalty(penalty.l2, penalty.l1), max_iter, tol)
+    first = None
+    if known is None:
+        first, profile, constant = source.evaluate_with_profile(starts, data.names)
+    else:
+        profile, constant = known
+    warnings = problems.check_training_rows(profile, family, data.where, data.target, data.weight)
+    scaled = ScaledPenalty(penalty.l2, penalty.l1, _penalty_factors(profile, scaling))
     try:
-        model, null = run_irls(source, starts, scaled, profile.weight_sum, max_iter, tol, allow_aliasing=scaled.active)
+        model, null = run_irls(source, starts, scaled, profile.weight_sum, max_iter, tol, allow_aliasing=scaled.active, first=first)
     except AliasedTerms as error:
-        raise FeatpipeError(problems.aliased_message(error.aliases, names, scaling, where)) from None
-    return _result(model, null, source, family, names, where, profile, constant, scaling, scaled, max_iter, passes, warnings)
+        raise FeatpipeError(problems.aliased_message(error.aliases, data.names, scaling, data.where)) from None
+    return _result(model, null, source, family, data.names, data.where, profile, constant, scaling, scaled, max_iter, passes, warnings)
 
 
 def _result(
@@ -307,8 +295,9 @@ def _result(
     settled = model.converged or statistics.boundary_rows > 0
     runaway = problems.runaway_terms(model.step) if family.name != "gaussian" and settled else []
     if runaway or statistics.boundary_rows:
+        per_sd = np.r_[model.beta[0], model.beta[1:] * penalty.factors]
         message = problems.separation(
-            family, statistics.boundary_rows, names, runaway, model.beta, None if inference is None else inference.statistic
+            family, statistics.boundary_rows, names, runaway, per_sd, None if inference is None else inference.statistic
         )
         if runaway and not penalty.active:
             raise FeatpipeError(f"{where}: {message}")

@@ -73,17 +73,23 @@ def run_irls(
     max_iter: int,
     tol: float,
     allow_aliasing: bool = False,
+    first: list[Statistics] | None = None,
 ) -> list[IrlsResult]:
     """Fit every start to convergence (or `max_iter` passes); one result per start, in order.
 
-    Raises `AliasedTerms` when a fit's X'WX is singular at its start and `allow_aliasing` is off.
+    `first` holds the statistics of the starts when a pass already computed them. Raises
+    `AliasedTerms` when a fit's X'WX is singular at its start and `allow_aliasing` is off.
     """
     fits = [_Fit(start.terms, np.asarray(start.beta, dtype=float)) for start in starts]
+    penalties = {id(fit): penalty.for_terms(fit.terms) for fit in fits}
     while active := [fit for fit in fits if not fit.done]:
-        evaluated = source.evaluate([Request(fit.terms, fit.beta) for fit in active])
+        if first is not None:
+            evaluated, first = first, None
+        else:
+            evaluated = source.evaluate([Request(fit.terms, fit.beta) for fit in active])
         for fit, statistics in zip(active, evaluated, strict=True):
             fit.iterations += 1
-            _advance(fit, statistics, penalty, total_weight, tol, allow_aliasing)
+            _advance(fit, statistics, penalties[id(fit)], total_weight, tol, allow_aliasing)
             if not fit.done and fit.iterations >= max_iter:
                 fit.done = True
     return [fit.result() for fit in fits]

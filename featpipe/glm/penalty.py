@@ -27,15 +27,30 @@ DESCENT_SWEEPS = 100_000
 
 @dataclass(frozen=True)
 class ScaledPenalty:
+    """The penalty on the working coefficients of the terms.
+
+    `factors` (one per term) turn a working coefficient into one per training sd: IRLS may work on
+    terms scaled by a sample's sd, while the penalty is defined on the training sd.
+    """
+
     l2: float = 0.0
     l1: float = 0.0
+    factors: np.ndarray | None = None
 
     @property
     def active(self) -> bool:
         return self.l2 > 0 or self.l1 > 0
 
+    def for_terms(self, terms: tuple[int, ...]) -> ScaledPenalty:
+        """The penalty of a model using only `terms` (indices into the factors)."""
+        factors = None if self.factors is None else self.factors[list(terms)]
+        return ScaledPenalty(self.l2, self.l1, factors)
+
+    def _factors(self, size: int) -> np.ndarray:
+        return np.ones(size) if self.factors is None else self.factors
+
     def value(self, beta: np.ndarray) -> float:
-        terms = beta[1:]
+        terms = beta[1:] * self._factors(len(beta) - 1)
         return 0.5 * self.l2 * float(terms @ terms) + self.l1 * float(np.abs(terms).sum())
 
     def step(self, xtwx: np.ndarray, score: np.ndarray, beta: np.ndarray, total_weight: float) -> tuple[np.ndarray, float]:
@@ -48,31 +63,32 @@ class ScaledPenalty:
             return beta + delta, float(score @ delta)
         curvature = xtwx / total_weight
         gradient = score / total_weight
+        squares = self._factors(len(beta) - 1) ** 2
         if self.l1 == 0:
             penalized = curvature.copy()
-            penalized[1:, 1:] += self.l2 * np.eye(len(beta) - 1)
+            penalized[1:, 1:] += np.diag(self.l2 * squares)
             rhs = gradient.copy()
-            rhs[1:] -= self.l2 * beta[1:]
+            rhs[1:] -= self.l2 * squares * beta[1:]
             new = beta + solve_spd(penalized, rhs)
         else:
-            new = _coordinate_descent(curvature, curvature @ beta + gradient, self.l2, self.l1, beta)
+            l1 = np.r_[0.0, self.l1 * self._factors(len(beta) - 1)]
+            l2 = np.r_[0.0, self.l2 * squares]
+            new = _coordinate_descent(curvature, curvature @ beta + gradient, l2, l1, beta)
         delta = new - beta
         model_change = -gradient @ delta + 0.5 * delta @ curvature @ delta + self.value(new) - self.value(beta)
         return new, max(-2.0 * total_weight * float(model_change), 0.0)
 
 
-def _coordinate_descent(curvature: np.ndarray, linear: np.ndarray, l2: float, l1: float, start: np.ndarray) -> np.ndarray:
-    """Minimize b'Ab/2 - c'b + l2/2 ||b[1:]||^2 + l1 ||b[1:]||_1 one coordinate at a time."""
+def _coordinate_descent(curvature: np.ndarray, linear: np.ndarray, l2: np.ndarray, l1: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """Minimize b'Ab/2 - c'b + sum l2_j b_j^2 / 2 + sum l1_j |b_j| one coordinate at a time
+    (l2_0 = l1_0 = 0: the intercept is free)."""
     b = start.copy()
     diagonal = np.diag(curvature)
     for _ in range(DESCENT_SWEEPS):
         largest = 0.0
         for j in range(len(b)):
             partial = linear[j] - curvature[j] @ b + diagonal[j] * b[j]
-            if j == 0:
-                value = partial / diagonal[0]
-            else:
-                value = np.sign(partial) * max(abs(partial) - l1, 0.0) / (diagonal[j] + l2)
+            value = np.sign(partial) * max(abs(partial) - l1[j], 0.0) / (diagonal[j] + l2[j])
             largest = max(largest, abs(value - b[j]))
             b[j] = value
         if largest <= DESCENT_TOLERANCE * max(1.0, float(np.abs(b).max())):

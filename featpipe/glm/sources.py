@@ -12,6 +12,7 @@ Coefficients are on the standardized scale: term t enters as (x - center) / scal
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -23,16 +24,24 @@ from scipy.linalg.blas import dsyrk
 
 from ..engines.base import Engine
 from ..sqlgen.layout import DesignLayout
-from ..sqlgen.statistics import ModelRequest, design_columns_query, statistics_query, upper_pairs
-from .families import Family
+from ..sqlgen.statistics import ModelRequest, TrainingProfile, design_columns_query, statistics_query, term_profile, upper_pairs
+from .families import Family, Poisson
 
 
 @dataclass(frozen=True)
 class Scaling:
-    """Centers and scales of the terms (training mean and population sd), in term order."""
+    """Centers and scales of the terms, in term order: the working coordinates of IRLS."""
 
     centers: np.ndarray
     scales: np.ndarray
+
+    @classmethod
+    def of(cls, terms: Sequence[np.ndarray]) -> Scaling:
+        """Mean and population sd of each term column; scale 1 where the column has no spread."""
+        centers = np.array([float(values.mean()) if len(values) else 0.0 for values in terms])
+        scales = np.array([float(values.std()) if len(values) else 0.0 for values in terms])
+        spread = np.isfinite(scales) & (scales > 0)
+        return cls(np.where(np.isfinite(centers), centers, 0.0), np.where(spread, scales, 1.0))
 
     def to_original(self) -> np.ndarray:
         """Matrix T with beta_original = T @ beta_standardized (intercept first)."""
@@ -117,25 +126,54 @@ class Batch:
 
 
 class BatchSource:
-    """Accumulates the statistics over batches with numpy; memory is one batch."""
+    """Accumulates the statistics over batches with numpy; memory is one batch.
+
+    `evaluate_with_profile` also gathers the training profile in the same pass, so a batch source
+    needs no separate profile query.
+    """
 
     def __init__(self, name: str, batches: Callable[[], Iterable[Batch]], family: Family, scaling: Scaling):
         self.name, self.batches, self.family, self.scaling = name, batches, family, scaling
         self.inverse_scales = 1.0 / scaling.scales
         self.passes = 0
+        self._buffers: dict[tuple[str, int, int], np.ndarray] = {}
+
+    def _buffer(self, role: str, rows: int, columns: int) -> np.ndarray:
+        """A Fortran-ordered scratch matrix reused from batch to batch: a fresh allocation of this
+        size costs page faults worth several times the arithmetic done in it."""
+        key = (role, rows, columns)
+        if key not in self._buffers:
+            if len(self._buffers) >= 4:  # batch sizes changed: drop the old ones
+                self._buffers.clear()
+            self._buffers[key] = np.empty((rows, columns), order="F")
+        return self._buffers[key]
 
     def evaluate(self, requests: Sequence[Request]) -> list[Statistics]:
+        return self._pass(requests, None)
+
+    def evaluate_with_profile(self, requests: Sequence[Request], names: Sequence[str]) -> tuple[list[Statistics], TrainingProfile, float]:
+        """Statistics, the training profile (shifted by the scaling's centers) and, for poisson, the
+        log-likelihood constant sum of w (y ln y - y - ln y!)."""
+        profile = _ProfileTotals(self.scaling.centers, self.family.name == "poisson")
+        statistics = self._pass(requests, profile)
+        return statistics, profile.profile(names), profile.constant
+
+    def _pass(self, requests: Sequence[Request], profile: _ProfileTotals | None) -> list[Statistics]:
         totals = [_Totals(len(request.terms) + 1) for request in requests]
         for batch in self.batches():
             standardized = self._standardize(batch.terms, len(batch.y))
+            if profile is not None:
+                profile.add(batch, standardized, self.scaling.scales)
             for request, total in zip(requests, totals, strict=True):
-                total.add(self.family, batch, _select(standardized, request.terms), request.beta)
+                x = _select(standardized, request.terms)
+                scratch = None if x is None else self._buffer("rooted", *x.shape)
+                total.add(self.family, batch, x, request.beta, scratch)
         self.passes += 1
         return [total.statistics() for total in totals]
 
     def _standardize(self, columns: list[np.ndarray], rows: int) -> np.ndarray:
         """(x - center) / scale per term, as one Fortran-ordered matrix (columns contiguous for BLAS)."""
-        matrix = np.empty((rows, len(columns)), order="F")
+        matrix = self._buffer("standardized", rows, len(columns))
         for j, values in enumerate(columns):
             np.subtract(values, self.scaling.centers[j], out=matrix[:, j])
             matrix[:, j] *= self.inverse_scales[j]
@@ -158,7 +196,8 @@ class _Totals:
         self.score = np.zeros(size)
         self.xtwx = np.zeros((size, size))
 
-    def add(self, family: Family, batch: Batch, x: np.ndarray | None, beta: np.ndarray) -> None:
+    def add(self, family: Family, batch: Batch, x: np.ndarray | None, beta: np.ndarray, scratch: np.ndarray | None) -> None:
+        """Add one batch; `scratch` (shaped like x) receives the rows of x times sqrt(weight)."""
         eta = np.full(len(batch.y), beta[0]) if x is None else x @ beta[1:] + beta[0]
         if batch.offset is not None:
             eta += batch.offset
@@ -176,12 +215,72 @@ class _Totals:
         if x is not None:
             self.score[1:] += residual @ x
             self.xtwx[0, 1:] += weight @ x
-            rooted = x * np.sqrt(weight)[:, None]
+            rooted = np.multiply(x, np.sqrt(weight)[:, None], out=scratch)
             self.xtwx[1:, 1:] += dsyrk(1.0, rooted, trans=1, lower=0)  # upper triangle of rooted' rooted
 
     def statistics(self) -> Statistics:
         upper = np.triu(self.xtwx)
         return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T)
+
+
+class _ProfileTotals:
+    """Running sums of the training profile, the same sums `profile_query` takes in SQL."""
+
+    def __init__(self, shifts: np.ndarray, poisson: bool):
+        self.shifts, self.poisson = shifts, poisson
+        size = len(shifts)
+        self.rows, self.not_binary, self.negative, self.not_integer, self.nonpositive_weights = 0, 0, 0, 0, 0
+        self.weight_sum = self.weighted_target_sum = self.target_sum = 0.0
+        self.weighted_offset_sum = self.log_weight_sum = self.constant = 0.0
+        self.target_min, self.target_max = math.inf, -math.inf
+        self.shifted, self.squares = np.zeros(size), np.zeros(size)
+        self.low, self.high = np.full(size, math.inf), np.full(size, -math.inf)
+
+    def add(self, batch: Batch, standardized: np.ndarray, scales: np.ndarray) -> None:
+        """Add one batch; its terms are read from `standardized` = (x - shift) / scales."""
+        y, weight = batch.y, batch.weight
+        self.rows += len(y)
+        self.weight_sum += len(y) if weight is None else float(weight.sum())
+        self.weighted_target_sum += float(y.sum() if weight is None else weight @ y)
+        self.target_sum += float(y.sum())
+        self.target_min, self.target_max = min(self.target_min, float(y.min())), max(self.target_max, float(y.max()))
+        if batch.offset is not None:
+            self.weighted_offset_sum += float(batch.offset.sum() if weight is None else weight @ batch.offset)
+        if weight is not None:
+            self.log_weight_sum += float(np.log(weight[weight > 0]).sum())
+            self.nonpositive_weights += int((weight <= 0).sum())
+        self.not_binary += int(((y != 0) & (y != 1)).sum())
+        self.negative += int((y < 0).sum())
+        self.not_integer += int((y != np.floor(y)).sum())
+        if self.poisson:
+            constant = Poisson.likelihood_constant(y)
+            self.constant += float(constant.sum() if weight is None else weight @ constant)
+        if standardized.shape[1]:  # whole-matrix reductions: one call per statistic, not per term
+            self.shifted += (np.ones(len(y)) @ standardized) * scales
+            self.squares += np.einsum("ij,ij->j", standardized, standardized) * scales**2
+            self.low = np.minimum(self.low, standardized.min(axis=0) * scales + self.shifts)
+            self.high = np.maximum(self.high, standardized.max(axis=0) * scales + self.shifts)
+
+    def profile(self, names: Sequence[str]) -> TrainingProfile:
+        rows = self.rows
+        return TrainingProfile(
+            rows=rows,
+            weight_sum=self.weight_sum,
+            weighted_target_sum=self.weighted_target_sum,
+            target_sum=self.target_sum,
+            target_min=self.target_min if rows else None,
+            target_max=self.target_max if rows else None,
+            weighted_offset_sum=self.weighted_offset_sum,
+            log_weight_sum=self.log_weight_sum,
+            not_binary=self.not_binary,
+            negative=self.negative,
+            not_integer=self.not_integer,
+            nonpositive_weights=self.nonpositive_weights,
+            terms=tuple(
+                term_profile(name, rows, float(self.shifts[j]), float(self.shifted[j]), float(self.squares[j]), self.low[j], self.high[j])
+                for j, name in enumerate(names)
+            ),
+        )
 
 
 def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Batch]]:

@@ -162,7 +162,7 @@ def read_profile(row: Sequence, layout: DesignLayout, shifts: Mapping[str, float
     terms = []
     for index, term in enumerate(layout.terms):
         shifted_sum, shifted_squares, low, high = row[PROFILE_HEAD + 4 * index : PROFILE_HEAD + 4 * index + 4]
-        terms.append(_term_profile(term, rows, shifts[term], num(shifted_sum), num(shifted_squares), low, high))
+        terms.append(term_profile(term, rows, shifts[term], num(shifted_sum), num(shifted_squares), low, high))
     return TrainingProfile(
         rows=rows,
         weight_sum=num(row[1]),
@@ -180,7 +180,8 @@ def read_profile(row: Sequence, layout: DesignLayout, shifts: Mapping[str, float
     )
 
 
-def _term_profile(name: str, rows: int, shift: float, shifted_sum: float, shifted_squares: float, low, high) -> TermProfile:
+def term_profile(name: str, rows: int, shift: float, shifted_sum: float, shifted_squares: float, low, high) -> TermProfile:
+    """A term's profile from its sums of (x - shift) and (x - shift)^2 over `rows` rows."""
     if rows == 0:
         return TermProfile(name, 0, math.nan, math.nan, math.nan, math.nan)
     offset = shifted_sum / rows
