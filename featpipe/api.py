@@ -20,7 +20,7 @@ from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitte
 from .fitting import fit_model
 from .materialize import BuiltTable, Progress, build_designs, connect, design_signature, say
 from .project import Project, load_project  # re-exported: the API starts with loading a project
-from .report import write_reports
+from .report import report_path, write_reports
 from .sqlgen.common import DIALECTS, check_dialect, render  # noqa: F401  (DIALECTS: part of the API)
 from .sqlgen.design import design_query, terms_query
 
@@ -113,7 +113,7 @@ def fit(project: Project, models: list[str] | None = None, progress: Progress | 
 
 def refresh(project: Project, progress: Progress | None = None) -> list[FitOutcome]:
     """Check, then refit every model whose fitted file is missing or stale or whose data file changed,
-    and write the reports of the models whose fit changed."""
+    and write the reports of the models whose fit changed (or that have none yet)."""
     compiled = check(project)
     with connect(project) as engine:
         builds = read_builds(engine)
@@ -124,7 +124,8 @@ def refresh(project: Project, progress: Progress | None = None) -> list[FitOutco
             if not path.is_file() or staleness(read_fitted(path), model) or not current:
                 stale.append(model)
         outcomes = fit_models(engine, project, compiled, stale, progress) if stale else []
-        write_reports(project, [o.model for o in outcomes if o.changed], engine=engine, progress=progress)
+        outdated = [o.model for o in outcomes if o.changed or not report_path(project, o.model).is_file()]
+        write_reports(project, outdated, engine=engine, progress=progress)
         return outcomes
 
 

@@ -81,3 +81,57 @@ def test_an_unknown_model_is_a_user_error(project_dir):
     result = run("sql", "nosuch", "-p", str(project_dir))
     assert result.returncode == 1
     assert result.stderr.strip() == "error: unknown model nosuch; models in models/: returns"
+
+
+def test_the_whole_job_from_the_command_line(tmp_path):
+    """fit, explain, score, drift, report and sql on a copy of the lease demo, as a user types them."""
+    from conftest import copy_demo
+
+    root = copy_demo("lease_default", tmp_path)
+    assert run("refresh", "-p", str(root)).returncode == 0
+    assert (root / "build" / "reports" / "default_risk.html").is_file()
+    assert "everything is up to date" in run("refresh", "-p", str(root)).stdout
+
+    explained = run("explain", "payment_to_revenue", "-p", str(root))
+    assert explained.returncode == 0 and "multiplies the odds" in explained.stdout
+
+    scored = run("score", "default_risk", "--table", "leases", "--into", "scored", "--reasons", "2", "-p", str(root), "--json")
+    assert scored.returncode == 0, scored.stderr
+    assert json.loads(scored.stdout)["status"] == {"missing: payment_to_revenue": 58, "ok": 4942}
+
+    drift = run("drift", "default_risk", "--table", "leases", "--fail-above", "0.1", "-p", str(root))
+    assert drift.returncode == 0 and "stable" in drift.stdout
+
+    report = run("report", "default_risk", "--against", "default_raw", "-p", str(root), "--json")
+    assert report.returncode == 0 and json.loads(report.stdout)["path"].endswith("default_risk-vs-default_raw.html")
+
+    for part in ("terms", "design", "score", "drift"):
+        printed = run("sql", "default_risk", "--part", part, "--dialect", "postgres", "-p", str(root))
+        assert printed.returncode == 0 and "SELECT" in printed.stdout, printed.stderr
+    assert run("sql", "default_risk", "--part", "design", "--reasons", "2", "-p", str(root)).returncode == 1
+
+
+def test_drift_fails_above_the_limit_and_diff_fails_on_stale(tmp_path):
+    from conftest import copy_demo
+
+    root = copy_demo("fleet_claims", tmp_path)
+    git = ["git", "-c", "user.name=t", "-c", "user.email=t@example.invalid"]
+    assert run("fit", "-p", str(root)).returncode == 0
+    subprocess.run(["git", "init", "-q"], cwd=root, check=True)
+    subprocess.run([*git, "add", "."], cwd=root, check=True)
+    subprocess.run([*git, "commit", "-qm", "fit"], cwd=root, check=True)
+
+    with featpipe.connect(featpipe.load_project(root)) as engine:  # a batch whose drivers all drive at night
+        from sqlglot import exp
+
+        shifted = exp.select("*").from_("vehicle_years")
+        shifted.set("expressions", [exp.Star(replace=[exp.alias_(exp.column("annual_km"), "night_km")])])
+        engine.create_table("night_batch", shifted)
+    drift = run("drift", "claim_frequency", "--table", "night_batch", "--fail-above", "0.25", "-p", str(root))
+    assert drift.returncode == 1 and "PSI above 0.25: night_share" in drift.stderr
+
+    usage = root / "terms" / "usage.sql"
+    usage.write_text(usage.read_text().replace("/ 1000.0", "/ 100.0"))
+    assert run("diff", "-p", str(root), "--since", "HEAD").returncode == 0
+    gated = run("diff", "-p", str(root), "--since", "HEAD", "--fail-on-stale", "--format", "markdown")
+    assert gated.returncode == 1 and "km_per_driver" in gated.stdout
