@@ -79,16 +79,23 @@ def test_logistic_l2_matches_scikit_learn_on_duckdb(tmp_path):
     # twice the log loss, so C = 1 / (n * l2).
     reference = LogisticRegression(C=1 / (len(y) * l2), solver="newton-cholesky", tol=1e-12, max_iter=1000)
     reference.fit(scaler.transform(x), y)
-    np.testing.assert_allclose(fit.coef, original_scale(scaler, reference.intercept_[0], reference.coef_[0]), rtol=1e-7)
+    expected = original_scale(scaler, reference.intercept_[0], reference.coef_[0])
+    np.testing.assert_allclose(fit.coef, expected, rtol=1e-7)
+    # A warm start on the first 100 rows: IRLS then works on that sample's scaling, the penalty stays
+    # defined on the training sd.
+    warm = fit_glm(engine, layout, "binomial", Penalty(l2=l2), sample_rows=100)
+    np.testing.assert_allclose(warm.coef, expected, rtol=1e-7)
     assert fit.penalized
     assert fit.stderr is fit.ci_low is fit.ci_high is fit.p_value is None
     assert any("plain Wald inference does not hold for penalized estimates" in w for w in fit.warnings)
 
 
-def test_logistic_l1_matches_scikit_learn():
+def test_logistic_l1_matches_scikit_learn(tmp_path):
     x, y = case("binomial", seed=9)
     l1 = 0.03
-    fit = fit_glm_arrays(x, y, "binomial", penalty=Penalty(l1=l1))
+    names = [f"t{j}" for j in range(x.shape[1])]
+    engine, layout = duckdb_design(design_frame(dict(zip(names, x.T)), y), tmp_path)
+    fit = fit_glm(engine, layout, "binomial", Penalty(l1=l1), sample_rows=150, source="sql")
     scaler = StandardScaler().fit(x)
     # scikit-learn: C * sum(log loss) + ||b||_1 (l1_ratio=1), so C = 1 / (n * l1).
     reference = LogisticRegression(C=1 / (len(y) * l1), l1_ratio=1.0, solver="saga", tol=1e-12, max_iter=200_000)

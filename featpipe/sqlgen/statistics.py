@@ -6,7 +6,7 @@ the engine whatever the row count:
 - `profile_query`: row count, target and weight sums, counts of target values outside the family's
   domain, and per term the sums of (x - shift) and (x - shift)^2, MIN and MAX. Shifting by a value
   near the mean (the caller passes the mean of a small sample) keeps the variance free of
-  cancellation in one pass.
+  cancellation in one pass. (A fit that streams the rows gathers the same sums in numpy instead.)
 - `statistics_query`: per IRLS step and per model, the deviance, X'WX (upper triangle, intercept
   first), the score X'W(z - eta) = sum of w (y - mu) x and the count of rows whose fitted value lies
   within 1e-10 of the family's boundary. Terms enter standardized, (x - center) * (1 / scale), with
