@@ -4,7 +4,8 @@ Load with `pytest_plugins = ["fixtures_engines"]` in tests/conftest.py (or `-p f
 tests/ on the path). Fixtures:
 
 - `postgres_dsn` (session): DSN of a private PostgreSQL server on 127.0.0.1 (password authentication,
-  so a wrong password is refused); started once, stopped at the end of the run and at exit.
+  so a wrong password is refused); started once, stopped at the end of the run, at exit, and by a
+  watchdog process when the run is killed.
 - `postgres_engine`: a PostgresEngine on that server whose tables go to a fresh schema, dropped after
   the test (its `dsn` carries the search_path, for clients such as psql).
 - `spark_session` (session): the one local SparkSession of the run, started by SparkEngine itself
@@ -28,6 +29,7 @@ import secrets
 import shutil
 import socket
 import subprocess
+import sys
 import tempfile
 from pathlib import Path
 from typing import NoReturn
@@ -38,6 +40,16 @@ from sqlglot import exp
 from featpipe.project import EngineConfig
 
 _fresh_numbers = itertools.count(1)
+
+# Run by a separate Python: wait until the test process is gone (its end of the pipe closes), then stop
+# the server and remove its folder. argv: folder, then the pg_ctl stop command.
+_WATCHDOG = """
+import os, shutil, subprocess, sys
+sys.stdin.read()
+if os.path.isdir(sys.argv[1]):
+    subprocess.run(sys.argv[2:], capture_output=True)
+    shutil.rmtree(sys.argv[1], ignore_errors=True)
+"""
 
 
 def pytest_configure(config):
@@ -126,6 +138,7 @@ class PostgresServer:
             )  # fmt: skip
             if started.returncode == 0:
                 self.running = True
+                self._watch()
                 return self.dsn
         raise RuntimeError(f"pg_ctl could not start PostgreSQL; server log:\n{self._log_tail()}")
 
@@ -138,7 +151,18 @@ class PostgresServer:
         if self.running:
             self._run(self.pg_ctl, "-D", str(self.data), "-m", "fast", "-w", "stop", check=False)
             self.running = False
+            self.watchdog.stdin.close()  # nothing left to stop; the watchdog finds the folder gone
+            self.watchdog.wait()
         shutil.rmtree(self.folder, ignore_errors=True)
+
+    def _watch(self) -> None:
+        """A watchdog that stops the server when this process ends in a way atexit never sees (SIGTERM,
+        SIGKILL): it waits for EOF on a pipe only this process holds open."""
+        stop = [*self.as_owner, self.pg_ctl, "-D", str(self.data), "-m", "fast", "-w", "stop"]
+        self.watchdog = subprocess.Popen(
+            [sys.executable, "-c", _WATCHDOG, str(self.folder), *stop],
+            stdin=subprocess.PIPE, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True,
+        )  # fmt: skip
 
     def _run(self, *command: str, check: bool = True) -> subprocess.CompletedProcess:
         done = subprocess.run([*self.as_owner, *command], capture_output=True, text=True, cwd=self.folder)
