@@ -125,9 +125,10 @@ def fit_glm(
         raise ValueError(f"unknown statistics source {source!r}")
     glm_family = get_family(family)
     streamed = source == "stream" or (source == "auto" and engine.name == "duckdb")
-    frame = engine.fetch_frame(design_columns_query(layout, limit=sample_rows, ordered=not streamed))
+    ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
+    frame = engine.fetch_frame(design_columns_query(layout, limit=sample_rows, ordered=ordered))
     sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
-    passes = 0 if streamed else 1  # ORDER BY key reads every row once
+    passes = 1 if ordered else 0  # ORDER BY key reads every row once
     scaling = Scaling.of(sample.terms)
     data = _Data(layout.terms, f"design table {layout.table}", layout.target, layout.weight, layout.offset is not None)
     if streamed:

@@ -136,17 +136,16 @@ class BatchSource:
         self.name, self.batches, self.family, self.scaling = name, batches, family, scaling
         self.inverse_scales = 1.0 / scaling.scales
         self.passes = 0
-        self._buffers: dict[tuple[str, int, int], np.ndarray] = {}
+        self._buffers: dict[str, np.ndarray] = {}
 
     def _buffer(self, role: str, rows: int, columns: int) -> np.ndarray:
-        """A Fortran-ordered scratch matrix reused from batch to batch: a fresh allocation of this
-        size costs page faults worth several times the arithmetic done in it."""
-        key = (role, rows, columns)
-        if key not in self._buffers:
-            if len(self._buffers) >= 4:  # batch sizes changed: drop the old ones
-                self._buffers.clear()
-            self._buffers[key] = np.empty((rows, columns), order="F")
-        return self._buffers[key]
+        """A Fortran-ordered rows x columns scratch matrix over memory reused from batch to batch
+        (batch sizes vary): a fresh allocation this large costs page faults worth several times the
+        arithmetic done in it."""
+        size = rows * columns
+        if role not in self._buffers or len(self._buffers[role]) < size:
+            self._buffers[role] = np.empty(size)
+        return self._buffers[role][:size].reshape((rows, columns), order="F")
 
     def evaluate(self, requests: Sequence[Request]) -> list[Statistics]:
         return self._pass(requests, None)
