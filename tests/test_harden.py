@@ -11,7 +11,6 @@ PostgreSQL runs when a server is reachable through the PG* environment variables
 from __future__ import annotations
 
 import math
-import os
 import sqlite3
 
 import duckdb
@@ -191,17 +190,14 @@ def _null_safe(function):
     return lambda *args: None if any(arg is None for arg in args) else float(function(*args))
 
 
-def run_postgres() -> list[tuple]:
-    psycopg = pytest.importorskip("psycopg")
-    with psycopg.connect("", autocommit=True) as connection:
+def run_postgres(dsn: str) -> list[tuple]:
+    import psycopg
+
+    with psycopg.connect(dsn, autocommit=True) as connection:
         connection.execute(create_table("postgres").replace("CREATE TABLE", "CREATE TEMPORARY TABLE", 1))
         with connection.cursor() as cursor:
             cursor.executemany("INSERT INTO edge VALUES (%s, %s, %s, %s, %s, %s, %s)", ROWS)
         return connection.execute(query("postgres")).fetchall()
-
-
-def postgres_configured() -> bool:
-    return any(os.environ.get(name) for name in ("PGHOST", "PGPORT", "PGDATABASE", "PGUSER", "PGSERVICE"))
 
 
 @pytest.fixture(scope="module")
@@ -228,9 +224,8 @@ def test_sqlite_gives_the_same_answers(duckdb_rows):
     assert_same(cells(duckdb_rows), cells(run_sqlite()), "sqlite")
 
 
-@pytest.mark.skipif(not postgres_configured(), reason="no PostgreSQL server configured through PG* variables")
-def test_postgres_gives_the_same_answers(duckdb_rows):
-    postgres = run_postgres()
+def test_postgres_gives_the_same_answers(duckdb_rows, postgres_dsn):
+    postgres = run_postgres(postgres_dsn)
     assert all(value is None or isinstance(value, float) for row in postgres for value in row[1:])
     assert_same(cells(duckdb_rows), cells(postgres), "postgres")
 
