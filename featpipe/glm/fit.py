@@ -17,10 +17,8 @@ passes over the whole table start next to the answer (two or three IRLS passes i
 eight from the intercept-only start).
 
 Precision: IRLS stops when the next step would change the deviance by less than `tol` (relative) and
-still takes that step, so at tol=1e-10 estimates agree with a fully converged fit to about 1e-9. The
-standard errors come from X'WX at the last evaluated coefficients, one small step before the final
-ones: about 1e-7 relative on small tables, somewhat more on very large ones (no extra pass is spent
-on them).
+still takes that step, so at tol=1e-10 estimates agree with a fully converged fit to about 1e-9 or
+better; X'WX, the deviance and the standard errors are those of the final coefficients (see `irls`).
 """
 
 from __future__ import annotations

@@ -3,8 +3,10 @@
 Each pass evaluates every unfinished fit at its current coefficients in one read of the data. A fit
 stops when the step it is about to take would change the deviance by less than `tol` relative,
 (predicted decrease) / (|deviance| + 0.1) as in R's glm criterion; that last step is still applied
-(it is a Newton step, so it squares the remaining error). If a step makes the (penalized) deviance
-worse, it is halved and evaluated again.
+(it is a Newton step, so it squares the remaining error). Standard errors need X'WX at the final
+coefficients, and X'WX one step earlier is off by about the square root of that last change, so
+unless the change was already below SETTLED one more pass evaluates the final coefficients. If a
+step makes the (penalized) deviance worse, it is halved and evaluated again.
 """
 
 from __future__ import annotations
@@ -21,6 +23,7 @@ from .penalty import ScaledPenalty
 from .sources import Request, Statistics, StatisticsSource
 
 MAX_HALVINGS = 30
+SETTLED = 1e-18  # a last change this small leaves X'WX (and so the standard errors) exact to ~1e-9
 WORSE = 1e-12  # relative increase of the objective that counts as a worse step (not rounding)
 
 
@@ -36,7 +39,7 @@ class AliasedTerms(Exception):
 class IrlsResult:
     terms: tuple[int, ...]
     beta: np.ndarray  # final coefficients (after the last step when converged)
-    statistics: Statistics  # at the last evaluated coefficients
+    statistics: Statistics  # at the final coefficients (one step before them if the run was cut short)
     step: np.ndarray  # the last step computed (applied when converged): large when estimates run away
     iterations: int  # passes this fit took part in
     converged: bool
@@ -57,6 +60,7 @@ class _Fit:
     converged: bool = False
     done: bool = False
     final: np.ndarray | None = None
+    refining: bool = False  # converged; the next pass only evaluates the final coefficients
     step: np.ndarray | None = None
     aliases: tuple[Alias, ...] = field(default_factory=tuple)
 
@@ -96,6 +100,11 @@ def run_irls(
 
 
 def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_weight: float, tol: float, allow_aliasing: bool) -> None:
+    if fit.refining:
+        fit.done = True
+        if math.isfinite(statistics.deviance) and np.isfinite(statistics.xtwx).all():
+            fit.statistics = statistics
+        return
     objective = statistics.deviance + 2.0 * total_weight * penalty.value(fit.beta)
     if fit.accepted is None:
         if not (math.isfinite(objective) and np.isfinite(statistics.xtwx).all()):
@@ -122,6 +131,9 @@ def _advance(fit: _Fit, statistics: Statistics, penalty: ScaledPenalty, total_we
     if not np.isfinite(new).all():
         fit.done = True  # the solve broke down: stop at the last good point, reported as not converged
     elif fit.change < tol:
-        fit.converged, fit.done, fit.final = True, True, new
+        fit.converged, fit.final = True, new
+        fit.refining = fit.change > SETTLED
+        fit.done = not fit.refining
+        fit.beta = new
     else:
         fit.beta = new
