@@ -23,7 +23,7 @@ from .penalty import ScaledPenalty
 from .sources import Request, Statistics, StatisticsSource
 
 MAX_HALVINGS = 30
-SETTLED = 1e-18  # a last change this small leaves X'WX (and so the standard errors) exact to ~1e-9
+SETTLED = 1e-15  # a last change this small leaves X'WX, so the standard errors, exact to about 3e-8
 WORSE = 1e-12  # relative increase of the objective that counts as a worse step (not rounding)
 
 
