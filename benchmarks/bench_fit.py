@@ -14,7 +14,8 @@ peak RSS (measured in the child) is its own:
   LogisticRegression(solver="newton-cholesky", C=inf) (scikit-learn >= 1.8 spells penalty=None as C=inf).
 
 Printed side by side: seconds, peak RSS, passes over the data, ratios, and the largest relative
-difference between coefficients. Targets at 10M rows: featpipe time <= half of fetch + fit, peak
+difference between coefficients. On a shared machine use --repeat: the competitors then run
+interleaved and the fastest run of each is compared. Targets at 10M rows: featpipe time <= half of fetch + fit, peak
 memory <= a fifth.
 """
 
@@ -23,6 +24,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import resource
 import subprocess
 import sys
@@ -182,6 +184,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=1_000_000, help="rows of the design table (30%% are held out)")
     parser.add_argument("--keep", type=Path, help="DuckDB file to build (or reuse when it has --rows rows) and keep")
+    parser.add_argument("--repeat", type=int, default=1, help="interleaved runs of each competitor; the fastest is shown")
     parser.add_argument("--child", choices=["featpipe", "sklearn"], help=argparse.SUPPRESS)
     parser.add_argument("--source", default="auto", help=argparse.SUPPRESS)
     parser.add_argument("--db", type=Path, help=argparse.SUPPRESS)
@@ -199,22 +202,29 @@ def main() -> None:
         build_table(path, arguments.rows)
         print(f"design table: {arguments.rows:,} rows x {len(layout().terms)} terms in {path} "
               f"(built or reused in {time.perf_counter() - started:.1f} s)")
-        stream = run_child("featpipe", path, "stream")
-        aggregate = run_child("featpipe", path, "sql")
-        sklearn = run_child("sklearn", path)
+        runs: dict[str, list[dict]] = {"stream": [], "sql": [], "sklearn": []}
+        for _ in range(arguments.repeat):  # interleaved, so a busy spell on the machine hits all three
+            runs["stream"].append(run_child("featpipe", path, "stream"))
+            runs["sql"].append(run_child("featpipe", path, "sql"))
+            runs["sklearn"].append(run_child("sklearn", path))
+    best = {name: min(results, key=lambda result: result["seconds"]) for name, results in runs.items()}
+    stream, aggregate, sklearn = best["stream"], best["sql"], best["sklearn"]
 
-    print(f"training rows: {stream['rows']:,} (scikit-learn: {sklearn['rows']:,})\n")
-    header = f"{'':34}{'seconds':>9}{'peak RSS MB':>13}{'RSS at start':>14}{'passes':>8}{'iterations':>12}"
+    print(f"training rows: {stream['rows']:,} (scikit-learn: {sklearn['rows']:,}); "
+          f"fastest of {arguments.repeat} interleaved run(s) each; load average at the end {os.getloadavg()[0]:.1f}\n")
+    header = f"{'':34}{'seconds':>9}{'peak RSS MB':>13}{'RSS at start':>14}{'passes':>8}{'iterations':>12}   all runs (s)"
     print(header)
     print("-" * len(header))
     rows = [
-        ("featpipe (DuckDB stream, default)", stream),
-        ("featpipe (SQL aggregates)", aggregate),
-        ("pandas fetch + scikit-learn", sklearn),
+        ("featpipe (DuckDB stream, default)", "stream"),
+        ("featpipe (SQL aggregates)", "sql"),
+        ("pandas fetch + scikit-learn", "sklearn"),
     ]
-    for label, result in rows:
+    for label, name in rows:
+        result = best[name]
+        every = ", ".join(f"{run['seconds']:.1f}" for run in runs[name])
         print(f"{label:34}{result['seconds']:9.2f}{result['peak_rss_mb']:13.0f}{result['start_rss_mb']:14.0f}"
-              f"{result['passes']:8d}{result['iterations']:12d}")
+              f"{result['passes']:8d}{result['iterations']:12d}   {every}")
     print(f"  (scikit-learn: fetch {sklearn['fetch_seconds']:.2f} s, fit {sklearn['seconds'] - sklearn['fetch_seconds']:.2f} s)")
     print()
     print(f"time   featpipe / (fetch + scikit-learn): {stream['seconds'] / sklearn['seconds']:.3f}   (target <= 0.5)")

@@ -117,10 +117,14 @@ def fit_glm(
     """Fit on the training rows of a design table in `engine`.
 
     `source`: "sql" (one aggregate query per pass, any engine), "stream" (batches through numpy,
-    memory one batch) or "auto" (stream on DuckDB, sql elsewhere).
+    memory one batch) or "auto" (stream on DuckDB, sql elsewhere). `sample_rows`: the first training
+    rows read up front; they set the working scaling and, when the table has more rows, the warm
+    start. A table sorted by a term gives a poorer warm start (more passes), not a different answer.
     """
     if source not in ("auto", "sql", "stream"):
         raise ValueError(f"unknown statistics source {source!r}")
+    if sample_rows < 100:
+        raise ValueError("sample_rows must be at least 100: the sample also sets the working scaling")
     glm_family = get_family(family)
     streamed = source == "stream" or (source == "auto" and engine.name == "duckdb")
     ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
@@ -137,7 +141,7 @@ def fit_glm(
         known, read = _profile_in_sql(engine, layout, glm_family, scaling)
         passes += read
     # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
-    warm = BatchSource("sample", in_memory_batches(sample, batch_rows), glm_family, scaling) if len(sample.y) >= sample_rows > 0 else None
+    warm = BatchSource("sample", in_memory_batches(sample, batch_rows), glm_family, scaling) if len(sample.y) >= sample_rows else None
     return _fit(statistics, glm_family, data, sample, scaling, penalty, warm, known, max_iter, tol, passes)
 
 

@@ -6,6 +6,9 @@ and PoissonRegressor and statsmodels' `fit_regularized`:
     objective(b) = deviance(b) / (2 N) + l2 / 2 * ||b||^2 + l1 * ||b||_1,   N = sum of prior weights
 
 For binomial and poisson, deviance / (2 N) is the mean negative log-likelihood up to a constant.
+"Standardized" means centered and divided by the training population sd (ddof=0, as scikit-learn's
+StandardScaler); IRLS may work on a sample's scaling, so each term carries a factor converting its
+working coefficient to the training one.
 
 The step minimizes the quadratic model of the deviance at beta,
 deviance(b) ~ deviance(beta) - 2 U'(b - beta) + (b - beta)' H (b - beta) with H = X'WX and U the
