@@ -332,8 +332,8 @@ def test_sqlite_python_math_agrees_with_the_builtins():
         "LN(2.5)", "LN(0)", "LN(-5)", "LN('2.5')", "LN('abc')", "LN(NULL)",
         "SQRT(4)", "SQRT(-5)", "EXP(1)", "EXP(1000)", "EXP(-1000)",
         "POWER(2, 0.5)", "POWER(2, 3)", "POWER(0, -1)", "POWER(-8, 1.0 / 3)", "POWER(10, 400)", "POWER(-10, 401)",
-        "LOG10(100)", "LOG10(0)", "LOG10(-1)",
+        "LOG10(100)", "LOG10(0)", "LOG10(-1)", "FLOOR(2.5)", "FLOOR(-2.5)", "CEIL(2.5)", "CEIL(-2.5)", "FLOOR(NULL)",
     ]  # fmt: skip
     query = exp.select(*(sqlglot.parse_one(case, read="sqlite").as_(f"c{i}") for i, case in enumerate(cases)))
-    assert fallback.python_math == ("ln", "exp", "sqrt", "power", "log10")
+    assert fallback.python_math == ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
     assert fallback.fetch(query) == builtin.fetch(query)

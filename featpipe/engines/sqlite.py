@@ -3,7 +3,7 @@
 It is not a project engine kind; tests use it to show that the same trees give the same answers on an
 engine with very different typing. SQLite has no MD5, so one is registered (lowercase hex, like DuckDB,
 PostgreSQL and Spark) for the holdout split. Builds without the math functions (SQLite before 3.35, or
-compiled without SQLITE_ENABLE_MATH_FUNCTIONS) get Python versions of LN, EXP, SQRT, POWER and LOG10
+compiled without SQLITE_ENABLE_MATH_FUNCTIONS) get Python versions of LN, EXP, SQRT, POWER, LOG10, FLOOR and CEIL
 that follow SQLite's own rules: NULL outside the domain or for a NaN result, +-inf on overflow.
 """
 
@@ -26,7 +26,7 @@ from ..errors import EngineError
 from . import statements
 from .arrowfile import open_arrow_file, sql_type
 
-MATH_FUNCTIONS = ("ln", "exp", "sqrt", "power", "log10")
+MATH_FUNCTIONS = ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
 
 
 class BacktickSQLite(SQLite):
@@ -238,4 +238,14 @@ def _power(x, y):
         return None
 
 
-FALLBACKS = {"ln": _ln, "exp": _exp, "sqrt": _sqrt, "power": _power, "log10": _log10}
+def _floor(x):
+    x = _real(x)
+    return None if x is None else float(math.floor(x))
+
+
+def _ceil(x):
+    x = _real(x)
+    return None if x is None else float(math.ceil(x))
+
+
+FALLBACKS = {"ln": _ln, "exp": _exp, "sqrt": _sqrt, "power": _power, "log10": _log10, "floor": _floor, "ceil": _ceil}
