@@ -19,10 +19,13 @@ from .errors import Diagnostic, FeatpipeError
 from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
 from .fitting import fit_model
 from .materialize import BuiltTable, Progress, build_designs, connect, design_signature, say
-from .project import Project, load_project  # re-exported: the API starts with loading a project
+from .project import Project, load_project
 from .report import report_path, write_reports
-from .sqlgen.common import DIALECTS, check_dialect, render  # noqa: F401  (DIALECTS: part of the API)
+from .sqlgen.common import DIALECTS, check_dialect, render
 from .sqlgen.design import design_query, terms_query
+
+__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "materialize", "fit", "refresh", "render_sql"]
+
 
 def check(project: Project) -> CompiledProject:
     """All static validation; raises FeatpipeError listing every problem."""

@@ -12,6 +12,9 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from sqlglot import exp
+from sqlglot.errors import ParseError
+
 from .errors import Diagnostic, FeatpipeError, raise_if_errors
 from .yamlfile import YamlDocument, read_yaml
 
@@ -245,9 +248,6 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
 
 
 def _valid_type(kind: str) -> bool:
-    from sqlglot import exp
-    from sqlglot.errors import ParseError
-
     try:
         return exp.DataType.build(kind, dialect="duckdb").this != exp.DataType.Type.USERDEFINED
     except (ParseError, ValueError):
