@@ -39,8 +39,14 @@ def read_builds(engine: Engine) -> dict[str, str]:
     return {name: signature for name, signature in engine.fetch(query)}
 
 
-def record_builds(engine: Engine, builds: dict[str, str]) -> None:
-    """Replace the record with `builds` (small: one row per input and design table)."""
+def record_builds(engine: Engine, builds: dict[str, str], recorded: dict[str, str] | None = None) -> None:
+    """Replace the record with `builds` (small: one row per input and design table).
+
+    Nothing is written when `builds` equals `recorded`, the record as `read_builds` found it: a command
+    that changed nothing leaves the engine alone (on Spark a table rewrite costs seconds).
+    """
+    if builds == recorded:
+        return
     rows = [
         exp.select(alias(exp.Literal.string(name), "table_name"), alias(exp.Literal.string(signature), "signature"))
         for name, signature in sorted(builds.items())

@@ -61,7 +61,8 @@ def build_designs(
     progress: Progress | None = None,
 ) -> list[BuiltTable]:
     """Build (or, with only_stale, rebuild when changed) each model's design table; a failure keeps the old one."""
-    builds = read_builds(engine)
+    recorded = read_builds(engine)
+    builds = dict(recorded)
     prepare_inputs(engine, project, {model.spec.input for model in models}, builds, progress)
     built = []
     for model in models:
@@ -73,7 +74,7 @@ def build_designs(
         builds[model.layout.table] = signature
         rows = engine.fetch(_count(model.layout.table))[0][0]
         built.append(BuiltTable(model.name, model.layout.table, rows))
-    record_builds(engine, builds)
+    record_builds(engine, builds, recorded)
     return built
 
 

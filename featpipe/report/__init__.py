@@ -79,9 +79,10 @@ def write_reports(project: Project, models: Sequence[str], *, engine: Engine | N
 
 def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedModel | None,
            pair: tuple[str, str] | None) -> str:
-    builds = read_builds(engine)
+    recorded = read_builds(engine)
+    builds = dict(recorded)
     prepare_inputs(engine, project, {fitted.input}, builds)  # loads a changed `load:` file, checks the contract
-    record_builds(engine, builds)
+    record_builds(engine, builds, recorded)
     data = gather(engine, project.inputs[fitted.input], fitted, other, pair)
     warnings = _warnings(project, fitted, data.figures.train_rows)
     other_warnings = _warnings(project, other, data.shared_rows[1]) if other is not None else ()
