@@ -340,3 +340,18 @@ def test_a_command_that_changes_nothing_writes_no_table(tmp_path):
         assert [name for name in engine.written if not name.startswith("featpipe_report_")] == []  # the report's grids
     finally:
         engine.close()
+
+
+@pytest.mark.spark
+def test_spark_percentiles_are_exact_and_interpolated(spark_engine, tmp_path):
+    """The report's ranges use PERCENTILE_CONT; on Spark it must not turn into PERCENTILE_APPROX.
+    Expected: numpy's default (linear) quantile of 1, 2, 4, 10 at 0.25 is 1.75; the median is 3.0."""
+    import numpy as np
+
+    from featpipe.report.queries import _percentile
+
+    path = tmp_path / "sample.csv"
+    path.write_text("x\n1.0\n2.0\n4.0\n10.0\n\n", encoding="utf-8")
+    spark_engine.load_file("sample", path)
+    query = exp.select(_percentile(column("x"), 0.25), _percentile(column("x"), 0.5)).from_("sample")
+    assert spark_engine.fetch(query) == [(np.quantile([1, 2, 4, 10], 0.25), np.quantile([1, 2, 4, 10], 0.5))]
