@@ -202,6 +202,10 @@ def _start_session(config: EngineConfig):
             .config("spark.ui.showConsoleProgress", "false")
             .config("spark.sql.shuffle.partitions", "2")
             .config("spark.driver.bindAddress", "127.0.0.1")
+            # Advertise the address it binds: a task result above spark.task.maxDirectResultSize (1 MB, e.g.
+            # the fit's 100,000-row warm-start sample) is fetched from the block manager at the advertised
+            # host, which defaults to the machine's name and fails with TaskResultLost when that is not loopback.
+            .config("spark.driver.host", "127.0.0.1")
             .config("spark.sql.execution.arrow.pyspark.enabled", "true")
         )
         if config.path is not None:
