@@ -355,3 +355,16 @@ def test_spark_percentiles_are_exact_and_interpolated(spark_engine, tmp_path):
     spark_engine.load_file("sample", path)
     query = exp.select(_percentile(column("x"), 0.25), _percentile(column("x"), 0.5)).from_("sample")
     assert spark_engine.fetch(query) == [(np.quantile([1, 2, 4, 10], 0.25), np.quantile([1, 2, 4, 10], 0.5))]
+
+
+@pytest.mark.spark
+def test_spark_returns_results_larger_than_one_direct_task_result(spark_engine):
+    """A task result above spark.task.maxDirectResultSize (1 MB by default) travels through the block
+    manager, at the address the driver advertises; the fit's warm-start sample (up to 100,000 rows)
+    is such a result on any table of a million rows. 300,000 rows of two BIGINTs are about 4.8 MB."""
+    rows = 300_000
+    numbers = exp.select(alias(column("id"), "i"), alias(exp.Mul(this=column("id"), expression=exp.Literal.number(2)), "twice"))
+    query = numbers.from_(exp.Anonymous(this="range", expressions=[exp.Literal.number(rows)]))
+    frame = spark_engine.fetch_frame(query)
+    assert len(frame) == rows
+    assert int(frame["twice"].sum()) == rows * (rows - 1)  # twice the sum 0 + 1 + ... + (rows - 1)
