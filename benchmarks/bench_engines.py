@@ -19,8 +19,11 @@ parent's peak into a child's ru_maxrss, so this driver imports nothing but the s
 PostgreSQL server (tests/fixtures_engines.PostgresServer, as the tests start it) runs from a helper
 subprocess. The engines' own memory (the PostgreSQL server, Spark's JVM) is not the featpipe process
 and is not counted: the point is that featpipe's memory stays flat as rows grow, because the data
-stay in the engine. Printed: one line per engine x size, the peak RSS ratio between the largest and
-smallest sizes per engine, and how far each engine's coefficients are from DuckDB's on the same rows.
+stay in the engine. DuckDB is the exception: it runs inside the featpipe process, so its working
+memory (up to its memory_limit, 80% of RAM by default) is in the figure; the peaks after materialize
+and after fit show which step grows. Printed: one line per engine x size, the peak RSS ratio between
+the largest and smallest sizes per engine, and how far each engine's coefficients are from DuckDB's
+on the same rows.
 """
 
 from __future__ import annotations
@@ -178,7 +181,7 @@ def child_measure(root: Path) -> dict:
     from featpipe.engines import open_engine
 
     project = api.load_project(root)
-    seconds = {}
+    seconds, peaks = {}, {}
     started = time.perf_counter()
     engine = open_engine(project.engine)  # Spark: starts the session the steps below reuse
     seconds["start"] = time.perf_counter() - started
@@ -186,9 +189,11 @@ def child_measure(root: Path) -> dict:
         started = time.perf_counter()
         (built,) = api.materialize(project, [MODEL])
         seconds["materialize"] = time.perf_counter() - started
+        peaks["materialize"] = peak_rss_mb()
         started = time.perf_counter()
         (outcome,) = api.fit(project, [MODEL])
         seconds["fit"] = time.perf_counter() - started
+        peaks["fit"] = peak_rss_mb()
         started = time.perf_counter()
         scored = scoring.score(project, MODEL, table="leases", into="scores")
         seconds["score"] = time.perf_counter() - started
@@ -196,7 +201,7 @@ def child_measure(root: Path) -> dict:
         engine.close()
     fitted = outcome.fitted
     return {
-        "seconds": seconds, "peak_rss_mb": peak_rss_mb(), "rows": built.rows, "train": fitted.rows["train"],
+        "seconds": seconds, "peak_rss_mb": peak_rss_mb(), "peaks_mb": peaks, "rows": built.rows, "train": fitted.rows["train"],
         "scored": scored.rows, "iterations": fitted.fit["iterations"], "converged": fitted.fit["converged"],
         "coef": [term.estimate for term in fitted.terms],
     }
@@ -280,7 +285,7 @@ def main() -> None:
     try:
         with tempfile.TemporaryDirectory(prefix="featpipe-bench-") as work:
             print(f"{'engine':<9} {'rows':>11} {'generate s':>11} {'start s':>8} {'materialize s':>14} {'fit s':>8} "
-                  f"{'score s':>8} {'IRLS':>5} {'peak RSS MB':>12}")
+                  f"{'score s':>8} {'IRLS':>5} {'peak RSS MB':>12}  {'(after materialize, fit)':>24}")
             for rows in arguments.rows:
                 for kind in arguments.engines:
                     folder = Path(work) / f"{kind}_{rows}"
@@ -297,7 +302,8 @@ def main() -> None:
                     results[kind, rows] = result
                     s = result["seconds"]
                     print(f"{kind:<9} {rows:>11,} {made['seconds']:>11.1f} {s['start']:>8.1f} {s['materialize']:>14.1f} "
-                          f"{s['fit']:>8.1f} {s['score']:>8.1f} {result['iterations']:>5} {result['peak_rss_mb']:>12.0f}",
+                          f"{s['fit']:>8.1f} {s['score']:>8.1f} {result['iterations']:>5} {result['peak_rss_mb']:>12.0f}  "
+                          f"{result['peaks_mb']['materialize']:>15.0f}, {result['peaks_mb']['fit']:>6.0f}",
                           flush=True)
                     shutil.rmtree(folder, ignore_errors=True)
     finally:
