@@ -44,16 +44,15 @@ DUCKDB_ENGINE = {
 class Demo:
     input: str
     key: str
-    models: tuple[str, ...]  # all fitted on every engine
-    scored: str  # the model scored, drift-checked and reported on every engine (once per demo keeps Spark quick)
+    model: str  # fitted, scored, drift-checked and reported on every engine (one per demo keeps Spark quick)
     batch: str  # a condition picking a drifted batch out of the demo rows (SQL over the input)
     retyped: str  # a column the model reads, turned to text to break the contract
 
 
 DEMOS = {
-    "lease_default": Demo("leases", "lease_id", ("default_raw", "default_risk"), "default_risk",
+    "lease_default": Demo("leases", "lease_id", "default_risk",
                           "sector = 'construction' OR firm_age_years < 3", "monthly_revenue"),
-    "fleet_claims": Demo("vehicle_years", "vehicle_year_id", ("claim_frequency",), "claim_frequency",
+    "fleet_claims": Demo("vehicle_years", "vehicle_year_id", "claim_frequency",
                          "vehicle_class = 'heavy_truck' OR annual_km > 60000", "night_km"),
 }
 
@@ -66,13 +65,14 @@ class Run:
     projects: dict[str, api.Project] = field(default_factory=dict)  # by demo
     checked: dict[str, api.CheckReport] = field(default_factory=dict)  # by demo
     built: dict[str, dict[str, int]] = field(default_factory=dict)  # by demo: design table -> rows
-    fitted: dict[str, dict] = field(default_factory=dict)  # by model: the fitted file as YAML data
-    held_out: dict[str, set[int]] = field(default_factory=dict)  # by model: keys flagged _holdout
-    scores: dict[str, pd.DataFrame] = field(default_factory=dict)  # by scored model, sorted by key
-    drift: dict[str, DriftReport] = field(default_factory=dict)  # by scored model
-    reports: dict[str, str] = field(default_factory=dict)  # by scored model: the page, engine name and hash blanked
-    refusals: dict[str, str] = field(default_factory=dict)  # by scored model: scoring a table that breaks the contract
-    left_behind: dict[str, bool] = field(default_factory=dict)  # by scored model: did the refused score leave a table
+    # The rest by model:
+    fitted: dict[str, dict] = field(default_factory=dict)  # the fitted file as YAML data
+    held_out: dict[str, set[int]] = field(default_factory=dict)  # keys flagged _holdout in the design table
+    scores: dict[str, pd.DataFrame] = field(default_factory=dict)  # the scores table, sorted by key
+    drift: dict[str, DriftReport] = field(default_factory=dict)  # of the drifted batch
+    reports: dict[str, str] = field(default_factory=dict)  # the page, engine name and fitted-file hash blanked
+    refusals: dict[str, str] = field(default_factory=dict)  # scoring a table that breaks the contract
+    left_behind: dict[str, bool] = field(default_factory=dict)  # did the refused score leave a table
 
 
 def run_pipeline(engine_kind: str, engine_block: str | None, folder: Path) -> Run:
@@ -84,27 +84,24 @@ def run_pipeline(engine_kind: str, engine_block: str | None, folder: Path) -> Ru
             settings = root / "featpipe.yaml"
             text = settings.read_text(encoding="utf-8")
             settings.write_text(text.replace(DUCKDB_ENGINE[name], engine_block), encoding="utf-8")
-        for model in demo.models:  # every engine fits from scratch
-            root.joinpath("fitted", f"{model}.yaml").unlink()
+        model = demo.model
+        root.joinpath("fitted", f"{model}.yaml").unlink()  # every engine fits from scratch
         project = api.load_project(root)
         assert project.engine.kind == engine_kind
         run.projects[name] = project
 
         run.checked[name] = api.check_report(project)
-        run.built[name] = {table.table: table.rows for table in api.materialize(project)}
-        api.fit(project)
+        run.built[name] = {table.table: table.rows for table in api.materialize(project, [model])}
+        api.fit(project, [model])
         with api.connect(project) as engine:
             engine.create_table(f"{demo.input}_batch", exp.select("*").from_(demo.input).where(demo.batch))
             kept = [column(c) for c in project.inputs[demo.input].columns if c != demo.retyped]
             retyped = alias(exp.cast(column(demo.retyped), "VARCHAR"), demo.retyped)
             engine.create_table(f"{demo.input}_retyped", exp.select(*kept, retyped).from_(demo.input))
-        with api.connect(project) as engine:
-            for model in demo.models:
-                run.fitted[model] = yaml.safe_load(project.fitted_path(model).read_text(encoding="utf-8"))
-                held = exp.select(column(demo.key)).from_(f"design_{model}").where(column("_holdout"))
-                run.held_out[model] = {int(key) for (key,) in engine.fetch(held)}
+            held = exp.select(column(demo.key)).from_(f"design_{model}").where(column("_holdout"))
+            run.held_out[model] = {int(key) for (key,) in engine.fetch(held)}
+        run.fitted[model] = yaml.safe_load(project.fitted_path(model).read_text(encoding="utf-8"))
 
-        model = demo.scored
         score(project, model, table=demo.input, into=f"scores_{model}", reasons=2)
         run.drift[model] = drift(project, model, f"{demo.input}_batch")
         with pytest.raises(FeatpipeError) as refused:
@@ -205,16 +202,16 @@ def test_every_step_runs_on_the_engine(engine_run):
     assert {name: len(report.models) for name, report in run.checked.items()} == {"lease_default": 2, "fleet_claims": 1}
     rows = {name: len(csv_keys(name, demo)) for name, demo in DEMOS.items()}  # 5000 and 4000 lines of data
     assert run.built == {
-        "lease_default": {"design_default_raw": rows["lease_default"], "design_default_risk": rows["lease_default"]},
+        "lease_default": {"design_default_risk": rows["lease_default"]},
         "fleet_claims": {"design_claim_frequency": rows["fleet_claims"]},
     }
     for name, demo in DEMOS.items():
-        scores = run.scores[demo.scored]
+        scores = run.scores[demo.model]
         assert scores[demo.key].tolist() == sorted(csv_keys(name, demo))
-        complete = run.fitted[demo.scored]["rows"]["complete"]
+        complete = run.fitted[demo.model]["rows"]["complete"]
         assert (scores[STATUS] == "ok").sum() == complete
         assert scores[PREDICTION].notna().sum() == complete
-        assert run.drift[demo.scored].rows > 0 and math.isfinite(run.drift[demo.scored].score.psi)
+        assert run.drift[demo.model].rows > 0 and math.isfinite(run.drift[demo.model].score.psi)
     for model, page in run.reports.items():
         assert page.startswith("<!DOCTYPE html>") and "in the ENGINE engine" in page, model
 
@@ -222,11 +219,11 @@ def test_every_step_runs_on_the_engine(engine_run):
 def test_the_contract_is_checked_against_the_engines_own_table(engine_run):
     """A table whose column the model reads holds text instead of a number: refused before any table is written."""
     for demo in DEMOS.values():
-        message = engine_run.refusals[demo.scored]
+        message = engine_run.refusals[demo.model]
         assert message.startswith(f"featpipe.yaml: table '{demo.input}_retyped' does not match the contract")
         assert f"column '{demo.retyped}' is declared DOUBLE (floating point)" in message
         assert "(text)" in message
-        assert engine_run.left_behind[demo.scored] is False
+        assert engine_run.left_behind[demo.model] is False
 
 
 def test_the_holdout_split_is_the_md5_split_of_the_keys(engine_run):
@@ -237,8 +234,7 @@ def test_the_holdout_split_is_the_md5_split_of_the_keys(engine_run):
             key for key in csv_keys(name, demo)
             if int(hashlib.md5(f"v1:{key}".encode()).hexdigest()[:8], 16) < threshold
         }
-        for model in demo.models:
-            assert engine_run.held_out[model] == expected, model
+        assert engine_run.held_out[demo.model] == expected, demo.model
 
 
 # ---------------------------------------------------------------- the engines against each other
