@@ -1,4 +1,4 @@
-"""Materialize, fit and score the lease demo model on DuckDB, PostgreSQL and Spark, at growing row counts.
+"""Compute, fit and score the lease demo model on DuckDB, PostgreSQL and Spark, at growing row counts.
 
     .venv/bin/python benchmarks/bench_engines.py                                 # 1M rows, all three engines
     .venv/bin/python benchmarks/bench_engines.py --rows 1000000 10000000         # and 10M: memory ratio at 10x
@@ -13,14 +13,14 @@ share, firm age, late payments and sector); the pseudo-random numbers are BIGINT
 the prime 2**31 - 1, which every engine computes alike.
 
 Each engine x size runs in its own subprocesses: one generates the table, then one runs featpipe as
-a user would (`materialize`, `fit`, `score` through the API the CLI calls) and reports seconds per
+a user would (`compute`, `fit`, `score` through the API the CLI calls) and reports seconds per
 step and its peak RSS, resource.getrusage(RUSAGE_SELF).ru_maxrss in that child. Linux carries a
 parent's peak into a child's ru_maxrss, so this driver imports nothing but the standard library; the
 PostgreSQL server (tests/fixtures_engines.PostgresServer, as the tests start it) runs from a helper
 subprocess. The engines' own memory (the PostgreSQL server, Spark's JVM) is not the featpipe process
 and is not counted: the point is that featpipe's memory stays flat as rows grow, because the data
 stay in the engine. DuckDB is the exception: it runs inside the featpipe process, so its working
-memory (up to its memory_limit, 80% of RAM by default) is in the figure; the peaks after materialize
+memory (up to its memory_limit, 80% of RAM by default) is in the figure; the peaks after compute
 and after fit show which step grows. Printed: one line per engine x size, the peak RSS ratio between
 the largest and smallest sizes per engine, and how far each engine's coefficients are from DuckDB's
 on the same rows.
@@ -177,8 +177,9 @@ def child_generate(root: Path, rows: int, schema: str | None) -> dict:
 
 
 def child_measure(root: Path) -> dict:
-    from featpipe import api, scoring
+    from featpipe import api
     from featpipe.engines import open_engine
+    from featpipe.fitted import scoring
 
     project = api.load_project(root)
     seconds, peaks = {}, {}
@@ -187,9 +188,9 @@ def child_measure(root: Path) -> dict:
     seconds["start"] = time.perf_counter() - started
     try:
         started = time.perf_counter()
-        (built,) = api.materialize(project, [MODEL])
-        seconds["materialize"] = time.perf_counter() - started
-        peaks["materialize"] = peak_rss_mb()
+        (built,) = api.compute(project, [MODEL])
+        seconds["compute"] = time.perf_counter() - started
+        peaks["compute"] = peak_rss_mb()
         started = time.perf_counter()
         (outcome,) = api.fit(project, [MODEL])
         seconds["fit"] = time.perf_counter() - started
@@ -284,8 +285,8 @@ def main() -> None:
     results: dict[tuple[str, int], dict] = {}
     try:
         with tempfile.TemporaryDirectory(prefix="featpipe-bench-") as work:
-            print(f"{'engine':<9} {'rows':>11} {'generate s':>11} {'start s':>8} {'materialize s':>14} {'fit s':>8} "
-                  f"{'score s':>8} {'IRLS':>5} {'peak RSS MB':>12}  {'(after materialize, fit)':>24}")
+            print(f"{'engine':<9} {'rows':>11} {'generate s':>11} {'start s':>8} {'compute s':>14} {'fit s':>8} "
+                  f"{'score s':>8} {'IRLS':>5} {'peak RSS MB':>12}  {'(after compute, fit)':>24}")
             for rows in arguments.rows:
                 for kind in arguments.engines:
                     folder = Path(work) / f"{kind}_{rows}"
@@ -301,9 +302,9 @@ def main() -> None:
                     result["generate"] = made["seconds"]
                     results[kind, rows] = result
                     s = result["seconds"]
-                    print(f"{kind:<9} {rows:>11,} {made['seconds']:>11.1f} {s['start']:>8.1f} {s['materialize']:>14.1f} "
+                    print(f"{kind:<9} {rows:>11,} {made['seconds']:>11.1f} {s['start']:>8.1f} {s['compute']:>14.1f} "
                           f"{s['fit']:>8.1f} {s['score']:>8.1f} {result['iterations']:>5} {result['peak_rss_mb']:>12.0f}  "
-                          f"{result['peaks_mb']['materialize']:>15.0f}, {result['peaks_mb']['fit']:>6.0f}",
+                          f"{result['peaks_mb']['compute']:>15.0f}, {result['peaks_mb']['fit']:>6.0f}",
                           flush=True)
                     shutil.rmtree(folder, ignore_errors=True)
     finally:

@@ -37,9 +37,9 @@ from sqlglot import exp
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
+from featpipe.compiler.layout import DesignLayout  # noqa: E402
 from featpipe.engines.duckdb import DuckDBEngine  # noqa: E402
 from featpipe.sqlgen.common import alias, column, number  # noqa: E402
-from featpipe.sqlgen.layout import DesignLayout  # noqa: E402
 from featpipe.sqlgen.statistics import design_columns_query  # noqa: E402
 
 TABLE = "design_bench"

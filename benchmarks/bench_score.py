@@ -139,7 +139,7 @@ def fitted_model(work: Path):
 
     root = work / "project"
     (root / "terms").mkdir(parents=True, exist_ok=True)
-    (root / "models").mkdir(exist_ok=True)
+    (root / "specs").mkdir(exist_ok=True)
     (root / "featpipe.yaml").write_text(PROJECT_YAML)
     (root / "terms" / "leases.sql").write_text(TERMS_SQL)
     (root / "models" / "bench.yaml").write_text(textwrap.dedent(f"""\

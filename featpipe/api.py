@@ -3,7 +3,7 @@
     >>> import featpipe
     >>> project = featpipe.load_project("projects/lease_default")   # doctest: +SKIP
     >>> featpipe.check(project).models                               # doctest: +SKIP
-    >>> featpipe.materialize(project)                                # doctest: +SKIP
+    >>> featpipe.compute(project)                                          # doctest: +SKIP
     >>> print(featpipe.render_sql(project, "default_risk", part="design", dialect="postgres"))  # doctest: +SKIP
 """
 
@@ -12,19 +12,26 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from .builds import read_builds
 from .compiler import CompiledModel, CompiledProject, Term, compile_project
 from .engines.base import Engine
+from .engines.builds import read_builds
+from .engines.compute import (
+    BuiltTable,
+    Progress,
+    build_designs,
+    connect,
+    design_signature,
+    say,
+)
 from .errors import Diagnostic, FeatpipeError
+from .fit.model import fit_model
 from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
-from .fitting import fit_model
-from .materialize import BuiltTable, Progress, build_designs, connect, design_signature, say
+from .fitted.report import report_path, write_reports
 from .project import Project, load_project
-from .report import report_path, write_reports
 from .sqlgen.common import DIALECTS, check_dialect, render
 from .sqlgen.design import design_query, terms_query
 
-__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "materialize", "fit", "refresh", "render_sql"]
+__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "compute", "fit", "refresh", "render_sql"]
 
 
 def check(project: Project) -> CompiledProject:
@@ -72,11 +79,11 @@ def select_models(compiled: CompiledProject, names: list[str] | None) -> list[Co
     unknown = [name for name in names if name not in compiled.models]
     if unknown:
         known = ", ".join(sorted(compiled.models)) or "none"
-        raise FeatpipeError(f"unknown model {', '.join(unknown)}; models in models/: {known}")
+        raise FeatpipeError(f"unknown model {', '.join(unknown)}; specs in specs/: {known}")
     return [compiled.models[name] for name in names]
 
 
-def materialize(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[BuiltTable]:
+def compute(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[BuiltTable]:
     """Build each model's design table in the engine; a failure keeps the previous table."""
     chosen = select_models(check(project), models)
     with connect(project) as engine:

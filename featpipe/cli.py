@@ -19,13 +19,13 @@ from rich.console import Console
 from rich.syntax import Syntax
 from rich.table import Table
 
-from . import api, scoring
+from . import api
 from .errors import Diagnostic, FeatpipeError
-from .fitted import FittedModel, read_fitted
+from .fitted import FittedModel, read_fitted, scoring
 from .project import load_project
 
 app = typer.Typer(
-    help="Engineered model terms as reviewed SQL: check, materialize, fit, explain and score in the warehouse.",
+    help="Engineered model terms as reviewed SQL: check, compute, fit, explain and score in the warehouse.",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
@@ -56,13 +56,13 @@ def _progress(message: str) -> None:
 @app.command()
 def new(path: Annotated[Path, typer.Argument(help="Folder to create; must not exist or be empty.")]) -> None:
     """Scaffold a project with one input, one term file and one model."""
-    from .scaffold import scaffold
+    from .project.scaffold import scaffold
 
     written = scaffold(path)
     out.print(f"created project in {path}:")
     for file in written:
         out.print(f"  {file}")
-    out.print(f"next: featpipe check -p {path} && featpipe materialize -p {path}")
+    out.print(f"next: featpipe check -p {path} && featpipe compute -p {path}")
 
 
 @app.command()
@@ -118,13 +118,13 @@ def _relative_to_cwd(path: Path) -> str:
 
 
 @app.command()
-def materialize(
+def compute(
     project: ProjectOption = None,
     model: Annotated[Optional[list[str]], typer.Option("--model", "-m", help="Only this model (repeatable).")] = None,
     json_output: JsonOption = False,
 ) -> None:
     """Build each model's design table in the engine (loading local data files first)."""
-    built = api.materialize(load_project(project), model, progress=None if json_output else _progress)
+    built = api.compute(load_project(project), model, progress=None if json_output else _progress)
     if json_output:
         _print_json([vars(table) for table in built])
         return
@@ -141,7 +141,7 @@ class Part(str, Enum):
 
 @app.command()
 def sql(
-    model: Annotated[str, typer.Argument(help="Model name (models/NAME.yaml; for --part score or drift, fitted/NAME.yaml).")],
+    model: Annotated[str, typer.Argument(help="Model name (specs/NAME.yaml; for --part score or drift, fitted/NAME.yaml).")],
     project: ProjectOption = None,
     dialect: Annotated[str, typer.Option("--dialect", "-d", help=f"One of {', '.join(api.DIALECTS)}.")] = "duckdb",
     part: Annotated[Part, typer.Option("--part", help="Which query to print.")] = Part.design,
@@ -157,7 +157,7 @@ def sql(
     if part == Part.score:
         text = scoring.render_score_sql(loaded, model, dialect=dialect, table=table, reasons=reasons, as_view=as_view, into=into)
     elif part == Part.drift:
-        from .drift import render_drift_sql
+        from .fitted.drift import render_drift_sql
 
         text = render_drift_sql(loaded, model, table, dialect)
     else:
@@ -246,7 +246,7 @@ def explain(
     json_output: JsonOption = False,
 ) -> None:
     """Show a term's definition with its coefficients and notes in every model, or a whole model."""
-    from .explain import explain as describe
+    from .fitted.explain import explain as describe
 
     loaded = load_project(project)
     found = describe(api.check(loaded), name)
@@ -296,7 +296,7 @@ def report(
     json_output: JsonOption = False,
 ) -> None:
     """Write a self-contained HTML report of a fitted model with plots, optionally compared with another model."""
-    from .report import write_report
+    from .fitted.report import write_report
 
     chosen = tuple(part.strip() for part in pair.split(",")) if pair is not None else None
     path = write_report(load_project(project), model, against=against, pair=chosen, out=output)
@@ -317,7 +317,7 @@ def drift(
     allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Compare even if the model's terms changed since its fit.")] = False,
 ) -> None:
     """Stability of each term and of the score in a batch against the training rows (population stability index)."""
-    from .drift import drift as compare
+    from .fitted.drift import drift as compare
 
     report = compare(load_project(project), model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
     if json_output:
@@ -371,8 +371,8 @@ def diff(
         "--fail-on-stale", help="Exit 1 when a change leaves a fitted model stale (for CI gates).")] = False,
 ) -> None:
     """What changed in meaning since a git revision, and which fits went stale."""
-    from .diff import diff_project
-    from .diffformat import render_markdown, render_text
+    from .review.diff import diff_project
+    from .review.formats import render_markdown, render_text
 
     change = diff_project(project, since)
     if json_output:

@@ -65,7 +65,7 @@ def write_project(root: Path, files: dict[str, str | None] | None = None) -> Pat
         "featpipe.yaml": PROJECT_YAML,
         "data/orders.csv": ORDERS_CSV,
         "terms/basket.sql": TERMS_SQL,
-        "models/returns.yaml": MODEL_YAML,
+        "specs/returns.yaml": MODEL_YAML,
     }
     layout.update(files or {})
     for relative, text in layout.items():

@@ -2,8 +2,8 @@
 
 Term files are parsed whole in the duckdb dialect, as the compiler does, so the positions are those
 of the file: `line:col` is the first character of the offending token (sqlglot itself records the
-column where a token ends). Which constructs each engine accepts or answers differently comes from
-/work/shared/SQL-NOTES.md.
+column where a token ends). Which constructs each engine accepts or answers differently is measured on the engines by
+tests/test_harden.py.
 """
 
 from __future__ import annotations

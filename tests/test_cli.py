@@ -8,8 +8,9 @@ import subprocess
 import sys
 from pathlib import Path
 
-import featpipe
 from conftest import write_project
+
+import featpipe
 
 FEATPIPE = [sys.executable, "-m", "featpipe"]
 
@@ -34,9 +35,9 @@ def test_check_refuses_an_environment_reading_function(tmp_path):
     assert result.returncode == 1 and result.stderr.startswith("terms/sneaky.sql:2:10: ")
 
 
-def test_materialize_refuses_a_smuggled_statement_and_touches_nothing(tmp_path):
+def test_compute_refuses_a_smuggled_statement_and_touches_nothing(tmp_path):
     root = write_project(tmp_path, {"terms/sneaky.sql": "SELECT amount AS a2 FROM orders; DROP TABLE orders"})
-    result = run("materialize", "-p", str(root))
+    result = run("compute", "-p", str(root))
     assert result.returncode == 1
     assert "terms/sneaky.sql:1:34: a term file holds exactly one SELECT; remove the second statement" in result.stderr
     assert not (root / "build").exists()
@@ -52,25 +53,25 @@ def test_check_json_and_github_formats(tmp_path):
     assert result.stdout.startswith("::error file=terms/bad.sql,line=2,col=3::unknown name 'amonut'")
 
 
-def test_a_new_project_checks_and_materializes(tmp_path):
+def test_a_new_project_checks_and_computes(tmp_path):
     target = tmp_path / "churn_demo"
     assert run("new", str(target)).returncode == 0
     assert run("check", "-p", str(target)).returncode == 0
-    result = run("materialize", "-p", str(target), "--json")
+    result = run("compute", "-p", str(target), "--json")
     assert result.returncode == 0, result.stderr
     assert json.loads(result.stdout) == [{"model": "churn", "table": "design_churn", "rows": 400}]
     assert run("new", str(target)).returncode == 1  # refuses a folder that already holds files
 
 
 def test_a_second_process_holding_the_database_gets_a_clear_message(project_dir):
-    featpipe.materialize(featpipe.load_project(project_dir))
+    featpipe.compute(featpipe.load_project(project_dir))
     holder = subprocess.Popen(
         [sys.executable, "-c", "import duckdb, sys, time; c = duckdb.connect(sys.argv[1]); print('held', flush=True); time.sleep(60)",
          str(project_dir / "build" / "shop.duckdb")],
         stdout=subprocess.PIPE, text=True)
     try:
         assert holder.stdout.readline().strip() == "held"
-        result = run("materialize", "-p", str(project_dir))
+        result = run("compute", "-p", str(project_dir))
     finally:
         holder.kill()
     assert result.returncode == 1
@@ -80,7 +81,7 @@ def test_a_second_process_holding_the_database_gets_a_clear_message(project_dir)
 def test_an_unknown_model_is_a_user_error(project_dir):
     result = run("sql", "nosuch", "-p", str(project_dir))
     assert result.returncode == 1
-    assert result.stderr.strip() == "error: unknown model nosuch; models in models/: returns"
+    assert result.stderr.strip() == "error: unknown model nosuch; specs in specs/: returns"
 
 
 def test_the_whole_job_from_the_command_line(tmp_path):

@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import pytest
-
 from conftest import write_project
+
 from featpipe.compiler import compile_project
 from featpipe.errors import FeatpipeError
 from featpipe.project import load_project
@@ -98,21 +98,21 @@ def test_a_text_valued_term(tmp_path):
 def test_leakage_through_another_term(tmp_path):
     root = write_project(tmp_path, {
         "terms/leak.sql": "SELECT\n  returned * 2 AS flag,\n  flag + items AS mixed\nFROM orders\n",
-        "models/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\nterms: [item_price, mixed]\n",
+        "specs/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\nterms: [item_price, mixed]\n",
     })
     with pytest.raises(FeatpipeError) as caught:
         compile_dir(root)
     assert [str(d) for d in caught.value.diagnostics] == [
-        "models/returns.yaml:4:21: leakage: term 'mixed' reads the target 'returned' (mixed -> flag -> returned); "
+        "specs/returns.yaml:4:21: leakage: term 'mixed' reads the target 'returned' (mixed -> flag -> returned); "
         "a term must be known before the outcome"]
 
 
 def test_unknown_model_term(tmp_path):
-    root = write_project(tmp_path, {"models/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\nterms: [item_prise]\n"})
+    root = write_project(tmp_path, {"specs/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\nterms: [item_prise]\n"})
     with pytest.raises(FeatpipeError) as caught:
         compile_dir(root)
     assert [str(d) for d in caught.value.diagnostics] == [
-        "models/returns.yaml:4:9: unknown term 'item_prise'; did you mean 'item_price'?"]
+        "specs/returns.yaml:4:9: unknown term 'item_prise'; did you mean 'item_price'?"]
 
 
 def test_every_error_of_a_run_is_reported_at_once(tmp_path):

@@ -9,13 +9,13 @@ import numpy as np
 import pandas as pd
 import pytest
 import sqlglot
+from conftest import DEMOS, copy_demo, write_project
+from sqlite_engine import SQLiteEngine
 
 import featpipe
-from conftest import DEMOS, copy_demo, write_project
 from featpipe.api import DIALECTS
-from featpipe.engines.sqlite import SQLiteEngine
-from featpipe.errors import FeatpipeError
 from featpipe.engines.statements import select_all
+from featpipe.errors import FeatpipeError
 from featpipe.sqlgen.common import render
 from featpipe.sqlgen.design import design_query, terms_query
 
@@ -49,7 +49,7 @@ def lease_terms_in_pandas(leases: pd.DataFrame) -> pd.DataFrame:
 def lease_demo(tmp_path_factory):
     root = copy_demo("lease_default", tmp_path_factory.mktemp("demo"))
     project = featpipe.load_project(root)
-    featpipe.materialize(project)
+    featpipe.compute(project)
     return project
 
 
@@ -98,16 +98,16 @@ def test_every_term_and_design_query_parses_back_in_every_dialect(demo, dialect)
 def test_a_contract_mismatch_builds_nothing(tmp_path):
     root = write_project(tmp_path, {"data/orders.csv": "order_id,amount,items,region,returned\n1,abc,2,north,0\n"})
     with pytest.raises(FeatpipeError) as caught:
-        featpipe.materialize(featpipe.load_project(root))
+        featpipe.compute(featpipe.load_project(root))
     assert "column 'amount' is declared DOUBLE (floating point) but table 'orders' has" in str(caught.value)
     with featpipe.connect(featpipe.load_project(root)) as engine:
         assert engine.describe("design_returns") is None
 
 
 def test_a_failed_rebuild_keeps_the_previous_design_table(project_dir):
-    featpipe.materialize(featpipe.load_project(project_dir))
+    featpipe.compute(featpipe.load_project(project_dir))
     (project_dir / "data" / "orders.csv").write_text("order_id,amount\n1,2.0\n")  # most columns gone
     with pytest.raises(FeatpipeError, match="column 'items' \\(BIGINT\\) is missing"):
-        featpipe.materialize(featpipe.load_project(project_dir))
+        featpipe.compute(featpipe.load_project(project_dir))
     with featpipe.connect(featpipe.load_project(project_dir)) as engine:
         assert len(engine.fetch(select_all("design_returns"))) == 8

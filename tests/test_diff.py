@@ -13,14 +13,14 @@ import subprocess
 from pathlib import Path
 
 import pytest
-
 from conftest import MODEL_YAML, write_project
+
 from featpipe.compiler import compile_project
-from featpipe.diff import diff_project
-from featpipe.diffformat import render_markdown, render_text
 from featpipe.errors import FeatpipeError
-from featpipe.fitted import FittedModel, FittedTerm, INTERCEPT, write_fitted
+from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, write_fitted
 from featpipe.project import load_project
+from featpipe.review.diff import diff_project
+from featpipe.review.formats import render_markdown, render_text
 
 PRICE_SQL = """\
 SELECT
@@ -186,7 +186,7 @@ def test_semantic_edit_reports_both_sqls_and_the_stale_fit(tmp_path):
 
 
 def test_edit_of_a_used_term_changes_the_user_through_it(tmp_path):
-    project = committed_project(tmp_path, {"terms/price.sql": PRICE_SQL, "models/returns.yaml": MODEL_WITH_PRICEY})
+    project = committed_project(tmp_path, {"terms/price.sql": PRICE_SQL, "specs/returns.yaml": MODEL_WITH_PRICEY})
     edit(project, "terms/basket.sql", "NULLIF(items, 0)", "NULLIF(items + 1, 0)")
     change, text, markdown, data = diff_all(project)
 
@@ -204,7 +204,7 @@ def test_edit_of_a_used_term_changes_the_user_through_it(tmp_path):
 def test_rename_is_one_term_with_the_same_fingerprint(tmp_path):
     project = committed_project(tmp_path)
     edit(project, "terms/basket.sql", "AS item_price", "AS price_each")
-    edit(project, "models/returns.yaml", "[item_price,", "[price_each,")
+    edit(project, "specs/returns.yaml", "[item_price,", "[price_each,")
     change, text, markdown, data = diff_all(project)
 
     assert "  renamed  item_price -> price_each  terms/basket.sql:4  same meaning; in models: returns" in text
@@ -221,7 +221,7 @@ def test_removal_names_the_models_it_was_in(tmp_path):
     project = committed_project(tmp_path)
     edit(project, "terms/basket.sql", "amount / NULLIF(items, 0) AS item_price,", "amount / NULLIF(items, 0) AS item_price")
     edit(project, "terms/basket.sql", "  CASE WHEN region = 'north' THEN 1 ELSE 0 END AS northern\n", "")
-    edit(project, "models/returns.yaml", "northern, ", "")
+    edit(project, "specs/returns.yaml", "northern, ", "")
     change, text, markdown, data = diff_all(project)
 
     short = change.since.short

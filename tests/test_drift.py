@@ -19,16 +19,24 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
-from sqlglot import exp
-
 from conftest import copy_demo
-from featpipe.api import materialize
+from sqlglot import exp
+from sqlite_engine import SQLiteEngine
+
+from featpipe.api import compute
 from featpipe.compiler import compile_project
-from featpipe.drift import MAJOR, MODERATE, STABLE, drift, read_drift, reading, render_drift_sql
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.engines.sqlite import SQLiteEngine
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, Profile, read_fitted
+from featpipe.fitted.drift import (
+    MAJOR,
+    MODERATE,
+    STABLE,
+    drift,
+    read_drift,
+    reading,
+    render_drift_sql,
+)
 from featpipe.project import load_project
 from featpipe.sqlgen.common import column
 from featpipe.sqlgen.drift import drift_query, output_names
@@ -191,7 +199,7 @@ def lease(tmp_path_factory):
     no_revenue (the leases without their monthly_revenue column). Returns (root, frames by table)."""
     root = copy_demo("lease_default", tmp_path_factory.mktemp("drift"))
     project = load_project(root)
-    materialize(project, [MODEL])
+    compute(project, [MODEL])
     leases = pd.read_csv(root / "data" / "leases.csv")
     engine = DuckDBEngine(project.engine.path)
     try:

@@ -18,10 +18,10 @@ import pytest
 import sqlglot
 from fixtures_engines import free_port, require_engine
 from sqlglot import exp
+from sqlite_engine import SQLiteEngine
 
 from featpipe.engines import statements
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.engines.sqlite import SQLiteEngine
 from featpipe.errors import EngineError
 from featpipe.project import EngineConfig
 

@@ -6,14 +6,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from conftest import copy_demo
 
 import featpipe
 from featpipe import api
 from featpipe.engines.statements import select_all
 from featpipe.errors import FeatpipeError
-from featpipe.explain import explain
 from featpipe.fitted import read_fitted
-from conftest import copy_demo
+from featpipe.fitted.explain import explain
+from featpipe.sqlgen.common import training_rows
 
 FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson()}
 
@@ -34,7 +35,7 @@ def test_the_fitted_file_agrees_with_statsmodels_on_the_same_rows(fitted_demos, 
     fitted = read_fitted(project.fitted_path(model))
     layout = api.check(project).models[model].layout
     with api.connect(project) as engine:
-        rows = engine.fetch_frame(select_all(layout.table).where(layout.training_rows())).sort_values(layout.key)
+        rows = engine.fetch_frame(select_all(layout.table).where(training_rows(layout))).sort_values(layout.key)
     design = sm.add_constant(rows[list(layout.terms)].to_numpy(float), has_constant="add")
     offset = rows[layout.offset].to_numpy(float) if layout.offset else None
     # Reference library: statsmodels GLM, the same rows and terms, IRLS run to a tight tolerance (its
@@ -80,7 +81,7 @@ def test_a_failed_fit_leaves_the_previous_file(fitted_demos, tmp_path):
     api.fit(featpipe.load_project(project_root), ["default_risk"])
     path = project_root / "fitted" / "default_risk.yaml"
     before = path.read_bytes()
-    spec = project_root / "models" / "default_risk.yaml"
+    spec = project_root / "specs" / "default_risk.yaml"
     spec.write_text(spec.read_text().replace("max_dropped: 0.03", "max_dropped: 0.001"))
     with pytest.raises(FeatpipeError, match=r"58 of 5000 rows \(1.2%\) have a NULL .* more than max_dropped 0.001"):
         api.fit(featpipe.load_project(project_root), ["default_risk"])

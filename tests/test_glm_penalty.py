@@ -10,7 +10,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from sklearn.linear_model import ElasticNet, Lasso, LogisticRegression, PoissonRegressor, Ridge
+from sklearn.linear_model import (
+    ElasticNet,
+    Lasso,
+    LogisticRegression,
+    PoissonRegressor,
+    Ridge,
+)
 from sklearn.preprocessing import StandardScaler
 from test_glm_reference import design_frame, duckdb_design
 

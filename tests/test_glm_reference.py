@@ -16,11 +16,18 @@ import pytest
 import statsmodels.api as sm
 from statsmodels.stats.outliers_influence import variance_inflation_factor
 
+from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.glm import fit_glm, fit_glm_arrays
 from featpipe.glm.families import get_family
-from featpipe.glm.sources import Batch, BatchSource, Request, Scaling, SqlAggregateSource, in_memory_batches
-from featpipe.sqlgen.layout import DesignLayout
+from featpipe.glm.sources import (
+    Batch,
+    BatchSource,
+    Request,
+    Scaling,
+    SqlAggregateSource,
+    in_memory_batches,
+)
 
 FAMILIES = {"binomial": sm.families.Binomial, "poisson": sm.families.Poisson, "gaussian": sm.families.Gaussian}
 

@@ -1,7 +1,7 @@
 """Hardened terms give one answer on DuckDB, SQLite and PostgreSQL, edge cases included.
 
-The engine differences come from /work/shared/SQL-NOTES.md ("Engines disagree on edge cases") and
-from the casts measured while writing featpipe/sqlgen/harden.py (its docstring lists them). Each
+The engine differences are those featpipe/sqlgen/harden.py's docstring lists, measured on the
+engines themselves. Each
 expression below is hardened, rendered per dialect and run on real engines over rows chosen to hit
 those edges (NULLs, zero divisors, negative logarithms, huge exponents, integer operands, halves,
 booleans); every engine must return exactly the same DOUBLE (or NULL) in every cell.
@@ -308,7 +308,7 @@ def test_substituted_trees_keep_their_precedence():
 
 
 def test_boolean_columns_come_from_the_schema_or_from_sqlglot_types():
-    # PostgreSQL cannot CAST a BOOLEAN to DOUBLE, so a boolean column must become 1.0/0.0 (SQL-NOTES).
+    # PostgreSQL cannot CAST a BOOLEAN to DOUBLE, so a boolean column must become 1.0/0.0 (measured on PostgreSQL 15).
     one_zero = 'CASE WHEN "Flag" THEN CAST(1.0 AS DOUBLE) WHEN NOT ("Flag") THEN CAST(0.0 AS DOUBLE) END * CAST(2 AS DOUBLE)'
     parsed = sqlglot.parse_one('"Flag" * 2', dialect="duckdb")
     assert render(harden(parsed, {"flag": "BOOLEAN"}), "duckdb", pretty=False) == one_zero  # names match without case

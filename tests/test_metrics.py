@@ -26,13 +26,13 @@ from sklearn.metrics import (
     roc_auc_score,
 )
 from sqlglot import exp
+from sqlite_engine import SQLiteEngine
 
+from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.engines.sqlite import SQLiteEngine
+from featpipe.fit.metrics import holdout_metrics
 from featpipe.fitted import INTERCEPT
-from featpipe.metrics import holdout_metrics
 from featpipe.sqlgen.common import alias, number
-from featpipe.sqlgen.layout import DesignLayout
 from featpipe.sqlgen.metrics import linear_predictor, prediction
 
 TOLERANCE = 1e-12
@@ -248,7 +248,7 @@ def test_linear_predictor_writes_exact_literals_and_the_offset():
 
 
 def test_prediction_is_finite_for_extreme_linear_predictors(bare_engine):
-    """EXP is clamped at +-700 (EXP(1000) is inf on DuckDB and an error on PostgreSQL, SQL-NOTES)."""
+    """EXP is clamped at +-700 (EXP(1000) is inf on DuckDB and an error on PostgreSQL, measured in tests/test_harden.py)."""
     eta = {"high": number(1000.0), "low": number(-1000.0), "mid": number(0.5)}
     query = exp.select(*(
         alias(prediction(family, value), f"{family}_{name}")

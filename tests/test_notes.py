@@ -10,7 +10,7 @@ import math
 import pytest
 
 from featpipe.fitted import Effect
-from featpipe.notes import effect, figure, model_reading, term_notes, words
+from featpipe.fitted.notes import effect, figure, model_reading, term_notes, words
 
 # A firm-age term of a logistic default model: b = -0.0685, 95% interval -0.09 to -0.047, step 5 years.
 # By hand: exp(5 x -0.0685) = exp(-0.3425) = exp(-0.3) x exp(-0.0425) = 0.740818 x 0.958390 = 0.709993;

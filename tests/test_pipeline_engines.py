@@ -1,4 +1,4 @@
-"""The whole pipeline where the data is: both demo projects checked, materialized, fitted, scored,
+"""The whole pipeline where the data is: both demo projects checked, computed, fitted, scored,
 drift-checked and reported on DuckDB, PostgreSQL and Spark, and the three engines' results compared.
 
 Each engine runs the pipeline once per test module (module-scoped fixtures; Spark on the run's one
@@ -22,15 +22,15 @@ from pathlib import Path
 import pandas as pd
 import pytest
 import yaml
+from conftest import copy_demo
 from sqlglot import exp
 
-from conftest import copy_demo
 from featpipe import api
-from featpipe.drift import DriftReport, drift
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import file_hash
-from featpipe.report import write_report
-from featpipe.scoring import score
+from featpipe.fitted.drift import DriftReport, drift
+from featpipe.fitted.report import write_report
+from featpipe.fitted.scoring import score
 from featpipe.sqlgen.common import alias, column
 from featpipe.sqlgen.score import PREDICTION, STATUS
 
@@ -91,7 +91,7 @@ def run_pipeline(engine_kind: str, engine_block: str | None, folder: Path) -> Ru
         run.projects[name] = project
 
         run.checked[name] = api.check_report(project)
-        run.built[name] = {table.table: table.rows for table in api.materialize(project, [model])}
+        run.built[name] = {table.table: table.rows for table in api.compute(project, [model])}
         api.fit(project, [model])
         with api.connect(project) as engine:
             engine.create_table(f"{demo.input}_batch", exp.select("*").from_(demo.input).where(demo.batch))
@@ -197,7 +197,7 @@ def engine_run(request) -> Run:
 
 
 def test_every_step_runs_on_the_engine(engine_run):
-    """check, materialize, score, drift and report worked on the engine, on the demo data's rows."""
+    """check, compute, score, drift and report worked on the engine, on the demo data's rows."""
     run = engine_run
     assert {name: len(report.models) for name, report in run.checked.items()} == {"lease_default": 2, "fleet_claims": 1}
     rows = {name: len(csv_keys(name, demo)) for name, demo in DEMOS.items()}  # 5000 and 4000 lines of data
@@ -294,12 +294,14 @@ def test_postgres_plans_each_layer_of_a_query_apart(postgres_run):
     import psycopg
 
     from featpipe.engines.postgres import PostgresEngine
+    from featpipe.glm.families import BOUNDARY_ETA, get_family
     from featpipe.sqlgen.statistics import ModelRequest, statistics_query
 
     project = postgres_run.projects["lease_default"]
     layout = api.check(project).models["default_risk"].layout
     query = statistics_query(layout, "binomial", dict.fromkeys(layout.terms, 0.0), dict.fromkeys(layout.terms, 1.0),
-                             [ModelRequest(layout.terms, (0.0,) * (1 + len(layout.terms)))])
+                             [ModelRequest(layout.terms, (0.0,) * (1 + len(layout.terms)))],
+                             eta_limit=get_family("binomial").eta_limit, boundary_eta=BOUNDARY_ETA)
     engine = PostgresEngine(project.engine)
     try:
         fenced = engine.render(query)
@@ -321,8 +323,8 @@ def test_postgres_plans_each_layer_of_a_query_apart(postgres_run):
 def test_a_command_that_changes_nothing_writes_no_table(tmp_path):
     """A fit or report over up-to-date design tables leaves the engine's tables alone, the build record
     included (on Spark each rewrite of a table costs seconds of metastore work)."""
+    from featpipe.engines.compute import build_designs
     from featpipe.engines.duckdb import DuckDBEngine
-    from featpipe.materialize import build_designs
 
     class Recording(DuckDBEngine):
         def __init__(self, path):
@@ -353,7 +355,7 @@ def test_spark_percentiles_are_exact_and_interpolated(spark_engine, tmp_path):
     Expected: numpy's default (linear) quantile of 1, 2, 4, 10 at 0.25 is 1.75; the median is 3.0."""
     import numpy as np
 
-    from featpipe.report.queries import _percentile
+    from featpipe.fitted.report.queries import _percentile
 
     path = tmp_path / "sample.csv"
     path.write_text("x\n1.0\n2.0\n4.0\n10.0\n\n", encoding="utf-8")

@@ -8,20 +8,21 @@ be exact; mean and sd (sums in a different order) to 1e-12.
 
 from __future__ import annotations
 
-
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from test_metrics import (  # the engines every SQL test runs on
+    ENGINE_KINDS,
+    open_engine,
+)
 
+from featpipe.compiler.layout import DesignLayout
+from featpipe.fit.metrics import training_profiles
 from featpipe.fitted import INTERCEPT, Profile
-from featpipe.metrics import training_profiles
 from featpipe.sqlgen.common import column
-from featpipe.sqlgen.layout import DesignLayout
 from featpipe.sqlgen.metrics import linear_predictor
 from featpipe.sqlgen.profile import decile_rank
-
-from test_metrics import EMBEDDED, ENGINE_KINDS, open_engine  # the engines every SQL test runs on
 
 ROWS = 537
 LAYOUT = DesignLayout(

@@ -3,8 +3,8 @@
 from __future__ import annotations
 
 import pytest
-
 from conftest import write_project
+
 from featpipe.errors import FeatpipeError
 from featpipe.project import load_project
 
@@ -50,7 +50,7 @@ inputs:
 
 
 def test_unknown_key_and_bad_values_in_a_model_spec_are_all_reported(tmp_path):
-    root = write_project(tmp_path, {"models/returns.yaml": """\
+    root = write_project(tmp_path, {"specs/returns.yaml": """\
         input: orders
         target: returned
         family: binomal
@@ -59,16 +59,16 @@ def test_unknown_key_and_bad_values_in_a_model_spec_are_all_reported(tmp_path):
         holdout: {fraction: 1.5}
         """})
     assert errors_of(root) == [
-        "models/returns.yaml:3:9: unknown family 'binomal'; use one of binomial, poisson, gaussian",
-        "models/returns.yaml:5:1: unknown key 'treshold'; did you mean 'threshold'?",
-        "models/returns.yaml:6:21: holdout fraction must be at least 0 and below 1",
+        "specs/returns.yaml:3:9: unknown family 'binomal'; use one of binomial, poisson, gaussian",
+        "specs/returns.yaml:5:1: unknown key 'treshold'; did you mean 'threshold'?",
+        "specs/returns.yaml:6:21: holdout fraction must be at least 0 and below 1",
     ]
 
 
 def test_a_yaml_syntax_error_points_at_the_line(tmp_path):
-    root = write_project(tmp_path, {"models/returns.yaml": "input: orders\nterms: [a, b\n"})
+    root = write_project(tmp_path, {"specs/returns.yaml": "input: orders\nterms: [a, b\n"})
     (message,) = errors_of(root)
-    assert message.startswith("models/returns.yaml:3:1: YAML syntax error")
+    assert message.startswith("specs/returns.yaml:3:1: YAML syntax error")
 
 
 def test_secrets_come_from_the_environment(tmp_path, monkeypatch):
@@ -80,7 +80,7 @@ def test_secrets_come_from_the_environment(tmp_path, monkeypatch):
 
 
 def test_expectations_must_name_model_terms(tmp_path):
-    root = write_project(tmp_path, {"models/returns.yaml": """\
+    root = write_project(tmp_path, {"specs/returns.yaml": """\
         input: orders
         target: returned
         family: binomial
@@ -88,6 +88,6 @@ def test_expectations_must_name_model_terms(tmp_path):
         expect: {item_price: up, northern: positive}
         """})
     assert errors_of(root) == [
-        "models/returns.yaml:5:22: expected sign must be 'positive' or 'negative', not 'up'",
-        "models/returns.yaml:5:26: 'northern' in expect is not one of the model's terms",
+        "specs/returns.yaml:5:22: expected sign must be 'positive' or 'negative', not 'up'",
+        "specs/returns.yaml:5:26: 'northern' in expect is not one of the model's terms",
     ]

@@ -22,14 +22,14 @@ import sys
 from pathlib import Path
 
 import pytest
+from conftest import copy_demo
+from fixtures_engines import free_port, postgres_programs, require_engine
 from sqlglot import exp
 from typer.testing import CliRunner
 
-from conftest import copy_demo
 from featpipe.cli import app
 from featpipe.sqlgen.drift import psi_column
 from featpipe.sqlgen.score import LINEAR_PREDICTOR, STATUS
-from fixtures_engines import free_port, postgres_programs, require_engine
 
 NULL = "<null>"  # how psql is told to print NULL, so it differs from an empty text
 POSTGRES_ENGINE = "  kind: postgres\n  dsn: ${FEATPIPE_TEST_DSN}\n"
@@ -151,9 +151,9 @@ def test_exported_drift_sql_runs_in_psql_and_gives_featpipe_drift(postgres_demo,
 # ---------------------------------------------------------------- engine errors at the command line
 
 
-def materialize_in_a_subprocess(root: Path, dsn: str) -> subprocess.CompletedProcess:
+def compute_in_a_subprocess(root: Path, dsn: str) -> subprocess.CompletedProcess:
     return subprocess.run(
-        [sys.executable, "-m", "featpipe", "materialize", "-p", str(root)], capture_output=True, text=True,
+        [sys.executable, "-m", "featpipe", "compute", "-p", str(root)], capture_output=True, text=True,
         timeout=120, env={**os.environ, "FEATPIPE_TEST_DSN": dsn, "FEATPIPE_DEBUG": ""},
     )
 
@@ -178,20 +178,20 @@ def assert_one_line_engine_error(result: subprocess.CompletedProcess, *expected:
         assert words in lines[0], lines[0]
 
 
-def test_materialize_with_the_server_stopped(postgres_project):
+def test_compute_with_the_server_stopped(postgres_project):
     """A port where nothing listens: one line naming the address and what to check."""
     port = free_port()
-    result = materialize_in_a_subprocess(postgres_project, f"host=127.0.0.1 port={port} user=postgres dbname=postgres")
+    result = compute_in_a_subprocess(postgres_project, f"host=127.0.0.1 port={port} user=postgres dbname=postgres")
     assert_one_line_engine_error(result, f"no server answers at 127.0.0.1:{port}", "is the server running?")
     assert not (postgres_project / "build").exists()
 
 
-def test_materialize_with_a_wrong_password(postgres_project, postgres_engine):
+def test_compute_with_a_wrong_password(postgres_project, postgres_engine):
     """The test server refuses the password: one line naming the user and what to check; no table in the schema."""
     from psycopg.conninfo import make_conninfo
 
     dsn = make_conninfo(postgres_engine.dsn, password="not-the-password")
-    result = materialize_in_a_subprocess(postgres_project, dsn)
+    result = compute_in_a_subprocess(postgres_project, dsn)
     assert_one_line_engine_error(result, "password authentication failed for user 'postgres'",
                                  "check the user and password")
     assert "not-the-password" not in result.stderr

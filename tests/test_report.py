@@ -26,16 +26,16 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from conftest import copy_demo
 from scipy.stats import chi2
 
-from conftest import copy_demo
 from featpipe import api
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted, write_fitted
-from featpipe.report import report_path, write_report
-from featpipe.report.compare import likelihood_ratio
-from featpipe.report.data import default_pair, gather, term_inputs
-from featpipe.report.render import CURVES_ID, metric_text
+from featpipe.fitted.report import report_path, write_report
+from featpipe.fitted.report.compare import likelihood_ratio
+from featpipe.fitted.report.data import default_pair, gather, term_inputs
+from featpipe.fitted.report.render import CURVES_ID, metric_text
 from featpipe.sqlgen.score import score_query
 
 FORBIDDEN = ("http://", "https://", "//cdn", "<script src", "<link", "xlink:", "<?xml", "<!--")
@@ -425,7 +425,7 @@ holdout: {fraction: 0.3, salt: "v1"}
 
 def test_a_gaussian_model_gets_its_report_with_residuals_by_decile(demos):
     lease = demos["lease"]
-    spec = lease.root / "models" / "payment_size.yaml"
+    spec = lease.root / "specs" / "payment_size.yaml"
     spec.write_text(GAUSSIAN_MODEL, encoding="utf-8")
     try:
         project = api.load_project(lease.root)

@@ -15,13 +15,13 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
+from conftest import REPO, copy_demo
+from fixtures_engines import require_engine
 from PIL import Image
 
-from conftest import REPO, copy_demo
 from featpipe import api
-from featpipe.report import write_report
-from featpipe.report.plots import MODEL_COLOURS
-from fixtures_engines import require_engine
+from featpipe.fitted.report import write_report
+from featpipe.fitted.report.plots import MODEL_COLOURS
 
 CHROMIUM = Path("/usr/bin/chromium")
 ARTIFACTS = REPO / "artifacts"

@@ -2,8 +2,7 @@
 
 Every fitted model here is written by hand in Python with known coefficients and training means, so
 the expected values are plain arithmetic on the same numbers (numpy), or statsmodels' own `predict`
-for a GLM it fitted (statsmodels is the reference library). Precision: 1e-12 relative, as the issue
-asks; the SQL and the numpy reference use the same order of operations, so most values agree to the bit.
+for a GLM it fitted (statsmodels is the reference library). Precision: 1e-12 relative; the SQL and the numpy reference use the same order of operations, so most values agree to the bit.
 """
 
 from __future__ import annotations
@@ -16,10 +15,10 @@ import pyarrow.parquet as pq
 import pytest
 import sqlglot
 import statsmodels.api as sm
+from sqlite_engine import SQLiteEngine
 
 from featpipe.compiler.canonical import fingerprint_of_sql
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.engines.sqlite import SQLiteEngine
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, Profile
 from featpipe.sqlgen.common import render

@@ -11,14 +11,14 @@ import math
 
 import pytest
 import sqlglot
-
 from conftest import write_project
+
 from featpipe.compiler import compile_project
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, Profile, write_fitted
+from featpipe.fitted.scoring import render_score_sql, score
 from featpipe.project import load_project
-from featpipe.scoring import render_score_sql, score
 
 # Invented coefficients and training means of the shop model 'returns' (terms item_price, northern, items).
 ESTIMATES = {INTERCEPT: -0.5, "item_price": 0.01, "northern": -0.8, "items": 0.25}

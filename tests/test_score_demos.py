@@ -1,6 +1,6 @@
 """The committed demo fits scored on DuckDB, SQLite and PostgreSQL, against statsmodels on the design table.
 
-Parity with the fit: the design table (built by `materialize` in DuckDB) holds every term value of every
+Parity with the fit: the design table (built by `compute` in DuckDB) holds every term value of every
 row; statsmodels' `GLM.predict(params, exog, offset)` (the reference library's inverse link) turns the
 fitted coefficients into predictions there. The scoring SQL, which recomputes the terms from the fitted
 file's SQL on the raw input table, must give the same predictions to 1e-12 relative on each engine,
@@ -14,19 +14,19 @@ import math
 import numpy as np
 import pytest
 import statsmodels.api as sm
+from conftest import copy_demo
 from sqlglot import exp
+from sqlite_engine import SQLiteEngine
 from test_score import assert_same_scores, expected_scores, scored
 
-from conftest import copy_demo
-from featpipe.api import materialize
+from featpipe.api import compute
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.engines.sqlite import SQLiteEngine
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted
+from featpipe.fitted.scoring import render_score_sql, score
 from featpipe.project import load_project
-from featpipe.scoring import render_score_sql, score
+from featpipe.project.names import OFFSET_COLUMN
 from featpipe.sqlgen.common import column
-from featpipe.sqlgen.layout import OFFSET_COLUMN
 
 DEMO_MODELS = [("lease_default", "default_risk"), ("lease_default", "default_raw"), ("fleet_claims", "claim_frequency")]
 SM_FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson(), "gaussian": sm.families.Gaussian()}
@@ -39,7 +39,7 @@ def demo(request, tmp_path_factory):
     name, model = request.param
     root = copy_demo(name, tmp_path_factory.mktemp(model))
     project = load_project(root)
-    materialize(project, [model])
+    compute(project, [model])
     fitted = read_fitted(project.fitted_path(model))
     terms = [term.name for term in fitted.terms[1:]]
     offset = [OFFSET_COLUMN] if fitted.offset else []
@@ -64,7 +64,7 @@ def demo(request, tmp_path_factory):
 
 @pytest.fixture(params=["duckdb", "sqlite", "postgres"])
 def demo_engine(request, demo):
-    """The engine with the demo's input table: DuckDB is the project's own (loaded by materialize)."""
+    """The engine with the demo's input table: DuckDB is the project's own (loaded by compute)."""
     project, fitted = demo["project"], demo["fitted"]
     if request.param == "duckdb":
         engine = DuckDBEngine(project.engine.path)

@@ -14,12 +14,12 @@ import sys
 
 import pytest
 import sqlglot
+from conftest import REPO
 from fixtures_engines import require_engine
 from test_score_command import database, shop  # noqa: F401 - shop is a fixture
 
-from conftest import REPO
+from featpipe.fitted.scoring import render_score_sql, score
 from featpipe.project import load_project
-from featpipe.scoring import render_score_sql, score
 
 EXAMPLES = REPO / "examples"
 STATUS_LINES = "2\tmissing: item_price\n6\tok\n"

@@ -20,11 +20,17 @@ from sqlglot.errors import ParseError, TokenError
 from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
 
 from ..errors import Diagnostic, raise_if_errors
-from ..project import NAME_PATTERN, PROJECT_FILE, ModelSpec, Project
-from ..sqlgen.layout import OFFSET_COLUMN, WEIGHT_COLUMN, DesignLayout, design_table_name
+from ..project import PROJECT_FILE, ModelSpec, Project
+from ..project.names import (
+    NAME_PATTERN,
+    OFFSET_COLUMN,
+    WEIGHT_COLUMN,
+    design_table_name,
+)
 from .allowlist import check_allowed
 from .canonical import canonical_sql, canonical_tree, fingerprint_of_sql
 from .inline import dependency_order, inline_terms
+from .layout import DesignLayout
 from .leakage import target_paths
 from .parse import TERM_DIALECT, RawTerm, node_position, parse_term_file
 from .resolve import resolve_names

@@ -55,7 +55,7 @@ class DuckDBEngine:
 
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         # A relation streams its result; an executed result (DuckDB 2 has no fetch_record_batch) would
-        # first materialize every row.
+        # first fetch every row.
         try:
             reader = self.connection.sql(self.render(query)).to_arrow_reader(batch_rows)
         except duckdb.Error as error:

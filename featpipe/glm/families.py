@@ -19,7 +19,9 @@ from abc import ABC, abstractmethod
 import numpy as np
 from scipy.special import expit, gammaln
 
-from ..sqlgen.statistics import BOUNDARY_ETA, ETA_LIMIT
+# |eta| beyond this puts a fitted probability within 1e-10 of 0 or 1 (binomial), or a fitted mean
+# below 1e-10 (poisson, eta < -BOUNDARY_ETA).
+BOUNDARY_ETA = math.log((1 - 1e-10) / 1e-10)
 
 
 class Family(ABC):
@@ -27,10 +29,13 @@ class Family(ABC):
     link: str
     statistic_name = "z"  # dispersion fixed at 1: normal reference distribution
     estimates_dispersion = False
+    # The linear predictor is clamped to +-eta_limit before EXP: far beyond any useful fitted value,
+    # and small enough that EXP and sums of EXP stay finite on every engine (PostgreSQL raises on
+    # overflow). None: the family takes no EXP.
+    eta_limit: float | None = None
 
     def clamp(self, eta: np.ndarray) -> np.ndarray:
-        limit = ETA_LIMIT.get(self.name)
-        return eta if limit is None else np.clip(eta, -limit, limit)
+        return eta if self.eta_limit is None else np.clip(eta, -self.eta_limit, self.eta_limit)
 
     @abstractmethod
     def mean(self, eta: np.ndarray) -> np.ndarray:
@@ -55,6 +60,7 @@ class Family(ABC):
 
 class Binomial(Family):
     name, link = "binomial", "logit"
+    eta_limit = 36.0
 
     def mean(self, eta):
         return expit(eta)
@@ -75,6 +81,7 @@ class Binomial(Family):
 
 class Poisson(Family):
     name, link = "poisson", "log"
+    eta_limit = 50.0
 
     def mean(self, eta):
         return np.exp(eta)

@@ -29,10 +29,11 @@ from dataclasses import dataclass
 import numpy as np
 import pyarrow as pa
 
+from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..project import Penalty
-from ..sqlgen.layout import DesignLayout
+from ..project.names import INTERCEPT
 from ..sqlgen.statistics import (
     TermProfile,
     TrainingProfile,
@@ -59,7 +60,6 @@ from .sources import (
     in_memory_batches,
 )
 
-INTERCEPT = "(intercept)"
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
 

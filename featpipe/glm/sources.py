@@ -22,10 +22,17 @@ import numpy as np
 import pyarrow as pa
 from scipy.linalg.blas import dsyrk
 
+from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
-from ..sqlgen.layout import DesignLayout
-from ..sqlgen.statistics import ModelRequest, TrainingProfile, design_columns_query, statistics_query, term_profile, upper_pairs
-from .families import Family, Poisson
+from ..sqlgen.statistics import (
+    ModelRequest,
+    TrainingProfile,
+    design_columns_query,
+    statistics_query,
+    term_profile,
+    upper_pairs,
+)
+from .families import BOUNDARY_ETA, Family, Poisson
 
 
 @dataclass(frozen=True)
@@ -92,7 +99,8 @@ class SqlAggregateSource:
             ModelRequest(tuple(self.layout.terms[i] for i in request.terms), tuple(request.beta.tolist()))
             for request in requests
         ]
-        query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models)
+        query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models,
+                                 eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA)
         (row,) = self.engine.fetch(query)
         self.passes += 1
         return _unpack(row, [len(request.terms) + 1 for request in requests])

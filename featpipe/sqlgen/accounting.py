@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from .common import alias, column
-from .layout import DesignLayout
+from ..compiler.layout import DesignLayout
+from .common import alias, column, complete_rows, holdout_rows, training_rows
 
 
 def _count_where(condition: exp.Expression) -> exp.Expression:
@@ -34,9 +34,9 @@ def row_accounting_query(layout: DesignLayout) -> exp.Select:
     """
     projections = [
         alias(exp.Count(this=exp.Star()), "rows"),
-        alias(_count_where(exp.not_(layout.complete_rows())), "incomplete"),
-        alias(_count_where(layout.training_rows()), "train"),
-        alias(_count_where(layout.holdout_rows()), "holdout"),
+        alias(_count_where(exp.not_(complete_rows(layout))), "incomplete"),
+        alias(_count_where(training_rows(layout)), "train"),
+        alias(_count_where(holdout_rows(layout)), "holdout"),
     ]
     projections += [alias(_count_where(_is_null(name)), f"null_{index}") for index, (_, name) in enumerate(dropped_reasons(layout))]
     return exp.select(*projections).from_(exp.to_table(layout.table))

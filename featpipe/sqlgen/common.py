@@ -6,6 +6,7 @@ import math
 
 from sqlglot import exp
 
+from ..compiler.layout import DesignLayout
 from ..errors import FeatpipeError
 
 DIALECTS = ("duckdb", "postgres", "spark", "snowflake", "bigquery", "sqlite")
@@ -42,3 +43,17 @@ def check_dialect(dialect: str) -> None:
     """Refuse a dialect featpipe does not render for."""
     if dialect not in DIALECTS:
         raise FeatpipeError(f"unknown dialect '{dialect}'; use one of {', '.join(DIALECTS)}")
+
+
+def complete_rows(layout: DesignLayout) -> exp.Expression:
+    """Rows with no NULL in target, offset, weight or any term."""
+    return exp.and_(*(column(name).is_(exp.null()).not_() for name in layout.model_columns))
+
+
+def training_rows(layout: DesignLayout) -> exp.Expression:
+    """Rows a fit uses: not held out and complete."""
+    return exp.and_(exp.not_(column(layout.holdout)), complete_rows(layout))
+
+
+def holdout_rows(layout: DesignLayout) -> exp.Expression:
+    return exp.and_(column(layout.holdout), complete_rows(layout))

@@ -1,7 +1,8 @@
 """Portable-SQL hardening: rewrite a checked term so DuckDB, PostgreSQL, SQLite and Spark give one answer.
 
-The engines disagree on edge cases (SQL-NOTES.md, "Engines disagree on edge cases", and the casts
-measured below). Term files are DuckDB SQL, so the rewrite keeps DuckDB's meaning, computed in
+The engines disagree on edge cases (division by zero, LN and SQRT outside their domain, EXP overflow,
+integer division, the type of a decimal literal, rounding of halves, one-argument LOG; measured on
+every engine by tests/test_harden.py). Term files are DuckDB SQL, so the rewrite keeps DuckDB's meaning, computed in
 DOUBLE throughout (DuckDB itself computes `0.3 * a` as an exact DECIMAL, so the last digits may
 differ from DuckDB's own answer); where DuckDB would return inf or NaN, or another engine would
 raise an error, it gives NULL (EXP saturates instead):

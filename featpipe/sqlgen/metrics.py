@@ -5,7 +5,7 @@ come back as integer SUMs (exact), real-valued metrics as SUMs of DOUBLEs; the c
 rank-based AUC needs two window functions, and the calibration table one NTILE; their orders end
 with the key, so ties between predictions are broken the same way on every run and engine.
 
-Portability (SQL-NOTES): literals are exact DOUBLE casts, the linear predictor is clamped with CASE
+Portability (the rules of sqlgen/harden.py): literals are exact DOUBLE casts, the linear predictor is clamped with CASE
 before EXP (so EXP stays finite on PostgreSQL too), LN sees only arguments of at least 1 or ones
 guarded by CASE WHEN y > 0, and the one division is guarded with NULLIF.
 """
@@ -16,11 +16,11 @@ from collections.abc import Mapping
 
 from sqlglot import exp
 
-from ..fitted import INTERCEPT
-from .common import alias, column, number
-from .layout import DesignLayout
+from ..compiler.layout import DesignLayout
+from ..project import FAMILIES
+from ..project.names import INTERCEPT
+from .common import alias, column, holdout_rows, number
 
-FAMILIES = ("binomial", "poisson", "gaussian")
 # EXP(700) is about 1e304 and EXP(-700) about 1e-304: finite and non-zero on every engine.
 ETA_LIMIT = 700.0
 DECILES = 10
@@ -88,7 +88,7 @@ def scored_holdout(layout: DesignLayout, family: str, coefficients: Mapping[str,
             alias(linear_predictor(layout, coefficients), ETA),
         )
         .from_(exp.to_table(layout.table))
-        .where(layout.holdout_rows())
+        .where(holdout_rows(layout))
     )
     return _over(rows, "_linear", column(KEY), column(OBSERVED), column(ETA), alias(prediction(family, column(ETA)), PREDICTED))
 

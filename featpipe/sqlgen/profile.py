@@ -25,9 +25,9 @@ from functools import reduce
 
 from sqlglot import exp
 
+from ..compiler.layout import DesignLayout
 from ..fitted import Profile
 from .common import alias, column, double, number
-from .layout import DesignLayout
 
 DECILES = range(1, 10)
 NAME, VALUE = "_name", "_value"

@@ -47,11 +47,12 @@ from sqlglot import exp
 from sqlglot.errors import ParseError, TokenError
 
 from ..compiler.allowlist import check_allowed
+from ..compiler.layout import DesignLayout
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm
+from ..project.names import OFFSET_COLUMN
 from .common import alias, column, number, render
 from .harden import as_number, harden
-from .layout import OFFSET_COLUMN, DesignLayout
 from .metrics import linear_predictor, prediction
 
 FITTED_DIALECT = "duckdb"  # the fitted file stores canonical SQL in the duckdb dialect

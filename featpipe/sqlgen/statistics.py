@@ -16,7 +16,7 @@ the engine whatever the row count:
 - `target_counts_query`: weight per distinct target value (Poisson log-likelihood constant).
 - `design_columns_query`: the raw design columns of the training rows, for a streamed fit.
 
-Portability (SQL-NOTES): every column and literal is cast to DOUBLE; the linear predictor is clamped
+Portability (the rules of sqlgen/harden.py): every column and literal is cast to DOUBLE; the linear predictor is clamped
 with CASE before EXP; the only divisions and logarithms take an argument of at least 1 (1 + EXP(.))
 or are guarded with CASE WHEN x > 0. The same tree runs on DuckDB, PostgreSQL, SQLite and Spark.
 """
@@ -29,16 +29,9 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from .common import alias, column, double, number
-from .layout import DesignLayout
-
-FAMILIES = ("binomial", "poisson", "gaussian")
-# The linear predictor is clamped to +-ETA_LIMIT before EXP: far beyond any useful fitted value, and
-# small enough that EXP and sums of EXP stay finite on every engine (PostgreSQL raises on overflow).
-ETA_LIMIT = {"binomial": 36.0, "poisson": 50.0}
-# |eta| beyond this puts a fitted probability within 1e-10 of 0 or 1 (binomial), or a fitted mean
-# below 1e-10 (poisson, eta < -BOUNDARY_ETA).
-BOUNDARY_ETA = math.log((1 - 1e-10) / 1e-10)
+from ..compiler.layout import DesignLayout
+from ..project import FAMILIES
+from .common import alias, column, double, number, training_rows
 
 
 @dataclass(frozen=True)
@@ -81,7 +74,7 @@ class ModelRequest:
 
 
 def _training(layout: DesignLayout, projections: list[exp.Expression]) -> exp.Select:
-    return exp.select(*projections).from_(exp.to_table(layout.table)).where(layout.training_rows())
+    return exp.select(*projections).from_(exp.to_table(layout.table)).where(training_rows(layout))
 
 
 def _sum(expression: exp.Expression) -> exp.Sum:
@@ -201,11 +194,16 @@ def statistics_query(
     centers: Mapping[str, float],
     scales: Mapping[str, float],
     models: Sequence[ModelRequest],
+    *,
+    eta_limit: float | None,
+    boundary_eta: float,
 ) -> exp.Select:
     """One pass computing, for each model: deviance, boundary rows, score (q), X'WX upper triangle.
 
     q = 1 + number of the model's terms; see `upper_pairs` for the triangle's order. Terms are
-    standardized as (x - centers[t]) * (1 / scales[t]).
+    standardized as (x - centers[t]) * (1 / scales[t]). The linear predictor is clamped to
+    [-eta_limit, eta_limit] before EXP (None: no clamp), and a row whose |eta| exceeds `boundary_eta`
+    (binomial; poisson: eta < -boundary_eta) counts as fitted at the boundary; glm.families sets both.
     """
     if family not in FAMILIES:
         raise ValueError(f"unknown family {family}")
@@ -234,9 +232,8 @@ def statistics_query(
             parts.append(column("_o"))
         etas.append(alias(_add(*parts), f"_eta{index}"))
     query = _wrap(query, [column(c) for c in carried] + etas, "_rows")
-    limit = ETA_LIMIT.get(family)
-    if limit is not None:
-        clamped = [alias(_clamp(column(f"_eta{index}"), limit), f"_eta{index}") for index in range(len(models))]
+    if eta_limit is not None:
+        clamped = [alias(_clamp(column(f"_eta{index}"), eta_limit), f"_eta{index}") for index in range(len(models))]
         query = _wrap(query, [column(c) for c in carried] + clamped, "_linear")
 
     # Level 3: the fitted mean of each model, then its working weight, weighted residual, unit
@@ -250,7 +247,7 @@ def statistics_query(
     for index in range(len(models)):
         eta = column(f"_eta{index}")
         mu = eta if family == "gaussian" else column(f"_mu{index}")
-        weight, residual, deviance, boundary = _family_parts(family, y, eta, mu)
+        weight, residual, deviance, boundary = _family_parts(family, y, eta, mu, boundary_eta)
         if w is not None:
             weight, residual, deviance = _mul(w, weight), _mul(w, exp.Paren(this=residual)), _mul(w, deviance)
         per_row += [
@@ -297,13 +294,13 @@ def _mean(family: str, eta: exp.Expression) -> exp.Expression:
     return exp.Div(this=number(1.0), expression=exp.Paren(this=_add(number(1.0), exp.Exp(this=exp.Neg(this=eta)))))
 
 
-def _family_parts(family: str, y: exp.Expression, eta: exp.Expression, mu: exp.Expression):
+def _family_parts(family: str, y: exp.Expression, eta: exp.Expression, mu: exp.Expression, boundary_eta: float):
     """Per-row (variance weight, y - mu, unit deviance, boundary 0/1) before prior weights."""
     zero, one, two = number(0.0), number(1.0), number(2.0)
     if family == "gaussian":
         residual = exp.Paren(this=_sub(y, mu))
         return one, _sub(y.copy(), mu.copy()), _mul(residual, residual.copy()), exp.Literal.number(0)
-    flag = exp.LT(this=eta.copy(), expression=number(-BOUNDARY_ETA))
+    flag = exp.LT(this=eta.copy(), expression=number(-boundary_eta))
     if family == "poisson":
         y_ln_y = _case(exp.GT(this=y.copy(), expression=zero), _mul(y.copy(), _positive_ln(y.copy())), zero.copy())
         deviance = _mul(two, exp.Paren(this=_sub(_add(_sub(y_ln_y, _mul(y.copy(), eta.copy())), mu.copy()), y.copy())))
@@ -317,7 +314,7 @@ def _family_parts(family: str, y: exp.Expression, eta: exp.Expression, mu: exp.E
             exp.Ln(this=_add(one.copy(), exp.Exp(this=eta.copy()))),
         )
         deviance = _mul(two, exp.Paren(this=_sub(softplus, _mul(y.copy(), eta.copy()))))
-        flag = exp.or_(flag, exp.GT(this=eta.copy(), expression=number(BOUNDARY_ETA)))
+        flag = exp.or_(flag, exp.GT(this=eta.copy(), expression=number(boundary_eta)))
     return weight, _sub(y.copy(), mu.copy()), deviance, _case(flag, exp.Literal.number(1), exp.Literal.number(0))
 
 

@@ -17,10 +17,10 @@ import matplotlib
 import numpy as np
 from matplotlib.figure import Figure
 
-from ..fitted import FittedModel
+from ...sqlgen.score import model_terms
+from .. import FittedModel
 from ..notes import figure as figure_text
 from ..notes import words
-from ..sqlgen.score import model_terms
 from .data import LEVELS, Curve, Surface
 from .queries import SCORE_BINS
 from .readings import predicted_words

@@ -6,9 +6,9 @@ from __future__ import annotations
 import difflib
 from dataclasses import asdict
 
-from .compiler import CompiledProject
-from .errors import FeatpipeError
-from .fitted import FittedModel, read_fitted, staleness
+from ..compiler import CompiledProject
+from ..errors import FeatpipeError
+from . import FittedModel, read_fitted, staleness
 
 
 def _fitted_models(compiled: CompiledProject) -> dict[str, FittedModel]:

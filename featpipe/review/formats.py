@@ -8,7 +8,15 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
-from .diff import CoefficientChange, Estimate, FitChange, ModelChange, ProjectDiff, StaleFit, ValueChange
+from .diff import (
+    CoefficientChange,
+    Estimate,
+    FitChange,
+    ModelChange,
+    ProjectDiff,
+    StaleFit,
+    ValueChange,
+)
 
 Quote = Callable[[str], str]
 

@@ -12,11 +12,20 @@ from collections.abc import Mapping
 
 from sqlglot import exp
 
-from .engines.base import Engine
-from .fitted import Profile
-from .sqlgen.layout import DesignLayout
-from .sqlgen.metrics import binomial_summary_query, calibration_query, regression_summary_query
-from .sqlgen.profile import moments_query, order_statistics_query, read_order_statistics, read_profiles
+from ..compiler.layout import DesignLayout
+from ..engines.base import Engine
+from ..fitted import Profile
+from ..sqlgen.metrics import (
+    binomial_summary_query,
+    calibration_query,
+    regression_summary_query,
+)
+from ..sqlgen.profile import (
+    moments_query,
+    order_statistics_query,
+    read_order_statistics,
+    read_profiles,
+)
 
 
 def holdout_metrics(

@@ -3,7 +3,7 @@
 A signature joins the model's fingerprint with a hash of each local data file, so `refresh`
 rebuilds a design table when a definition or a loaded file changed, and leaves it alone otherwise.
 Tables the engine holds without a `load:` file cannot be hashed cheaply; rebuild them with
-`featpipe materialize` when their data changes.
+`featpipe compute` when their data changes.
 """
 
 from __future__ import annotations
@@ -13,9 +13,9 @@ from pathlib import Path
 
 from sqlglot import exp
 
-from .engines.base import Engine
-from .project import InputSpec
-from .sqlgen.common import alias, column
+from ..project import InputSpec
+from ..sqlgen.common import alias, column
+from .base import Engine
 
 BUILDS_TABLE = "featpipe_builds"
 

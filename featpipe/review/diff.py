@@ -26,12 +26,12 @@ import sqlglot
 from sqlglot.errors import TokenError
 from sqlglot.tokens import Token, TokenType
 
-from .compiler import CompiledModel, CompiledProject, Term, compile_project
-from .compiler.canonical import canonical_sql
-from .compiler.parse import TERM_DIALECT
-from .errors import FeatpipeError
-from .fitted import FittedModel, FittedTerm, from_yaml, staleness
-from .project import load_project
+from ..compiler import CompiledModel, CompiledProject, Term, compile_project
+from ..compiler.canonical import canonical_sql
+from ..compiler.parse import TERM_DIALECT
+from ..errors import FeatpipeError
+from ..fitted import FittedModel, FittedTerm, from_yaml, staleness
+from ..project import load_project
 from .revision import Revision, project_files_at, resolve_revision, write_project_files
 
 # Model spec fields compared between the two sides (the offset is compared as canonical SQL).
@@ -425,7 +425,7 @@ def _stale_fits(models: dict[str, CompiledModel], old_fitted: dict[str, str], ne
         if name in models:
             reasons = staleness(from_yaml(text, file), models[name])
         else:
-            reasons = [f"models/{name}.yaml no longer exists; restore it or delete {file}"]
+            reasons = [f"specs/{name}.yaml no longer exists; restore it or delete {file}"]
         if reasons:
             stale.append(StaleFit(name, file, tuple(reasons), name in moved or old_fitted.get(name) != text))
     return tuple(stale)

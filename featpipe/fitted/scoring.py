@@ -16,14 +16,14 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from .compiler import compile_project
-from .contract import check_contract
-from .errors import FeatpipeError
-from .fitted import FittedModel, file_hash, read_fitted, staleness
-from .materialize import Progress, connect
-from .project import PROJECT_FILE, InputSpec, Project
-from .sqlgen.common import check_dialect, column
-from .sqlgen.score import STATUS, render_score, score_query, score_statement
+from ..compiler import compile_project
+from ..engines.compute import Progress, connect
+from ..engines.contract import check_contract
+from ..errors import FeatpipeError
+from ..project import PROJECT_FILE, InputSpec, Project
+from ..sqlgen.common import check_dialect, column
+from ..sqlgen.score import STATUS, render_score, score_query, score_statement
+from . import FittedModel, file_hash, read_fitted, staleness
 
 
 @dataclass(frozen=True)
@@ -104,7 +104,7 @@ def score(
 def _staleness(project: Project, fitted: FittedModel) -> list[str]:
     compiled = compile_project(project)
     if fitted.model not in compiled.models:
-        return [f"models/{fitted.model}.yaml no longer exists"]
+        return [f"specs/{fitted.model}.yaml no longer exists"]
     return staleness(fitted, compiled.models[fitted.model])
 
 

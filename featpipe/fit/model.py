@@ -8,16 +8,16 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from .compiler import CompiledModel, CompiledProject, Term
-from .engines.base import Engine
-from .errors import FeatpipeError
-from .fitted import INTERCEPT, FittedModel, FittedTerm, as_written
-from .glm import fit_glm
+from ..compiler import CompiledModel, CompiledProject, Term
+from ..engines.base import Engine
+from ..errors import FeatpipeError
+from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
+from ..fitted.notes import effect, term_notes
+from ..glm import fit_glm
+from ..sqlgen.accounting import dropped_reasons, row_accounting_query
+from ..sqlgen.common import column
+from ..sqlgen.metrics import linear_predictor
 from .metrics import holdout_metrics, training_profiles
-from .notes import effect, term_notes
-from .sqlgen.accounting import dropped_reasons, row_accounting_query
-from .sqlgen.common import column
-from .sqlgen.metrics import linear_predictor
 
 LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}
 

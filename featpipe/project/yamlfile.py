@@ -7,7 +7,7 @@ from pathlib import Path
 
 import yaml
 
-from .errors import Diagnostic, FeatpipeError
+from ..errors import Diagnostic, FeatpipeError
 
 PathKey = tuple  # a path into the document: ("engine", "kind"), ("terms", 2)
 

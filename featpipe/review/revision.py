@@ -18,12 +18,12 @@ from pathlib import Path, PurePosixPath
 
 import yaml
 
-from .errors import FeatpipeError
-from .project import PROJECT_FILE
+from ..errors import FeatpipeError
+from ..project import PROJECT_FILE
 
-# What load_project reads (featpipe.yaml, terms/*.sql, models/*.yaml) and the fitted files; data
+# What load_project reads (featpipe.yaml, terms/*.sql, specs/*.yaml) and the fitted files; data
 # files are left out on purpose, since a diff compares definitions, never data.
-DEFINITION_PATTERNS = (PROJECT_FILE, "terms/*.sql", "models/*.yaml", "fitted/*.yaml")
+DEFINITION_PATTERNS = (PROJECT_FILE, "terms/*.sql", "specs/*.yaml", "fitted/*.yaml")
 DEFAULT_BRANCHES = ("main", "master")
 
 

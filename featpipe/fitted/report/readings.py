@@ -5,9 +5,9 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
-from ..fitted import FittedModel
+from ...sqlgen.score import model_terms
+from .. import FittedModel
 from ..notes import figure, model_reading, p_text, words
-from ..sqlgen.score import model_terms
 from .compare import LikelihoodRatio
 from .data import Curve, ModelFigures, Surface
 

@@ -22,12 +22,12 @@ from dataclasses import dataclass, field
 import numpy as np
 from sqlglot import exp
 
-from ..engines.base import Engine
-from ..errors import FeatpipeError
-from ..fitted import FittedModel
-from ..project import InputSpec
+from ...engines.base import Engine
+from ...errors import FeatpipeError
+from ...project import InputSpec
+from ...sqlgen.score import PREDICTION, model_terms
+from .. import FittedModel
 from ..scoring import scoring_contract
-from ..sqlgen.score import PREDICTION, model_terms
 from . import queries
 from .queries import OBSERVED, PREDICTED
 

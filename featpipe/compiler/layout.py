@@ -4,13 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from sqlglot import exp
-
-from .common import column
-
-HOLDOUT_COLUMN = "_holdout"
-OFFSET_COLUMN = "_offset"
-WEIGHT_COLUMN = "_weight"
+from ..project.names import HOLDOUT_COLUMN
 
 
 @dataclass(frozen=True)
@@ -33,17 +27,3 @@ class DesignLayout:
         """Columns that must be non-NULL for a row to take part in a fit."""
         extra = tuple(c for c in (self.offset, self.weight) if c)
         return (self.target, *extra, *self.terms)
-
-    def complete_rows(self) -> exp.Expression:
-        return exp.and_(*(column(name).is_(exp.null()).not_() for name in self.model_columns))
-
-    def training_rows(self) -> exp.Expression:
-        """Rows a fit uses: not held out and no NULL in target, offset, weight or any term."""
-        return exp.and_(exp.not_(column(self.holdout)), self.complete_rows())
-
-    def holdout_rows(self) -> exp.Expression:
-        return exp.and_(column(self.holdout), self.complete_rows())
-
-
-def design_table_name(model: str) -> str:
-    return f"design_{model}"

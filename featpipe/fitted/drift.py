@@ -1,6 +1,6 @@
 """Drift API: how far a batch has moved from a fitted model's training rows, term by term and for the score.
 
-    >>> import featpipe.drift as drift
+    >>> import featpipe.fitted.drift as drift
     >>> project = featpipe.load_project("projects/lease_default")                      # doctest: +SKIP
     >>> report = drift.drift(project, "default_risk", "leases_2024_06")               # doctest: +SKIP
     >>> report.score.psi, report.score.reading, [row.name for row in report.terms]   # doctest: +SKIP
@@ -17,18 +17,30 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 
-from .materialize import connect
-from .sqlgen.common import check_dialect
-from .contract import check_contract
-from .errors import FeatpipeError
-from .fitted import FittedModel, file_hash
-from .project import Project
-from .scoring import _staleness, load_fitted, scoring_contract
-from .sqlgen.common import render
-from .sqlgen.drift import (
-    EMPTY_SHARE, NULL_BIN, ROWS, Monitored, above_column, below_column, bin_column, contribution_column,
-    drift_header, drift_query, expected_shares, mean_column, monitored, output_names, psi_column,
+from ..engines.compute import connect
+from ..engines.contract import check_contract
+from ..errors import FeatpipeError
+from ..project import Project
+from ..sqlgen.common import check_dialect, render
+from ..sqlgen.drift import (
+    EMPTY_SHARE,
+    NULL_BIN,
+    ROWS,
+    Monitored,
+    above_column,
+    below_column,
+    bin_column,
+    contribution_column,
+    drift_header,
+    drift_query,
+    expected_shares,
+    mean_column,
+    monitored,
+    output_names,
+    psi_column,
 )
+from . import FittedModel, file_hash
+from .scoring import _staleness, load_fitted, scoring_contract
 
 Progress = Callable[[str], None]
 

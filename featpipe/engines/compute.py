@@ -11,13 +11,13 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
+from ..compiler import CompiledModel
+from ..project import Project
+from ..sqlgen.design import design_query
+from . import open_engine
+from .base import Engine
 from .builds import input_signature, read_builds, record_builds
-from .compiler import CompiledModel
 from .contract import check_contract
-from .engines import open_engine
-from .engines.base import Engine
-from .project import Project
-from .sqlgen.design import design_query
 
 Progress = Callable[[str], None]
 

@@ -16,9 +16,9 @@ from pygments import highlight
 from pygments.formatters import HtmlFormatter
 from pygments.lexers import SqlLexer
 
-from ..fitted import FittedModel
+from ...sqlgen.score import model_terms
+from .. import FittedModel
 from ..notes import figure
-from ..sqlgen.score import model_terms
 from . import plots, readings
 from .compare import LikelihoodRatio
 from .data import INTEGER, LEVELS, ReportData, roc_points
@@ -129,7 +129,7 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
 
 def _environment() -> jinja2.Environment:
     return jinja2.Environment(
-        loader=jinja2.PackageLoader("featpipe.report", "templates"),
+        loader=jinja2.PackageLoader("featpipe.fitted.report", "templates"),
         autoescape=jinja2.select_autoescape(["html", "j2"]),
         undefined=jinja2.StrictUndefined,
         trim_blocks=True,

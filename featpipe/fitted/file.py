@@ -17,10 +17,9 @@ from pathlib import Path
 
 import yaml
 
-from .atomic import write_text_atomic
-from .errors import FeatpipeError
+from ..atomic import write_text_atomic
+from ..errors import FeatpipeError
 
-INTERCEPT = "(intercept)"
 FORMAT_VERSION = 1
 
 

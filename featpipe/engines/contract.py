@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from .errors import FeatpipeError
-from .project import PROJECT_FILE, InputSpec
+from ..errors import FeatpipeError
+from ..project import PROJECT_FILE, InputSpec
 
 T = exp.DataType.Type
 FAMILIES = {

@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping
 
-from .fitted import Effect
+from . import Effect
 
 EFFECT_KINDS = {"binomial": "odds ratio", "poisson": "rate ratio", "gaussian": "difference"}
 NO_EFFECT = {"odds ratio": "an odds ratio of 1", "rate ratio": "a rate ratio of 1", "difference": "a difference of 0"}
@@ -178,7 +178,7 @@ def model_reading(
     converged: bool = True,
     penalized: bool = False,
 ) -> str:
-    """One paragraph summing up a fitted model and its holdout metrics (see featpipe.metrics)."""
+    """One paragraph summing up a fitted model and its holdout metrics (see featpipe.fit.metrics)."""
     if family not in MODEL_NAMES:
         raise ValueError(f"unknown family '{family}'; use one of {', '.join(MODEL_NAMES)}")
     plural = "term" if terms == 1 else "terms"

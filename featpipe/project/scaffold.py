@@ -6,8 +6,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .atomic import write_text_atomic
-from .errors import FeatpipeError
+from ..atomic import write_text_atomic
+from ..errors import FeatpipeError
 
 PROJECT_YAML = """\
 name: {name}
@@ -72,7 +72,7 @@ def scaffold(path: Path) -> list[str]:
     files = {
         "featpipe.yaml": PROJECT_YAML.format(name=name),
         "terms/usage.sql": TERMS_SQL,
-        "models/churn.yaml": MODEL_YAML,
+        "specs/churn.yaml": MODEL_YAML,
         "data/subscriptions.csv": _demo_rows(),
         ".gitignore": GITIGNORE,
     }

@@ -1,6 +1,6 @@
 """`featpipe report`: one self-contained HTML page per fitted model, for people who look rather than read.
 
-    >>> from featpipe.report import write_report                                       # doctest: +SKIP
+    >>> from featpipe.fitted.report import write_report                                       # doctest: +SKIP
     >>> write_report(project, "default_risk", against="default_raw")                  # doctest: +SKIP
     PosixPath('.../build/reports/default_risk-vs-default_raw.html')
 
@@ -14,14 +14,14 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from ..materialize import connect, prepare_inputs
-from ..atomic import write_text_atomic
-from ..builds import read_builds, record_builds
-from ..compiler import compile_project
-from ..engines.base import Engine
-from ..errors import FeatpipeError
-from ..fitted import FittedModel, file_hash, staleness
-from ..project import Project
+from ...atomic import write_text_atomic
+from ...compiler import compile_project
+from ...engines.base import Engine
+from ...engines.builds import read_builds, record_builds
+from ...engines.compute import connect, prepare_inputs
+from ...errors import FeatpipeError
+from ...project import Project
+from .. import FittedModel, file_hash, staleness
 from ..scoring import load_fitted
 from .compare import check_comparable, likelihood_ratio
 from .data import gather
@@ -108,7 +108,7 @@ def _warnings(project: Project, fitted: FittedModel, train_rows_now: int) -> tup
         compiled = None
     if compiled is not None:
         if fitted.model not in compiled.models:
-            found.append(f"stale: models/{fitted.model}.yaml no longer exists")
+            found.append(f"stale: specs/{fitted.model}.yaml no longer exists")
         else:
             found += [f"stale: {reason}; run `featpipe fit {fitted.model}`" for reason in staleness(fitted, compiled.models[fitted.model])]
     if train_rows_now != fitted.rows["train"]:

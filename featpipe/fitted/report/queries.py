@@ -25,11 +25,11 @@ from collections.abc import Mapping, Sequence
 
 from sqlglot import exp
 
-from ..fitted import FittedModel
-from ..project import Holdout, InputSpec
-from ..sqlgen.common import alias, column, number
-from ..sqlgen.design import holdout_flag, target_value
-from ..sqlgen.score import OK, PREDICTION, STATUS, score_query
+from ...project import Holdout, InputSpec
+from ...sqlgen.common import alias, column, number
+from ...sqlgen.design import holdout_flag, target_value
+from ...sqlgen.score import OK, PREDICTION, STATUS, score_query
+from .. import FittedModel
 
 OBSERVED, HOLDOUT, PREDICTED, COMPLETE = "_observed", "_holdout", "_prediction", "_complete"
 SAMPLE_SALT = "featpipe-report:"

@@ -1,6 +1,6 @@
 """Load featpipe.yaml, term files and model specs into plain dataclasses.
 
-Every field DESIGN.md names is read and checked here; an unknown key is an error naming the key, the
+Every field of the project file and of a spec is read and checked here; an unknown key is an error naming the key, the
 file and the line. SQL inside the files is only carried along: the compiler parses it.
 """
 
@@ -15,14 +15,14 @@ from pathlib import Path
 from sqlglot import exp
 from sqlglot.errors import ParseError
 
-from .errors import Diagnostic, FeatpipeError, raise_if_errors
+from ..errors import Diagnostic, FeatpipeError, raise_if_errors
+from .names import NAME_PATTERN
 from .yamlfile import YamlDocument, read_yaml
 
 PROJECT_FILE = "featpipe.yaml"
 FAMILIES = ("binomial", "poisson", "gaussian")
 ENGINE_KINDS = ("duckdb", "postgres", "spark")
 EXPECTATIONS = ("positive", "negative")
-NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
 
 
 @dataclass(frozen=True)
@@ -69,7 +69,7 @@ class Holdout:
 @dataclass(frozen=True)
 class ModelSpec:
     name: str
-    display: str  # models/NAME.yaml
+    display: str  # specs/NAME.yaml
     input: str
     target: str
     family: str
@@ -141,7 +141,7 @@ def load_project(path: Path | str | None = None) -> Project:
         for file in sorted((root / "terms").glob("*.sql"))
     )
     models = {}
-    for file in sorted((root / "models").glob("*.yaml")):
+    for file in sorted((root / "specs").glob("*.yaml")):
         try:
             model = _model(file, root, inputs, diagnostics)
         except FeatpipeError as error:  # a YAML syntax error in one spec; keep checking the others

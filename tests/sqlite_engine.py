@@ -22,9 +22,9 @@ import pyarrow.compute as pc
 from sqlglot import exp
 from sqlglot.dialects.sqlite import SQLite
 
-from ..errors import EngineError
-from . import statements
-from .arrowfile import open_arrow_file, sql_type
+from featpipe.engines import statements
+from featpipe.engines.arrowfile import open_arrow_file, sql_type
+from featpipe.errors import EngineError
 
 MATH_FUNCTIONS = ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
 

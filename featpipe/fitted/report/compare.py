@@ -12,9 +12,9 @@ from dataclasses import dataclass
 
 from scipy.stats import chi2
 
-from ..errors import FeatpipeError
-from ..fitted import FittedModel
-from ..sqlgen.score import model_terms
+from ...errors import FeatpipeError
+from ...sqlgen.score import model_terms
+from .. import FittedModel
 
 
 @dataclass(frozen=True)
@@ -46,7 +46,7 @@ def likelihood_ratio(fitted: FittedModel, other: FittedModel, shared_rows: tuple
     """The likelihood-ratio test of the nested pair, or the reason it does not apply.
 
     `shared_rows` counts training rows of `fitted`, of `other` and of both (see
-    featpipe.report.queries.shared_rows_query): the rows are the same when the three are equal.
+    featpipe.fitted.report.queries.shared_rows_query): the rows are the same when the three are equal.
     """
     mine, theirs = _terms(fitted), _terms(other)
     if mine == theirs:
