@@ -142,7 +142,7 @@ def fitted_model(work: Path):
     (root / "specs").mkdir(exist_ok=True)
     (root / "featpipe.yaml").write_text(PROJECT_YAML)
     (root / "terms" / "leases.sql").write_text(TERMS_SQL)
-    (root / "models" / "bench.yaml").write_text(textwrap.dedent(f"""\
+    (root / "specs" / "bench.yaml").write_text(textwrap.dedent(f"""\
         input: leases
         target: defaulted_12m
         family: binomial
