@@ -8,7 +8,7 @@ correlation, 10 indicators) is generated inside DuckDB with SQL, so building it 
 in Python. Each competitor then runs in its own subprocess against the same database file, so each
 peak RSS (measured in the child) is its own:
 
-- featpipe: `fit_glm` streaming the training rows from DuckDB in batches (the default on DuckDB);
+- featpipe: `Glm.fit` streaming the training rows from DuckDB in batches (the default on DuckDB);
 - featpipe, SQL aggregates: one aggregate query per IRLS pass (what PostgreSQL and Spark use);
 - pandas + scikit-learn: fetch the training rows into a DataFrame, then
   LogisticRegression(solver="newton-cholesky", C=inf) (scikit-learn >= 1.8 spells penalty=None as C=inf).
@@ -137,16 +137,17 @@ def peak_rss_mb() -> float:
 
 
 def child_featpipe(path: Path, source: str) -> dict:
-    from featpipe.glm import fit_glm
+    from featpipe.glm import Glm
 
     engine = DuckDBEngine(path, read_only=True)
     start_rss = peak_rss_mb()
     started = time.perf_counter()
-    fit = fit_glm(engine, layout(), "binomial", source=source)
+    fit = Glm("binomial", source=source).fit(engine, layout())
     seconds = time.perf_counter() - started
+    convergence = fit.convergence
     return {
-        "seconds": seconds, "peak_rss_mb": peak_rss_mb(), "start_rss_mb": start_rss, "passes": fit.passes_over_data,
-        "iterations": fit.iterations, "rows": fit.n_train, "coef": list(fit.coef), "converged": fit.converged,
+        "seconds": seconds, "peak_rss_mb": peak_rss_mb(), "start_rss_mb": start_rss, "passes": convergence.passes_over_data,
+        "iterations": convergence.iterations, "rows": fit.rows.n, "coef": list(fit.estimates), "converged": convergence.converged,
     }
 
 

@@ -129,13 +129,13 @@ def write_leases(path: Path, rows: int) -> None:
     writer.close()
 
 
-def fitted_model(work: Path):
-    """A FittedModel from the benchmark project's compiled terms and the invented coefficients."""
+def scoring_model(work: Path):
+    """The scoring query's model from the benchmark project's compiled terms and the invented coefficients."""
     import textwrap
 
     from featpipe.compiler import compile_project
-    from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, Profile
     from featpipe.project import load_project
+    from featpipe.sqlgen.score import ScoringModel, ScoringTerm
 
     root = work / "project"
     (root / "terms").mkdir(parents=True, exist_ok=True)
@@ -148,39 +148,36 @@ def fitted_model(work: Path):
         family: binomial
         terms: [{", ".join(COEFFICIENTS)}]
         """))
-    model = compile_project(load_project(root)).models["bench"]
-    profile = Profile(1, 0, 0.5, 1.0, 0.0, 1.0, 0.5, (), ())  # the means only centre contributions
-    terms = [FittedTerm(INTERCEPT, INTERCEPT_VALUE, None, None, None, None, None)]
-    terms += [FittedTerm(t.name, COEFFICIENTS[t.name], None, None, None, None, None, fingerprint=t.fingerprint,
-                         sql=t.sql, kind=t.kind, profile=profile) for t in model.terms]
-    return FittedModel(
-        model="bench", fingerprint=model.fingerprint, input="leases", key="lease_id", target="defaulted_12m",
-        family="binomial", link="logit", offset=None, weights=None, holdout={"fraction": 0.3, "salt": "v1"},
-        threshold=0.5, penalty={"l2": 0.0, "l1": 0.0}, rows={}, fit={}, terms=tuple(terms),
-    )
+    compiled = compile_project(load_project(root))
+    # The training means only centre the contributions.
+    terms = tuple(ScoringTerm(t.name, t.sql, t.kind == "boolean", COEFFICIENTS[t.name], 0.5)
+                  for t in compiled.models["bench"].terms)
+    return ScoringModel(key="lease_id", table="leases", family="binomial", intercept=INTERCEPT_VALUE, offset=None,
+                        columns=compiled.project.inputs["leases"].columns, terms=terms, source="benchmarks/bench_score.py")
 
 
-def sql_jobs(fitted, parquet: Path) -> dict[str, list[str]]:
+def sql_jobs(model, parquet: Path) -> dict[str, list[str]]:
     """Statements each SQL child runs: a view over the Parquet file, the scoring table, a checksum."""
     from sqlglot import exp
 
+    from featpipe.project.names import LINEAR_PREDICTOR, PREDICTION, STATUS
     from featpipe.sqlgen.common import column, render
     from featpipe.sqlgen.score import score_query
 
     reader = exp.Anonymous(this="read_parquet", expressions=[exp.Literal.string(str(parquet))])
     view = exp.Create(this=exp.to_table("leases"), kind="VIEW", expression=exp.select(exp.Star()).from_(reader))
     checksum = exp.select(
-        exp.Count(this=column("prediction")), exp.Sum(this=column("prediction")),
+        exp.Count(this=column(PREDICTION)), exp.Sum(this=column(PREDICTION)),
     ).from_(exp.to_table("scores"))
 
     def job(query: exp.Query) -> list[str]:
         scores = exp.Create(this=exp.to_table("scores"), kind="TABLE", expression=query)
         return [render(statement, "duckdb") for statement in (view, scores, checksum)]
 
-    lean = exp.select(*(column(name) for name in ("lease_id", "prediction", "linear_predictor", "status"))).from_(
-        score_query(fitted).subquery("scored"))
-    return {"sql": job(lean), "sql, contributions": job(score_query(fitted)),
-            "sql, 3 reasons": job(score_query(fitted, reasons=3))}
+    lean = exp.select(*(column(name) for name in (model.key, PREDICTION, LINEAR_PREDICTOR, STATUS))).from_(
+        score_query(model).subquery("scored"))
+    return {"sql": job(lean), "sql, contributions": job(score_query(model)),
+            "sql, 3 reasons": job(score_query(model, reasons=3))}
 
 
 # --- the routes (children) ------------------------------------------------------------------------
@@ -297,9 +294,8 @@ def main() -> None:
         if not parquet.is_file():
             print(f"writing {arguments.rows:,} invented leases to {parquet} ...", flush=True)
             write_leases(parquet, arguments.rows)
-        fitted = fitted_model(work)
         job_file = work / "job.json"
-        job_file.write_text(json.dumps({"parquet": str(parquet), "statements": sql_jobs(fitted, parquet)}))
+        job_file.write_text(json.dumps({"parquet": str(parquet), "statements": sql_jobs(scoring_model(work), parquet)}))
 
         routes = ("sql", "sql, contributions", "sql, 3 reasons", "pandas")
         results = {route: measure(route, job_file, arguments.repeat) for route in routes}

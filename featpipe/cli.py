@@ -12,17 +12,19 @@ import traceback
 from dataclasses import asdict
 from enum import Enum
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import TYPE_CHECKING, Annotated, Optional
 
 import typer
 from rich.console import Console
-from rich.syntax import Syntax
-from rich.table import Table
 
-from . import api
 from .errors import Diagnostic, FeatpipeError
-from .fitted import FittedModel, read_fitted, scoring
-from .project import load_project
+from .sqlgen.dialects import DIALECTS
+
+if TYPE_CHECKING:
+    from rich.table import Table
+
+    from .api import FitOutcome
+    from .fitted import FittedModel
 
 app = typer.Typer(
     help="Engineered model terms as reviewed SQL: check, compute, fit, explain and score in the warehouse.",
@@ -72,6 +74,9 @@ def check(
     format: Annotated[CheckFormat, typer.Option("--format", help="text, or github for workflow annotations.")] = CheckFormat.text,
 ) -> None:
     """All static validation of term files and model specs; errors as file:line:col: message."""
+    from . import api
+    from .project import load_project
+
     loaded = None
     try:
         loaded = load_project(project)
@@ -124,6 +129,9 @@ def compute(
     json_output: JsonOption = False,
 ) -> None:
     """Build each model's design table in the engine (loading local data files first)."""
+    from . import api
+    from .project import load_project
+
     built = api.compute(load_project(project), model, progress=None if json_output else _progress)
     if json_output:
         _print_json([vars(table) for table in built])
@@ -143,7 +151,7 @@ class Part(str, Enum):
 def sql(
     model: Annotated[str, typer.Argument(help="Model name (specs/NAME.yaml; for --part score or drift, fitted/NAME.yaml).")],
     project: ProjectOption = None,
-    dialect: Annotated[str, typer.Option("--dialect", "-d", help=f"One of {', '.join(api.DIALECTS)}.")] = "duckdb",
+    dialect: Annotated[str, typer.Option("--dialect", "-d", help=f"One of {', '.join(DIALECTS)}.")] = "duckdb",
     part: Annotated[Part, typer.Option("--part", help="Which query to print.")] = Part.design,
     table: Annotated[Optional[str], typer.Option("--table", help="Read this table instead of the input's name.")] = None,
     reasons: Annotated[int, typer.Option("--reasons", min=0, help="--part score: add reason_1..reason_K, the K terms pushing the prediction up most.")] = 0,
@@ -151,11 +159,16 @@ def sql(
     into: Annotated[Optional[str], typer.Option("--into", help="--part score: wrap the query as CREATE TABLE NAME AS.")] = None,
 ) -> None:
     """Print the generated SQL of a model, rendered for a dialect."""
+    from . import api
+    from .project import load_project
+
     loaded = load_project(project)
     if part != Part.score and (reasons or as_view or into):
         raise FeatpipeError("--reasons, --as-view and --into apply to --part score only")
     if part == Part.score:
-        text = scoring.render_score_sql(loaded, model, dialect=dialect, table=table, reasons=reasons, as_view=as_view, into=into)
+        from .fitted.scoring import render_score_sql
+
+        text = render_score_sql(loaded, model, dialect=dialect, table=table, reasons=reasons, as_view=as_view, into=into)
     elif part == Part.drift:
         from .fitted.drift import render_drift_sql
 
@@ -176,8 +189,11 @@ def score(
     json_output: JsonOption = False,
 ) -> None:
     """Batch-score a table inside the engine with the fitted model's scoring SQL."""
-    result = scoring.score(load_project(project), model, table=table, into=into, reasons=reasons,
-                           allow_stale=allow_stale, progress=None if json_output else _progress)
+    from .fitted.scoring import score as score_table
+    from .project import load_project
+
+    result = score_table(load_project(project), model, table=table, into=into, reasons=reasons,
+                         allow_stale=allow_stale, progress=None if json_output else _progress)
     if json_output:
         _print_json(result.as_dict())
         return
@@ -194,6 +210,8 @@ def _number(value, digits: int = 4) -> str:
 
 def coefficient_table(fitted: FittedModel) -> Table:
     """The coefficient table practitioners compare with R's glm summary, plus effects per step."""
+    from rich.table import Table
+
     statistic = fitted.fit.get("statistic", "z")
     table = Table(title=f"{fitted.model}: {fitted.family} ({fitted.link} link), {fitted.rows['train']} training rows")
     for heading in ("term", "estimate", "std error", statistic, "p", "95% interval", "effect per step", "VIF"):
@@ -227,10 +245,13 @@ ModelsArgument = Annotated[Optional[list[str]], typer.Argument(help="Models to f
 @app.command()
 def fit(models: ModelsArgument = None, project: ProjectOption = None, json_output: JsonOption = False) -> None:
     """Fit models in the engine, write fitted/MODEL.yaml and print the coefficient table."""
+    from . import api
+    from .project import load_project
+
     _print_outcomes(api.fit(load_project(project), models, progress=None if json_output else _progress), json_output)
 
 
-def _print_outcomes(outcomes: list[api.FitOutcome], json_output: bool) -> None:
+def _print_outcomes(outcomes: list[FitOutcome], json_output: bool) -> None:
     if json_output:
         _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed, "fitted": asdict(o.fitted)} for o in outcomes])
         return
@@ -246,7 +267,12 @@ def explain(
     json_output: JsonOption = False,
 ) -> None:
     """Show a term's definition with its coefficients and notes in every model, or a whole model."""
+    from rich.syntax import Syntax
+
+    from . import api
+    from .fitted import read_fitted
     from .fitted.explain import explain as describe
+    from .project import load_project
 
     loaded = load_project(project)
     found = describe(api.check(loaded), name)
@@ -280,6 +306,9 @@ def explain(
 @app.command()
 def refresh(project: ProjectOption = None, json_output: JsonOption = False) -> None:
     """Check, then bring every stale design table and fit up to date."""
+    from . import api
+    from .project import load_project
+
     outcomes = api.refresh(load_project(project), progress=None if json_output else _progress)
     if not outcomes and not json_output:
         out.print("everything is up to date")
@@ -294,12 +323,14 @@ def report(
     against: Annotated[Optional[str], typer.Option("--against", help="Compare with this model of the same target.")] = None,
     pair: Annotated[Optional[str], typer.Option("--pair", help="Two numeric inputs for the decision surface, as a,b.")] = None,
     json_output: JsonOption = False,
+    allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Report even if the model changed since its fit (the page says what changed).")] = False,
 ) -> None:
     """Write a self-contained HTML report of a fitted model with plots, optionally compared with another model."""
     from .fitted.report import write_report
+    from .project import load_project
 
     chosen = tuple(part.strip() for part in pair.split(",")) if pair is not None else None
-    path = write_report(load_project(project), model, against=against, pair=chosen, out=output)
+    path = write_report(load_project(project), model, against=against, pair=chosen, out=output, allow_stale=allow_stale)
     if json_output:
         _print_json({"model": model, "against": against, "path": str(path)})
         return
@@ -318,6 +349,7 @@ def drift(
 ) -> None:
     """Stability of each term and of the score in a batch against the training rows (population stability index)."""
     from .fitted.drift import drift as compare
+    from .project import load_project
 
     report = compare(load_project(project), model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
     if json_output:
@@ -338,6 +370,8 @@ def drift(
 
 def drift_table(report) -> Table:
     """One line per term (ranked by |shift|) and one for the score."""
+    from rich.table import Table
+
     table = Table(title=f"{report.model}: table {report.table}, {report.rows} rows against the training rows")
     for heading in ("rank", "term", "PSI", "reading", "shift", "NULL (training)", "below min", "above max"):
         table.add_column(heading, justify="left" if heading in ("term", "reading") else "right")
@@ -385,10 +419,14 @@ def diff(
         raise typer.Exit(1)
 
 
-def main() -> None:
-    """Console entry point: map user errors to exit 1 and bugs to exit 2, never a bare traceback."""
+def main(args: list[str] | None = None) -> None:
+    """Console entry point: map user errors to exit 1 and bugs to exit 2, never a bare traceback.
+
+    `args` are the command line's words (default: the process's); tests pass them to run a command in
+    process exactly as a user's would run.
+    """
     try:
-        status = app(standalone_mode=False)  # click returns the code of a typer.Exit instead of raising
+        status = app(args=args, standalone_mode=False)  # returns the code of a typer.Exit instead of raising
     except FeatpipeError as error:
         err.print(f"error: {error}", markup=False)
         sys.exit(1)
@@ -397,12 +435,10 @@ def main() -> None:
     except (typer.Abort, KeyboardInterrupt):
         err.print("interrupted")
         sys.exit(1)
+    except typer.TyperException as error:  # wrong or missing arguments: the usage and what is wrong, exit 2
+        error.show()
+        sys.exit(error.exit_code if error.exit_code != 0 else 1)
     except Exception as error:  # noqa: BLE001 - the last line of defence
-        import click
-
-        if isinstance(error, click.ClickException):
-            error.show()
-            sys.exit(error.exit_code if error.exit_code != 0 else 1)
         err.print(f"internal error: {type(error).__name__}: {error}", markup=False)
         if os.environ.get("FEATPIPE_DEBUG"):
             traceback.print_exc()

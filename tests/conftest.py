@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import contextlib
 import shutil
+import subprocess
+import sys
 import textwrap
 from pathlib import Path
 
 import pytest
+from typer.testing import CliRunner
 
 pytest_plugins = ["fixtures_engines"]
 
@@ -88,3 +92,19 @@ def copy_demo(name: str, destination: Path) -> Path:
     target = destination / name
     shutil.copytree(DEMOS / name, target, ignore=shutil.ignore_patterns("build"))
     return target
+
+
+def run_featpipe(*args: str, cwd: Path | None = None, env: dict[str, str] | None = None) -> subprocess.CompletedProcess:
+    """`featpipe ARGS` in this process, through the console entry point `featpipe.cli.main`, so the exit
+    status, standard output and standard error are the ones a user sees, without a new interpreter's start."""
+    from featpipe.cli import main
+
+    with CliRunner().isolation(env={"FEATPIPE_DEBUG": "", **(env or {})}) as (stdout, stderr, _mixed), \
+            contextlib.chdir(cwd or Path.cwd()):
+        try:
+            main(list(args))
+        except SystemExit as done:  # main always exits, as the process would
+            status = done.code
+        sys.stdout.flush()
+        sys.stderr.flush()
+        return subprocess.CompletedProcess(["featpipe", *args], status, stdout.getvalue().decode(), stderr.getvalue().decode())

@@ -1,4 +1,9 @@
-"""The command line as a user runs it: exit codes, messages, JSON and annotations."""
+"""The command line as a user runs it: exit codes, messages, JSON and annotations.
+
+Commands run in this process through the console entry point (`run`, conftest.run_featpipe). A new
+process runs them where only one shows the behaviour: the whole job as typed, a second process
+holding the database, and which libraries a command loads.
+"""
 
 from __future__ import annotations
 
@@ -6,18 +11,45 @@ import json
 import os
 import subprocess
 import sys
-from pathlib import Path
 
-from conftest import write_project
+from conftest import copy_demo, write_project
+from conftest import run_featpipe as run
 
 import featpipe
 
-FEATPIPE = [sys.executable, "-m", "featpipe"]
+# What fitting, scoring, reports and engines need; `featpipe check` and `featpipe --help` must not load it.
+HEAVY = {"pandas", "numpy", "scipy", "matplotlib", "pyarrow", "statsmodels", "sklearn", "jinja2", "duckdb"}
 
 
-def run(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
-    return subprocess.run([*FEATPIPE, *args], capture_output=True, text=True, cwd=cwd, timeout=120,
-                          env={**os.environ, "FEATPIPE_DEBUG": ""})
+def run_process(*args: str) -> subprocess.CompletedProcess:
+    """`featpipe ARGS` in a new Python process, as typed at a shell."""
+    return subprocess.run([sys.executable, "-m", "featpipe", *args], capture_output=True, text=True, timeout=120,
+                          env={**os.environ, "FEATPIPE_DEBUG": ""}, check=False)
+
+
+def modules_loaded_by(*args: str) -> set[str]:
+    """Every module a fresh interpreter holds after `featpipe ARGS` ran in it (and exited with 0)."""
+    script = ("import featpipe.cli, sys\n"
+              "try:\n    featpipe.cli.main(sys.argv[1:])\n"
+              "except SystemExit as done:\n    print(done.code, *sorted(sys.modules))\n")
+    done = subprocess.run([sys.executable, "-c", script, *args], capture_output=True, text=True, timeout=120, check=True)
+    status, *modules = done.stdout.splitlines()[-1].split()
+    assert status == "0", done.stderr
+    return set(modules)
+
+
+def test_check_and_help_load_only_what_they_use(tmp_path):
+    root = copy_demo("lease_default", tmp_path)
+    assert modules_loaded_by("check", "-p", str(root)) & {*HEAVY, "pygments", "rich.syntax", "rich.table"} == set()
+    # typer draws the help with rich's tables (and so pygments); it needs no project, SQL or YAML.
+    assert modules_loaded_by("--help") & {*HEAVY, "featpipe.api", "sqlglot", "yaml"} == set()
+
+
+def test_a_wrong_option_shows_the_usage_not_an_internal_error():
+    result = run("check", "--bogus")
+    assert result.returncode == 2
+    assert result.stderr.endswith("\n\nError: No such option: --bogus\n")
+    assert "internal error" not in result.stderr
 
 
 def test_check_refuses_a_file_reading_function_and_runs_nothing(tmp_path):
@@ -71,7 +103,7 @@ def test_a_second_process_holding_the_database_gets_a_clear_message(project_dir)
         stdout=subprocess.PIPE, text=True)
     try:
         assert holder.stdout.readline().strip() == "held"
-        result = run("compute", "-p", str(project_dir))
+        result = run_process("compute", "-p", str(project_dir))
     finally:
         holder.kill()
     assert result.returncode == 1
@@ -85,11 +117,10 @@ def test_an_unknown_model_is_a_user_error(project_dir):
 
 
 def test_the_whole_job_from_the_command_line(tmp_path):
-    """fit, explain, score, drift, report and sql on a copy of the lease demo, as a user types them."""
-    from conftest import copy_demo
-
+    """refresh (in its own process), explain, score, drift, report and sql on a copy of the lease demo."""
     root = copy_demo("lease_default", tmp_path)
-    assert run("refresh", "-p", str(root)).returncode == 0
+    refreshed = run_process("refresh", "-p", str(root))
+    assert refreshed.returncode == 0, refreshed.stderr
     assert (root / "build" / "reports" / "default_risk.html").is_file()
     assert "everything is up to date" in run("refresh", "-p", str(root)).stdout
 
@@ -113,8 +144,6 @@ def test_the_whole_job_from_the_command_line(tmp_path):
 
 
 def test_drift_fails_above_the_limit_and_diff_fails_on_stale(tmp_path):
-    from conftest import copy_demo
-
     root = copy_demo("fleet_claims", tmp_path)
     git = ["git", "-c", "user.name=t", "-c", "user.email=t@example.invalid"]
     assert run("fit", "-p", str(root)).returncode == 0

@@ -83,6 +83,34 @@ def test_duplicate_names_across_files(tmp_path):
         "terms/extra.sql:1:18: term 'item_price' is already defined at terms/basket.sql:4:32; names are unique across the project"]
 
 
+def test_a_term_named_like_a_scoring_output_column(tmp_path):
+    # Before this check, a term named status failed `featpipe score` with an engine's cast error.
+    # Names are compared without case (the parser lowers them): Prediction is the prediction column too.
+    assert errors_of(tmp_path, extra="SELECT\n  amount * 2 AS status,\n  items AS Prediction\nFROM orders\n") == [
+        "terms/extra.sql:2:17: term name 'status' is a column the scoring query writes; choose another name",
+        "terms/extra.sql:3:12: term name 'prediction' is a column the scoring query writes; choose another name"]
+
+
+def test_a_term_named_linear_predictor(tmp_path):
+    # Before this check, such a term silently took the linear predictor's training profile.
+    assert errors_of(tmp_path, extra="SELECT amount * 2 AS linear_predictor FROM orders") == [
+        "terms/extra.sql:1:22: term name 'linear_predictor' is a column the scoring query writes; choose another name"]
+
+
+def test_a_term_named_like_a_contribution_or_a_reason_code(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT\n  amount AS contribution_x,\n  items AS reason_2,\n  items AS reason_code\nFROM orders\n") == [
+        "terms/extra.sql:2:13: term name 'contribution_x' has the form of the scoring query's contribution_<term> "
+        "columns; choose another name",
+        "terms/extra.sql:3:12: term name 'reason_2' has the form of the scoring query's reason_<k> columns; "
+        "choose another name"]
+
+
+def test_a_term_name_holding_a_double_underscore(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT amount * 2 AS amount__doubled FROM orders") == [
+        "terms/extra.sql:1:22: term name 'amount__doubled' holds '__', which the drift query's <name>__<what> "
+        "columns use; choose another name"]
+
+
 def test_arithmetic_on_text(tmp_path):
     assert errors_of(tmp_path, extra="SELECT\n  amount + region AS odd\nFROM orders\n") == [
         "terms/extra.sql:2:12: arithmetic on text: 'region' is TEXT; compare it to a value "

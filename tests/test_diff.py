@@ -15,6 +15,7 @@ from pathlib import Path
 import pytest
 from conftest import MODEL_YAML, write_project
 
+from featpipe.api import check_report
 from featpipe.compiler import compile_project
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, write_fitted
@@ -54,6 +55,7 @@ def fitted_model(project: Path, estimates: dict[str, tuple[float, float, float]]
         fit={"converged": True, "iterations": 5, "deviance": 7.5, "aic": 15.5},
         terms=tuple(terms),
         metrics={"rows": 7 - train, "auc": auc, "calibration": [{"decile": 1, "rows": 1, "mean_predicted": auc / 2}]},
+        depends_on=model.dependencies,
     )
 
 
@@ -183,6 +185,23 @@ def test_semantic_edit_reports_both_sqls_and_the_stale_fit(tmp_path):
     assert data["stale"] == [{"model": "returns", "file": "fitted/returns.yaml",
                               "reasons": ["term 'item_price' changed meaning"], "caused_by_change": True}]
     assert data["left_stale"] == ["returns"]
+
+
+def test_a_spec_only_edit_leaves_the_fit_stale_for_the_same_reason_check_gives(tmp_path):
+    project = committed_project(tmp_path)
+    edit(project, "specs/returns.yaml", "family: binomial\n", "family: binomial\nthreshold: 0.3\n")
+    _, text, _, data = diff_all(project)
+
+    reason = "threshold changed from 0.5 to 0.3"  # 0.5 is the default threshold
+    assert data["terms"] == []
+    assert data["models"] == [{"name": "returns", "change": "changed", "terms_added": [], "terms_removed": [],
+                               "terms_changed": [], "spec_changed": ["threshold"]}]
+    assert data["stale"] == [{"model": "returns", "file": "fitted/returns.yaml", "reasons": [reason],
+                              "caused_by_change": True}]
+    assert data["left_stale"] == ["returns"]
+    assert "  returns  spec changed: threshold" in text
+    assert f"  fitted/returns.yaml  {reason}; left stale by this change" in text
+    assert check_report(load_project(project)).stale == (f"fitted/returns.yaml is stale: {reason}",)
 
 
 def test_edit_of_a_used_term_changes_the_user_through_it(tmp_path):

@@ -33,10 +33,12 @@ from featpipe.fitted.drift import (
     MODERATE,
     STABLE,
     drift,
+    monitored,
     read_drift,
     reading,
     render_drift_sql,
 )
+from featpipe.fitted.scoring import scoring_model
 from featpipe.project import load_project
 from featpipe.sqlgen.common import column
 from featpipe.sqlgen.drift import drift_query, output_names
@@ -66,7 +68,7 @@ def one_term_fit() -> FittedModel:
 
 
 def run_on(engine, fitted: FittedModel, table: str):
-    query = drift_query(fitted, table=table)
+    query = drift_query(scoring_model(fitted), monitored(fitted), table=table)
     (row,) = engine.fetch(query)
     return read_drift(fitted, table, output_names(query), row)
 

@@ -12,7 +12,7 @@ import pytest
 from test_glm_reference import design_frame, duckdb_design
 
 from featpipe.errors import FeatpipeError
-from featpipe.glm import fit_glm
+from featpipe.glm import Glm
 from featpipe.project import Penalty
 
 ROWS = 200
@@ -26,7 +26,7 @@ def rng():
 def fit_error(tmp_path, terms, y, family="binomial", source="auto", **frame) -> str:
     engine, layout = duckdb_design(design_frame(terms, y, **frame), tmp_path)
     with pytest.raises(FeatpipeError) as raised:
-        fit_glm(engine, layout, family, source=source)
+        Glm(family, source=source).fit(engine, layout)
     return str(raised.value)
 
 
@@ -48,9 +48,9 @@ def test_quasi_complete_separation_and_the_penalty_that_fixes_it(tmp_path, rng):
     y = np.where(flag == 1, 1.0, (rng.uniform(size=ROWS) < 0.3).astype(float))  # flag = 1: always an event
     engine, layout = duckdb_design(design_frame({"flag": flag, "noise": noise}, y), tmp_path)
     with pytest.raises(FeatpipeError, match=r"the estimates of 'flag' \(estimate per sd [0-9.]+, z 0\.00\) run away"):
-        fit_glm(engine, layout, "binomial")
-    penalized = fit_glm(engine, layout, "binomial", Penalty(l2=0.01))
-    assert penalized.converged and np.isfinite(penalized.coef).all()
+        Glm("binomial").fit(engine, layout)
+    penalized = Glm("binomial", Penalty(l2=0.01)).fit(engine, layout)
+    assert penalized.convergence.converged and np.isfinite(penalized.estimates).all()
     assert not any("run away" in warning for warning in penalized.warnings)
 
 
@@ -86,7 +86,7 @@ def test_term_constant_on_the_training_rows(tmp_path, rng):
     frame.loc[:9, "k"] = 5.0  # varies only on held-out rows
     engine, layout = duckdb_design(frame, tmp_path)
     with pytest.raises(FeatpipeError) as raised:
-        fit_glm(engine, layout, "binomial")
+        Glm("binomial").fit(engine, layout)
     assert str(raised.value) == (
         "design table design_m: term(s) constant on all 190 training rows ('k' = 3), so their coefficients cannot "
         "be told apart from the intercept; remove them from the model's terms or check their definitions"
@@ -97,9 +97,9 @@ def test_non_convergence_is_a_warning_on_the_fit(tmp_path, rng):
     x = rng.normal(size=ROWS)
     y = (rng.uniform(size=ROWS) < 1 / (1 + np.exp(-2 * x))).astype(float)
     engine, layout = duckdb_design(design_frame({"x": x}, y), tmp_path)
-    fit = fit_glm(engine, layout, "binomial", max_iter=2)
-    assert not fit.converged
-    assert fit.iterations == 2
+    fit = Glm("binomial", max_iter=2).fit(engine, layout)
+    assert not fit.convergence.converged
+    assert fit.convergence.iterations == 2
     assert fit.warnings[0].startswith(
         "IRLS did not converge within max_iter=2 iterations: the last step still changed the deviance by "
     )
@@ -140,15 +140,15 @@ def test_no_training_rows(tmp_path, rng):
     frame["_holdout"] = True
     engine, layout = duckdb_design(frame, tmp_path)
     with pytest.raises(FeatpipeError, match="design table design_m has no training rows: every row is held out"):
-        fit_glm(engine, layout, "binomial")
+        Glm("binomial").fit(engine, layout)
 
 
 def test_few_events_per_term_is_a_warning(tmp_path, rng):
     y = np.zeros(ROWS)
     y[rng.choice(ROWS, 12, replace=False)] = 1.0  # 12 events for 3 terms
     engine, layout = duckdb_design(design_frame({f"x{j}": rng.normal(size=ROWS) for j in range(3)}, y), tmp_path)
-    fit = fit_glm(engine, layout, "binomial")
-    assert fit.converged
+    fit = Glm("binomial").fit(engine, layout)
+    assert fit.convergence.converged
     assert fit.warnings == (
         "only 12 events (rows of the rarer outcome) for 3 terms (4.0 per term); with fewer than 10 per term "
         "(common practice) estimates are unstable and look better than they are: remove terms, add data, or add "

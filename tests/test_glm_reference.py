@@ -18,7 +18,7 @@ from statsmodels.stats.outliers_influence import variance_inflation_factor
 
 from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.glm import fit_glm, fit_glm_arrays
+from featpipe.glm import Glm
 from featpipe.glm.families import get_family
 from featpipe.glm.sources import (
     Batch,
@@ -126,23 +126,29 @@ def statsmodels_fit(family: str, x, y, offset=None, weight=None):
     return model.fit(tol=1e-13, use_t=family == "gaussian")
 
 
+def inference_of(fit, figure: str) -> list[float]:
+    """One Wald figure (std_error, statistic, p_value, ci_low, ci_high) of every coefficient, intercept first."""
+    return [getattr(coefficient.inference, figure) for coefficient in fit.coefficients]
+
+
 def assert_matches(fit, reference, rtol=1e-6):
     # Reference: statsmodels GLM results on the same training rows.
-    np.testing.assert_allclose(fit.coef, reference.params, rtol=rtol, atol=1e-12)
-    np.testing.assert_allclose(fit.stderr, reference.bse, rtol=rtol)
-    np.testing.assert_allclose(fit.statistic, reference.tvalues, rtol=rtol, atol=1e-10)
-    np.testing.assert_allclose(fit.p_value, reference.pvalues, rtol=1e-5, atol=1e-12)
+    np.testing.assert_allclose(fit.estimates, reference.params, rtol=rtol, atol=1e-12)
+    np.testing.assert_allclose(inference_of(fit, "std_error"), reference.bse, rtol=rtol)
+    np.testing.assert_allclose(inference_of(fit, "statistic"), reference.tvalues, rtol=rtol, atol=1e-10)
+    np.testing.assert_allclose(inference_of(fit, "p_value"), reference.pvalues, rtol=1e-5, atol=1e-12)
     intervals = reference.conf_int()
-    np.testing.assert_allclose(fit.ci_low, intervals[:, 0], rtol=rtol)
-    np.testing.assert_allclose(fit.ci_high, intervals[:, 1], rtol=rtol)
-    assert fit.deviance == pytest.approx(reference.deviance, rel=rtol)
-    assert fit.null_deviance == pytest.approx(reference.null_deviance, rel=rtol)
-    assert fit.llf == pytest.approx(reference.llf, rel=rtol)
-    assert fit.aic == pytest.approx(reference.aic, rel=rtol)
-    assert fit.bic == pytest.approx(reference.bic_llf, rel=rtol)
-    assert fit.dispersion == pytest.approx(reference.scale, rel=rtol)
-    assert fit.n_train == reference.nobs
-    assert fit.converged
+    np.testing.assert_allclose(inference_of(fit, "ci_low"), intervals[:, 0], rtol=rtol)
+    np.testing.assert_allclose(inference_of(fit, "ci_high"), intervals[:, 1], rtol=rtol)
+    figures = fit.goodness_of_fit
+    assert figures.deviance == pytest.approx(reference.deviance, rel=rtol)
+    assert figures.null_deviance == pytest.approx(reference.null_deviance, rel=rtol)
+    assert figures.log_likelihood == pytest.approx(reference.llf, rel=rtol)
+    assert figures.aic == pytest.approx(reference.aic, rel=rtol)
+    assert figures.bic == pytest.approx(reference.bic_llf, rel=rtol)
+    assert figures.dispersion == pytest.approx(reference.scale, rel=rtol)
+    assert fit.rows.n == reference.nobs
+    assert fit.convergence.converged
 
 
 @pytest.mark.parametrize("family", ["binomial", "poisson", "gaussian"])
@@ -150,23 +156,23 @@ def test_offset_and_weights_match_statsmodels_on_both_sources(family, tmp_path):
     terms, x, y, offset, weight = random_case(family)
     reference = statsmodels_fit(family, x, y, offset, weight)
     engine, layout = duckdb_design(design_frame(terms, y, offset, weight, held_out=40), tmp_path)
-    streamed = fit_glm(engine, layout, family)  # DuckDB: batches streamed through numpy
-    aggregated = fit_glm(engine, layout, family, source="sql")  # one aggregate query per step
-    assert (streamed.source, aggregated.source) == ("stream", "sql")
+    streamed = Glm(family).fit(engine, layout)  # DuckDB: batches streamed through numpy
+    aggregated = Glm(family, source="sql").fit(engine, layout)  # one aggregate query per step
+    assert (streamed.convergence.source, aggregated.convergence.source) == ("stream", "sql")
     for fit in (streamed, aggregated):
         assert fit.names == ("(intercept)", "ratio", "amount", "flag")
         assert fit.statistic_name == ("t" if family == "gaussian" else "z")
         assert_matches(fit, reference)
     # The two sources compute the same sums in a different order: same answer to rounding.
-    np.testing.assert_allclose(streamed.coef, aggregated.coef, rtol=1e-9)
-    np.testing.assert_allclose(streamed.stderr, aggregated.stderr, rtol=1e-9)
+    np.testing.assert_allclose(streamed.estimates, aggregated.estimates, rtol=1e-9)
+    np.testing.assert_allclose(inference_of(streamed, "std_error"), inference_of(aggregated, "std_error"), rtol=1e-9)
 
 
 @pytest.mark.parametrize("family", ["binomial", "poisson", "gaussian"])
 def test_sqlite_runs_the_same_statistics_query(family):
     terms, x, y, offset, weight = random_case(family, seed=5, rows=300)
     frame = design_frame(terms, y, offset, weight, held_out=20)
-    fit = fit_glm(SQLiteDesign(frame), layout_of(frame), family, source="sql")
+    fit = Glm(family, source="sql").fit(SQLiteDesign(frame), layout_of(frame))
     assert_matches(fit, statsmodels_fit(family, x, y, offset, weight))
 
 
@@ -177,8 +183,8 @@ def test_postgresql_runs_the_same_statistics_query(family, postgres_engine, tmp_
     path = tmp_path / "design.parquet"
     frame.to_parquet(path, index=False)
     postgres_engine.load_file("design_m", path)
-    fit = fit_glm(postgres_engine, layout_of(frame), family)
-    assert fit.source == "sql"
+    fit = Glm(family).fit(postgres_engine, layout_of(frame))
+    assert fit.convergence.source == "sql"
     assert_matches(fit, statsmodels_fit(family, x, y, offset, weight))
 
 
@@ -207,32 +213,53 @@ def test_sql_and_numpy_statistics_agree_row_for_row(tmp_path):
 def test_warm_start_from_a_sample_reads_the_table_fewer_times(tmp_path):
     terms, x, y, _, _ = random_case("binomial", seed=3, rows=4000)
     engine, layout = duckdb_design(design_frame(terms, y), tmp_path)
-    cold = fit_glm(engine, layout, "binomial", sample_rows=5000)  # sample holds every row: no warm start
-    warm = fit_glm(engine, layout, "binomial", sample_rows=1000)
-    assert warm.iterations < cold.iterations
-    assert warm.passes_over_data == warm.iterations  # the first IRLS pass also gathers the profile
-    np.testing.assert_allclose(warm.coef, cold.coef, rtol=1e-9)
+    cold = Glm("binomial", sample_rows=5000).fit(engine, layout)  # sample holds every row: no warm start
+    warm = Glm("binomial", sample_rows=1000).fit(engine, layout)
+    assert warm.convergence.iterations < cold.convergence.iterations
+    assert warm.convergence.passes_over_data == warm.convergence.iterations  # the first IRLS pass also gathers the profile
+    np.testing.assert_allclose(warm.estimates, cold.estimates, rtol=1e-9)
     assert_matches(warm, statsmodels_fit("binomial", x, y))
+
+
+def test_a_fitter_holds_parameters_and_each_fit_returns_its_own_result(tmp_path):
+    # A bad parameter is refused when the fitter is made, before any engine or data is touched.
+    with pytest.raises(ValueError, match="sample_rows must be at least 100: the sample also sets the working scaling"):
+        Glm("poisson", sample_rows=99)
+    with pytest.raises(ValueError, match="unknown statistics source 'spark'; use one of auto, sql, stream"):
+        Glm("poisson", source="spark")
+    glm = Glm("poisson")
+    cases = [random_case("poisson", seed=13), random_case("poisson", seed=14, rows=300)]
+    tables = [
+        duckdb_design(design_frame(terms, y, offset, weight), tmp_path, f"design_{number}")
+        for number, (terms, _, y, offset, weight) in enumerate(cases)
+    ]
+    first, second = (glm.fit(engine, layout) for engine, layout in tables)
+    for fit, (_, x, y, offset, weight) in zip((first, second), cases, strict=True):
+        assert_matches(fit, statsmodels_fit("poisson", x, y, offset, weight))
+    assert (first.rows.n, second.rows.n) == (600, 300)
+    # Nothing learned from the second data set stays with the fitter: the first fit comes back exactly.
+    assert glm.fit(*tables[0]) == first
 
 
 def test_arrays_and_engine_give_the_same_fit(tmp_path):
     terms, x, y, offset, weight = random_case("poisson", seed=8)
     engine, layout = duckdb_design(design_frame(terms, y, offset, weight), tmp_path)
-    in_engine = fit_glm(engine, layout, "poisson")
-    in_memory = fit_glm_arrays(x, y, "poisson", offset=offset, weights=weight, names=tuple(terms))
+    in_engine = Glm("poisson").fit(engine, layout)
+    in_memory = Glm("poisson").fit_arrays(x, y, offset=offset, weights=weight, names=tuple(terms))
     assert in_memory.names == in_engine.names
-    np.testing.assert_allclose(in_memory.coef, in_engine.coef, rtol=1e-9)
-    assert in_memory.aic == pytest.approx(in_engine.aic, rel=1e-12)
+    np.testing.assert_allclose(in_memory.estimates, in_engine.estimates, rtol=1e-9)
+    assert in_memory.goodness_of_fit.aic == pytest.approx(in_engine.goodness_of_fit.aic, rel=1e-12)
 
 
 def test_vif_is_the_textbook_vif_for_an_unweighted_gaussian_fit():
     terms, x, y, _, _ = random_case("gaussian", seed=2)
-    fit = fit_glm_arrays(x, y, "gaussian", names=tuple(terms))
+    fit = Glm("gaussian").fit_arrays(x, y, names=tuple(terms))
     exog = sm.add_constant(x)
     # Reference: statsmodels' variance_inflation_factor (regression of each term on the others).
     expected = [variance_inflation_factor(exog, j) for j in range(1, exog.shape[1])]
-    assert fit.vif[0] is None
-    np.testing.assert_allclose(fit.vif[1:], expected, rtol=1e-9)
+    intercept, *slopes = fit.coefficients
+    assert intercept.vif is None
+    np.testing.assert_allclose([slope.vif for slope in slopes], expected, rtol=1e-9)
 
 
 def test_longley_matches_nist_certified_values(tmp_path):
@@ -240,7 +267,7 @@ def test_longley_matches_nist_certified_values(tmp_path):
     terms = {name: data.exog[name].to_numpy() for name in data.exog.columns}
     engine, layout = duckdb_design(design_frame(terms, data.endog.to_numpy()), tmp_path)
     for source in ("stream", "sql"):
-        fit = fit_glm(engine, layout, "gaussian", source=source)
+        fit = Glm("gaussian", source=source).fit(engine, layout)
         # NIST StRD Longley certified values (recalled from memory; they agree digit for digit with
         # the NIST values statsmodels ships in statsmodels/regression/tests/results/results_regression.py).
         certified_coef = [-3482258.63459582, 15.0618722713733, -0.358191792925910e-01, -2.02022980381683,
@@ -248,10 +275,10 @@ def test_longley_matches_nist_certified_values(tmp_path):
         certified_se = [890420.383607373, 84.9149257747669, 0.334910077722432e-01, 0.488399681651699,
                         0.214274163161675, 0.226073200069370, 455.478499142212]
         certified_residual_sd = 304.854073561965
-        np.testing.assert_allclose(fit.coef, certified_coef, rtol=1e-8)
-        np.testing.assert_allclose(fit.stderr, certified_se, rtol=1e-8)
-        assert math.sqrt(fit.dispersion) == pytest.approx(certified_residual_sd, rel=1e-9)
-        assert fit.df_residual == 9
+        np.testing.assert_allclose(fit.estimates, certified_coef, rtol=1e-8)
+        np.testing.assert_allclose(inference_of(fit, "std_error"), certified_se, rtol=1e-8)
+        assert math.sqrt(fit.goodness_of_fit.dispersion) == pytest.approx(certified_residual_sd, rel=1e-9)
+        assert fit.rows.df_residual == 9
 
 
 def test_dobson_poisson_example(tmp_path):
@@ -265,18 +292,18 @@ def test_dobson_poisson_example(tmp_path):
         "treatment2": (treatment == 2).astype(float), "treatment3": (treatment == 3).astype(float),
     }
     engine, layout = duckdb_design(design_frame(terms, counts), tmp_path)
-    fit = fit_glm(engine, layout, "poisson")
+    fit = Glm("poisson").fit(engine, layout)
     # As R prints it (recalled from memory): residual deviance 5.1291 on 4 df, null deviance 10.5814
     # on 8 df, AIC 56.761; intercept 3.045 (SE 0.1709), outcome2 -0.4543 (0.2022), outcome3 -0.2930 (0.1927).
-    assert round(fit.deviance, 4) == 5.1291
-    assert fit.df_residual == 4
-    assert round(fit.null_deviance, 4) == 10.5814
-    assert round(fit.aic, 2) == 56.76
-    np.testing.assert_allclose(fit.coef[:3], [3.045, -0.4543, -0.2930], atol=5e-4)
-    np.testing.assert_allclose(fit.stderr[:3], [0.1709, 0.2022, 0.1927], atol=5e-5)
+    assert round(fit.goodness_of_fit.deviance, 4) == 5.1291
+    assert fit.rows.df_residual == 4
+    assert round(fit.goodness_of_fit.null_deviance, 4) == 10.5814
+    assert round(fit.goodness_of_fit.aic, 2) == 56.76
+    np.testing.assert_allclose(fit.estimates[:3], [3.045, -0.4543, -0.2930], atol=5e-4)
+    np.testing.assert_allclose(inference_of(fit, "std_error")[:3], [0.1709, 0.2022, 0.1927], atol=5e-5)
     # Closed form: with no treatment effect in the data, the outcome means are the fitted values.
-    assert fit.coef[0] == pytest.approx(math.log(21.0), rel=1e-12)
-    np.testing.assert_allclose(fit.coef[3:], [0.0, 0.0], atol=1e-12)
+    assert fit.estimates[0] == pytest.approx(math.log(21.0), rel=1e-12)
+    np.testing.assert_allclose(fit.estimates[3:], [0.0, 0.0], atol=1e-12)
     assert_matches(fit, statsmodels_fit("poisson", np.column_stack(list(terms.values())), np.array(counts, float)))
 
 
@@ -284,11 +311,11 @@ def test_spector_mazzeo_logit(tmp_path):
     data = sm.datasets.spector.load_pandas()
     terms = {name: data.exog[name].to_numpy() for name in ("GPA", "TUCE", "PSI")}
     engine, layout = duckdb_design(design_frame(terms, data.endog.to_numpy()), tmp_path)
-    fit = fit_glm(engine, layout, "binomial")
+    fit = Glm("binomial").fit(engine, layout)
     # Greene, Econometric Analysis, logit of GRADE on GPA, TUCE, PSI (recalled from memory).
-    np.testing.assert_allclose(fit.coef, [-13.0213, 2.8261, 0.0952, 2.3787], atol=1e-4)
+    np.testing.assert_allclose(fit.estimates, [-13.0213, 2.8261, 0.0952, 2.3787], atol=1e-4)
     # Reference library: statsmodels' Logit on the same data.
     reference = sm.Logit(data.endog, sm.add_constant(data.exog[["GPA", "TUCE", "PSI"]])).fit(disp=0, tol=1e-12)
-    np.testing.assert_allclose(fit.coef, reference.params, rtol=1e-8)
-    np.testing.assert_allclose(fit.stderr, reference.bse, rtol=1e-6)
-    assert fit.llf == pytest.approx(reference.llf, rel=1e-10)
+    np.testing.assert_allclose(fit.estimates, reference.params, rtol=1e-8)
+    np.testing.assert_allclose(inference_of(fit, "std_error"), reference.bse, rtol=1e-6)
+    assert fit.goodness_of_fit.log_likelihood == pytest.approx(reference.llf, rel=1e-10)

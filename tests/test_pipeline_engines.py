@@ -31,8 +31,8 @@ from featpipe.fitted import file_hash
 from featpipe.fitted.drift import DriftReport, drift
 from featpipe.fitted.report import write_report
 from featpipe.fitted.scoring import score
+from featpipe.project.names import PREDICTION, STATUS
 from featpipe.sqlgen.common import alias, column
-from featpipe.sqlgen.score import PREDICTION, STATUS
 
 DUCKDB_ENGINE = {
     "lease_default": "  kind: duckdb\n  path: build/lease_default.duckdb\n",

@@ -91,3 +91,12 @@ def test_expectations_must_name_model_terms(tmp_path):
         "specs/returns.yaml:5:22: expected sign must be 'positive' or 'negative', not 'up'",
         "specs/returns.yaml:5:26: 'northern' in expect is not one of the model's terms",
     ]
+
+
+def test_a_key_column_named_like_a_scoring_output_is_refused_at_the_key(tmp_path):
+    # The scoring query writes the key next to `prediction`: two columns of one name would fail only at scoring time.
+    text = PROJECT_WITH_TYPO.replace("  pth: build/x.duckdb", "  path: build/x.duckdb").replace("order_id", "prediction")
+    root = write_project(tmp_path, {"featpipe.yaml": text})
+    assert errors_of(root) == [
+        "featpipe.yaml:7:10: key 'prediction' is a column the scoring query writes; "
+        "key the input by another column, or by a view that renames this one"]

@@ -18,18 +18,14 @@ import math
 import os
 import shutil
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
-from conftest import copy_demo
+from conftest import copy_demo, run_featpipe
 from fixtures_engines import free_port, postgres_programs, require_engine
 from sqlglot import exp
-from typer.testing import CliRunner
 
-from featpipe.cli import app
-from featpipe.sqlgen.drift import psi_column
-from featpipe.sqlgen.score import LINEAR_PREDICTOR, STATUS
+from featpipe.project.names import LINEAR_PREDICTOR, STATUS, psi_column
 
 NULL = "<null>"  # how psql is told to print NULL, so it differs from an empty text
 POSTGRES_ENGINE = "  kind: postgres\n  dsn: ${FEATPIPE_TEST_DSN}\n"
@@ -78,8 +74,8 @@ def run_psql(sql_file: Path, dsn: str) -> list[dict[str, str | None]]:
 
 def featpipe(*args: str) -> str:
     """Run a featpipe command in this process (the CLI the user types); its standard output."""
-    result = CliRunner().invoke(app, list(args))
-    assert result.exit_code == 0, (result.output, result.exception)
+    result = run_featpipe(*args)
+    assert result.returncode == 0, result.stderr
     return result.stdout
 
 
@@ -151,11 +147,8 @@ def test_exported_drift_sql_runs_in_psql_and_gives_featpipe_drift(postgres_demo,
 # ---------------------------------------------------------------- engine errors at the command line
 
 
-def compute_in_a_subprocess(root: Path, dsn: str) -> subprocess.CompletedProcess:
-    return subprocess.run(
-        [sys.executable, "-m", "featpipe", "compute", "-p", str(root)], capture_output=True, text=True,
-        timeout=120, env={**os.environ, "FEATPIPE_TEST_DSN": dsn, "FEATPIPE_DEBUG": ""},
-    )
+def compute_with_dsn(root: Path, dsn: str) -> subprocess.CompletedProcess:
+    return run_featpipe("compute", "-p", str(root), env={"FEATPIPE_TEST_DSN": dsn})
 
 
 @pytest.fixture
@@ -181,7 +174,7 @@ def assert_one_line_engine_error(result: subprocess.CompletedProcess, *expected:
 def test_compute_with_the_server_stopped(postgres_project):
     """A port where nothing listens: one line naming the address and what to check."""
     port = free_port()
-    result = compute_in_a_subprocess(postgres_project, f"host=127.0.0.1 port={port} user=postgres dbname=postgres")
+    result = compute_with_dsn(postgres_project, f"host=127.0.0.1 port={port} user=postgres dbname=postgres")
     assert_one_line_engine_error(result, f"no server answers at 127.0.0.1:{port}", "is the server running?")
     assert not (postgres_project / "build").exists()
 
@@ -191,7 +184,7 @@ def test_compute_with_a_wrong_password(postgres_project, postgres_engine):
     from psycopg.conninfo import make_conninfo
 
     dsn = make_conninfo(postgres_engine.dsn, password="not-the-password")
-    result = compute_in_a_subprocess(postgres_project, dsn)
+    result = compute_with_dsn(postgres_project, dsn)
     assert_one_line_engine_error(result, "password authentication failed for user 'postgres'",
                                  "check the user and password")
     assert "not-the-password" not in result.stderr

@@ -36,6 +36,7 @@ from featpipe.fitted.report import report_path, write_report
 from featpipe.fitted.report.compare import likelihood_ratio
 from featpipe.fitted.report.data import default_pair, gather, term_inputs
 from featpipe.fitted.report.render import CURVES_ID, metric_text
+from featpipe.fitted.scoring import scoring_model
 from featpipe.sqlgen.score import score_query
 
 FORBIDDEN = ("http://", "https://", "//cdn", "<script src", "<link", "xlink:", "<?xml", "<!--")
@@ -113,7 +114,7 @@ def scored_by_duckdb(fitted, grid: pd.DataFrame) -> np.ndarray:
     try:
         connection.register("grid_frame", grid)
         connection.execute("CREATE TABLE grid AS SELECT * FROM grid_frame")
-        scored = connection.execute(score_query(fitted, table="grid").sql(dialect="duckdb", identify=True)).df()
+        scored = connection.execute(score_query(scoring_model(fitted), table="grid").sql(dialect="duckdb", identify=True)).df()
     finally:
         connection.close()
     return scored.sort_values(fitted.key)["prediction"].to_numpy(dtype=float)
@@ -343,8 +344,11 @@ def test_a_chosen_pair_and_a_stale_fit_show_in_the_report(demos, tmp_path):
     original = terms.read_text(encoding="utf-8")
     terms.write_text(original.replace("LN(CASE WHEN monthly_revenue > 0", "LN(CASE WHEN monthly_revenue > 1"), encoding="utf-8")
     try:
+        with pytest.raises(FeatpipeError, match=r"fitted/default_raw.yaml is stale: term 'log_revenue' changed meaning; "
+                                                r"run `featpipe fit .*--allow-stale"):
+            write_report(api.load_project(lease.root), "default_raw", out=tmp_path / "raw.html")
         written = write_report(api.load_project(lease.root), "default_raw", pair=("term_months", "firm_age_years"),
-                               out=tmp_path / "raw.html")
+                               out=tmp_path / "raw.html", allow_stale=True)
     finally:
         terms.write_text(original, encoding="utf-8")
     text = text_of(page(written))

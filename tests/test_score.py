@@ -8,6 +8,7 @@ for a GLM it fitted (statsmodels is the reference library). Precision: 1e-12 rel
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pyarrow as pa
@@ -21,8 +22,9 @@ from featpipe.compiler.canonical import fingerprint_of_sql
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import INTERCEPT, FittedModel, FittedTerm, Profile
+from featpipe.fitted.scoring import render_score, scoring_model
 from featpipe.sqlgen.common import render
-from featpipe.sqlgen.score import baseline, render_score, score_query, score_statement
+from featpipe.sqlgen.score import baseline, score_query, score_statement
 
 ENGINES = ["duckdb", "sqlite", "postgres"]
 # Spark starts slowly, so it runs the one test that checks every output column.
@@ -148,7 +150,7 @@ def expected_scores(fitted: FittedModel, values: list[np.ndarray], reasons: int 
 
 def scored(engine, fitted: FittedModel, reasons: int = 0, table: str | None = None) -> dict:
     """Run the scoring query and split its rows (ordered by key) into named columns."""
-    query = score_query(fitted, table=table, reasons=reasons)
+    query = score_query(scoring_model(fitted), table=table, reasons=reasons)
     names = [projection.alias_or_name for projection in query.expressions]
     rows = sorted(engine.fetch(query), key=lambda row: row[0])
     columns = {name: [row[i] for row in rows] for i, name in enumerate(names)}
@@ -205,13 +207,14 @@ def python_values(data: dict) -> list[np.ndarray]:
 
 
 def test_output_columns_are_key_prediction_linear_predictor_contributions_status_reasons():
-    query = score_query(orders_model(), reasons=2)
+    query = score_query(scoring_model(orders_model()), reasons=2)
     assert [p.alias_or_name for p in query.expressions] == [
         "order_id", "prediction", "linear_predictor",
         *(f"contribution_{name}" for name, *_ in ORDER_TERMS),
         "status", "reason_1", "reason_2",
     ]
-    with_offset = score_query(fitted_model([fitted_term("age", 0.1, '"age"', 3.0)], -2.0, "poisson", offset='LN("exposure")'))
+    with_offset = score_query(scoring_model(
+        fitted_model([fitted_term("age", 0.1, '"age"', 3.0)], -2.0, "poisson", offset='LN("exposure")')))
     assert [p.alias_or_name for p in with_offset.expressions] == [
         "order_id", "prediction", "linear_predictor", "offset", "contribution_age", "status"]
 
@@ -241,9 +244,9 @@ def test_contributions_add_up_to_the_linear_predictor(tmp_path):
     load(engine, tmp_path, data)
     fitted = orders_model()
     actual = scored(engine, fitted)
-    total = baseline(fitted) + np.sum(actual["contributions"], axis=0)
+    total = baseline(scoring_model(fitted)) + np.sum(actual["contributions"], axis=0)
     np.testing.assert_allclose(total, actual["linear_predictor"], rtol=RTOL, atol=1e-13)
-    assert baseline(fitted) == pytest.approx(COEFFICIENTS[0] + sum(
+    assert baseline(scoring_model(fitted)) == pytest.approx(COEFFICIENTS[0] + sum(
         b * t.profile.mean for b, t in zip(COEFFICIENTS[1:], fitted.terms[1:])), rel=1e-15)
 
 
@@ -366,7 +369,7 @@ def test_prediction_equals_statsmodels_predict(engine, tmp_path, family):
 @pytest.mark.parametrize("wrapper", [{}, {"as_view": "scores_view"}, {"into": "scores"}])
 def test_renderings_parse_back_to_the_same_tree(dialect, wrapper):
     fitted = fitted_model([*orders_model().terms[1:]], -1.2, "poisson", offset='LN("returned")')
-    statement = score_statement(fitted, reasons=3, **wrapper)
+    statement = score_statement(scoring_model(fitted), reasons=3, **wrapper)
     text = render(statement, dialect)
     again = sqlglot.parse_one(text, read=dialect)
     assert render(again, dialect) == text
@@ -375,13 +378,13 @@ def test_renderings_parse_back_to_the_same_tree(dialect, wrapper):
 
 def test_header_names_the_model_every_fingerprint_and_the_file_hash():
     fitted = orders_model()
-    text = render_score(score_query(fitted), fitted, "feedc0ffee123456", "postgres")
+    text = render_score(score_query(scoring_model(fitted)), fitted, "feedc0ffee123456", "postgres")
     header = text[: text.index("WITH")]
     assert all(line.startswith("-- ") for line in header.splitlines())
     assert "model 'returns'" in header and "feedc0ffee123456" in header and fitted.fingerprint in header
     for term in fitted.terms[1:]:
         assert f"{term.name}: {term.fingerprint}" in header
-    assert f"{baseline(fitted)!r}" in header
+    assert f"{baseline(scoring_model(fitted))!r}" in header
     statements = sqlglot.parse(text, read="postgres")
     assert len(statements) == 1 and statements[0] is not None
 
@@ -389,28 +392,53 @@ def test_header_names_the_model_every_fingerprint_and_the_file_hash():
 def test_view_and_table_wrappers_run(tmp_path):
     engine = DuckDBEngine(None)
     load(engine, tmp_path, orders_data())
-    fitted = orders_model()
-    engine.execute(score_statement(fitted, reasons=1, as_view="scores_view"))
-    engine.execute(score_statement(fitted, reasons=1, into="scores_table"))
-    plain = sorted(engine.fetch(score_query(fitted, reasons=1)), key=lambda row: row[0])
+    model = scoring_model(orders_model())
+    engine.execute(score_statement(model, reasons=1, as_view="scores_view"))
+    engine.execute(score_statement(model, reasons=1, into="scores_table"))
+    plain = sorted(engine.fetch(score_query(model, reasons=1)), key=lambda row: row[0])
     for name in ("scores_view", "scores_table"):
         rows = engine.fetch(sqlglot.parse_one(f"SELECT * FROM {name} ORDER BY order_id"))
         assert [tuple(r) for r in rows] == [tuple(r) for r in plain]
 
 
 def test_scoring_another_table_name():
-    query = score_query(orders_model(), table="analytics.new_orders")
+    query = score_query(scoring_model(orders_model()), table="analytics.new_orders")
     assert 'FROM "analytics"."new_orders"' in render(query, "duckdb")
 
 
 def test_a_hand_edited_fitted_term_is_checked_against_the_allow_list():
     fitted = fitted_model([fitted_term("noisy", 1.0, '"amount" * RANDOM()', 0.0)], 0.0)
     with pytest.raises(FeatpipeError, match=r"fitted/returns.yaml: term 'noisy': RANDOM\(\) is not deterministic"):
-        score_query(fitted)
+        score_query(scoring_model(fitted))
 
 
 def test_reasons_beyond_the_number_of_terms_are_refused():
-    with pytest.raises(FeatpipeError, match="--reasons must be between 0 and 7"):
-        score_query(orders_model(), reasons=8)
+    with pytest.raises(FeatpipeError, match="--reasons must be between 0 and 7, the number of terms in fitted/returns.yaml"):
+        score_query(scoring_model(orders_model()), reasons=8)
     with pytest.raises(FeatpipeError, match="not both"):
-        score_statement(orders_model(), as_view="a", into="b")
+        score_statement(scoring_model(orders_model()), as_view="a", into="b")
+
+
+def renamed(fitted: FittedModel, index: int, name: str) -> FittedModel:
+    terms = list(fitted.terms)
+    terms[index] = replace(terms[index], name=name)
+    return replace(fitted, terms=tuple(terms))
+
+
+@pytest.mark.parametrize(("edit", "message"), [
+    (lambda f: renamed(f, 1, "status"),
+     "fitted/returns.yaml: term name 'status' is a column the scoring query writes; rename the term and run `featpipe fit` again"),
+    (lambda f: renamed(f, 2, "rows"),
+     "fitted/returns.yaml: term name 'rows' is a column the drift query writes; rename the term and run `featpipe fit` again"),
+    (lambda f: replace(f, key="Prediction"),
+     "fitted/returns.yaml: key column 'Prediction' is a column the scoring query writes; key the input by another column"),
+    (lambda f: renamed(f, 2, "item_price"), "fitted/returns.yaml: 'item_price' names two columns of the model; run `featpipe fit` again"),
+    (lambda f: replace(f, terms=f.terms[1:]), "fitted/returns.yaml: the first term must be '(intercept)'; run `featpipe fit` again"),
+    (lambda f: replace(f, terms=(f.terms[0], replace(f.terms[1], profile=None))),
+     "fitted/returns.yaml: term 'item_price' has no training profile; run `featpipe fit` again"),
+])
+def test_a_hand_edited_fitted_file_is_checked_before_any_sql_is_built(edit, message):
+    """A fitted file is reviewed as a diff and may be edited by hand: its names become output columns."""
+    with pytest.raises(FeatpipeError) as refused:
+        scoring_model(edit(orders_model()))
+    assert str(refused.value) == message

@@ -12,6 +12,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import sqlglot
@@ -26,6 +27,7 @@ from ..project.names import (
     OFFSET_COLUMN,
     WEIGHT_COLUMN,
     design_table_name,
+    reserved_reason,
 )
 from .allowlist import check_allowed
 from .canonical import canonical_sql, canonical_tree, fingerprint_of_sql
@@ -69,6 +71,35 @@ class CompiledModel:
     @property
     def name(self) -> str:
         return self.spec.name
+
+    @property
+    def dependencies(self) -> dict[str, object]:
+        return fit_dependencies(self.spec, self.terms, self.offset_sql)
+
+
+def fit_dependencies(spec: ModelSpec, terms: Sequence[Term], offset_sql: str | None) -> dict[str, object]:
+    """What a fit depends on, in a fixed order: every spec field that changes the fitted file or whether
+    the fit runs, the offset as canonical SQL, and each term's fingerprint in model order.
+
+    One mapping decides the model's fingerprint, names what changed when a fit goes stale, and is
+    written into the fitted file as `depends_on`, so that a later edit can be named against it.
+    Per-term settings are sorted by term: their order in the spec changes nothing.
+    """
+    return {
+        "input": spec.input,
+        "target": spec.target,
+        "family": spec.family,
+        "offset": offset_sql,
+        "weights": spec.weights,
+        "holdout": {"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
+        "penalty": {"l2": spec.penalty.l2, "l1": spec.penalty.l1},
+        "threshold": spec.threshold,
+        "max_dropped": spec.max_dropped,
+        "expect": dict(sorted(spec.expect.items())),
+        "step": dict(sorted(spec.step.items())),
+        "notes": dict(sorted(spec.notes.items())),
+        "terms": {term.name: term.fingerprint for term in terms},
+    }
 
 
 @dataclass(frozen=True)
@@ -133,6 +164,10 @@ def _unique_names(terms: list[RawTerm], columns_by_input, diagnostics) -> list[R
         if not NAME_PATTERN.match(term.name):
             diagnostics.append(Diagnostic(term.file, term.line, term.col,
                 f"term name '{term.name}' must start with a letter and hold only letters, digits and _"))
+            continue
+        clash = reserved_reason(term.name)
+        if clash:
+            diagnostics.append(Diagnostic(term.file, term.line, term.col, f"term name '{term.name}' {clash}; choose another name"))
             continue
         if term.name in columns_by_input.get(term.input, {}):
             diagnostics.append(Diagnostic(term.file, term.line, term.col,
@@ -293,12 +328,10 @@ def _compile_offset(spec: ModelSpec, columns: dict[str, str], diagnostics) -> ex
     return None if problems else canonical_tree(tree)
 
 
-def model_fingerprint(spec: ModelSpec, terms: list[Term], offset_sql: str | None) -> str:
-    """Hash of what decides a model's design table and fit: a change of any of it makes a fit stale."""
-    content = {
-        "input": spec.input, "target": spec.target, "family": spec.family, "offset": offset_sql,
-        "weights": spec.weights, "holdout": [spec.holdout.fraction, spec.holdout.salt],
-        "penalty": [spec.penalty.l2, spec.penalty.l1],
-        "terms": [[term.name, term.fingerprint] for term in terms],
-    }
-    return hashlib.sha256(json.dumps(content, sort_keys=True).encode()).hexdigest()[:16]
+def model_fingerprint(spec: ModelSpec, terms: Sequence[Term], offset_sql: str | None) -> str:
+    """Hash of what a fit depends on (`fit_dependencies`): a change of any of it makes a fit stale.
+
+    Keys are hashed in their fixed order, so listing the same terms in another order is a change too.
+    """
+    content = json.dumps(fit_dependencies(spec, terms, offset_sql))
+    return hashlib.sha256(content.encode()).hexdigest()[:16]

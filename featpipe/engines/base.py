@@ -8,11 +8,13 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
-import pandas as pd
-import pyarrow as pa
 from sqlglot import exp
+
+if TYPE_CHECKING:  # only annotations: `featpipe check` never pays for pandas or Arrow
+    import pandas as pd
+    import pyarrow as pa
 
 
 class Engine(Protocol):

@@ -6,6 +6,8 @@ profiles and the holdout metrics are all queries; only small results come back.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 from sqlglot import exp
 
 from ..compiler import CompiledModel, CompiledProject, Term
@@ -13,11 +15,14 @@ from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
 from ..fitted.notes import effect, term_notes
-from ..glm import fit_glm
+from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
 from .metrics import holdout_metrics, training_profiles
+
+if TYPE_CHECKING:
+    from ..glm import Coefficient
 
 LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}
 
@@ -43,19 +48,24 @@ def account_rows(engine: Engine, model: CompiledModel) -> dict:
 
 def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -> FittedModel:
     """Fit one model whose design table is current in `engine`."""
+    # numpy and scipy load when a model is fitted, not with the API (`featpipe check` never fits).
+    from ..glm import Glm
+
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model)
-    glm = fit_glm(engine, layout, spec.family, spec.penalty)
+    glm = Glm(spec.family, spec.penalty).fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
-    coefficients = {name: as_written(value) for name, value in zip(glm.names, glm.coef)}
+    coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
         engine, layout,
-        {**{name: column(name) for name in layout.terms}, "linear_predictor": linear_predictor(layout, coefficients)},
+        {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
     )
     metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold)
-    fitted_terms = [_fitted_term(glm, 0, None, spec, model, None)]
+    intercept, *slopes = glm.coefficients
+    fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     fitted_terms += [
-        _fitted_term(glm, index + 1, term, spec, model, profiles[term.name]) for index, term in enumerate(model.terms)
+        _fitted_term(coefficient, term, spec, model, profiles[term.name])
+        for coefficient, term in zip(slopes, model.terms, strict=True)
     ]
     return FittedModel(
         model=spec.name,
@@ -73,21 +83,22 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         columns=_read_columns(compiled, model),
         rows=rows,
         fit={
-            "converged": bool(glm.converged),
-            "iterations": int(glm.iterations),
-            "deviance": float(glm.deviance),
-            "null_deviance": float(glm.null_deviance),
-            "log_likelihood": float(glm.llf),
-            "aic": float(glm.aic),
-            "bic": float(glm.bic),
-            "dispersion": float(glm.dispersion),
+            "converged": bool(glm.convergence.converged),
+            "iterations": int(glm.convergence.iterations),
+            "deviance": float(glm.goodness_of_fit.deviance),
+            "null_deviance": float(glm.goodness_of_fit.null_deviance),
+            "log_likelihood": float(glm.goodness_of_fit.log_likelihood),
+            "aic": float(glm.goodness_of_fit.aic),
+            "bic": float(glm.goodness_of_fit.bic),
+            "dispersion": float(glm.goodness_of_fit.dispersion),
             "statistic": glm.statistic_name,
             "penalized": spec.penalty.active,
         },
         terms=tuple(fitted_terms),
-        linear_predictor=profiles["linear_predictor"],
+        linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
         warnings=tuple(glm.warnings),
+        depends_on=model.dependencies,
     )
 
 
@@ -100,23 +111,11 @@ def _read_columns(compiled: CompiledProject, model: CompiledModel) -> dict[str, 
     return {name: declared[name] for name in sorted(read)}
 
 
-def _optional(values, index: int) -> float | None:
-    if values is None or values[index] is None:
-        return None
-    return float(values[index])
-
-
-def _fitted_term(glm, index: int, term: Term | None, spec, model: CompiledModel, profile) -> FittedTerm:
-    estimate = float(glm.coef[index])
-    low, high = _optional(glm.ci_low, index), _optional(glm.ci_high, index)
-    common = dict(
-        estimate=estimate,
-        std_error=_optional(glm.stderr, index),
-        statistic=_optional(glm.statistic, index),
-        p_value=_optional(glm.p_value, index),
-        ci_low=low,
-        ci_high=high,
-    )
+def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: CompiledModel, profile) -> FittedTerm:
+    estimate = coefficient.estimate
+    # The fitted file names the Wald figures as the GLM result does; all None for a penalized fit.
+    common = dict(estimate=estimate, **coefficient.inference_figures())
+    low, high = common["ci_low"], common["ci_high"]
     if term is None:
         return FittedTerm(name=INTERCEPT, **common)
     step = spec.step.get(term.name, 1.0)
@@ -126,7 +125,7 @@ def _fitted_term(glm, index: int, term: Term | None, spec, model: CompiledModel,
         | {name for name in term.built_from if name in spec.terms}
         | {t.name for t in others if term.name in t.built_from}
     )
-    vif = _optional(glm.vif, index)
+    vif = coefficient.vif
     notes = term_notes(
         name=term.name, family=spec.family, target=spec.target, estimate=estimate, ci_low=low, ci_high=high,
         p_value=common["p_value"], step=step, kind=term.kind, expect=spec.expect.get(term.name), vif=vif, related=related,

@@ -21,26 +21,28 @@ from ..engines.compute import connect
 from ..engines.contract import check_contract
 from ..errors import FeatpipeError
 from ..project import Project
-from ..sqlgen.common import check_dialect, render
-from ..sqlgen.drift import (
-    EMPTY_SHARE,
+from ..project.names import (
+    LINEAR_PREDICTOR,
     NULL_BIN,
     ROWS,
-    Monitored,
     above_column,
     below_column,
     bin_column,
-    contribution_column,
-    drift_header,
-    drift_query,
-    expected_shares,
     mean_column,
-    monitored,
-    output_names,
+    mean_contribution_column,
     psi_column,
 )
+from ..sqlgen.common import check_dialect, render
+from ..sqlgen.drift import (
+    EMPTY_SHARE,
+    Monitored,
+    drift_query,
+    expected_shares,
+    output_names,
+)
 from . import FittedModel, file_hash
-from .scoring import _staleness, load_fitted, scoring_contract
+from .current import refuse_if_stale
+from .scoring import fitted_source, load_fitted, scoring_contract, scoring_model
 
 Progress = Callable[[str], None]
 
@@ -119,6 +121,36 @@ class DriftReport:
         }
 
 
+def monitored(fitted: FittedModel) -> tuple[Monitored, ...]:
+    """Every term in model order, then the linear predictor; refuses a fitted file without profiles."""
+    items = [Monitored(term.name, term.profile, term.estimate) for term in fitted.model_terms]
+    items.append(Monitored(LINEAR_PREDICTOR, fitted.linear_predictor))
+    for item in items:
+        if item.profile is None:
+            raise FeatpipeError(f"{fitted_source(fitted)}: {item.name} has no training profile; run `featpipe fit` again")
+    return tuple(items)
+
+
+def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
+    """SQL comment lines stating what the drift query returns and the rules it applies."""
+    lines = [
+        f"featpipe drift query for model '{fitted.model}', input '{fitted.input}'",
+        f"fitted file {fitted_source(fitted)}, hash {fitted_hash}; model fingerprint {fitted.fingerprint}",
+        f"One row: {ROWS}; per term and for {LINEAR_PREDICTOR} the rows per training bin ({bin_column('<name>', '<i>')}),",
+        (f"NULLs ({bin_column('<name>', NULL_BIN)}, a bin of its own), values outside the training range "
+         f"({below_column('')}, {above_column('')}),"),
+        f"the mean of the non-NULL values ({mean_column('')}), per term the mean of coefficient * (value - training mean) over",
+        (f"its non-NULL values ({mean_contribution_column('')}, 0 in training) and the population stability index "
+         f"({psi_column('')})."),
+        "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge;",
+        "expected shares are the training rows' (NULLs included), written below as literals.",
+        f"PSI = SUM over bins of (actual - expected) * LN(actual / expected); a share below {EMPTY_SHARE:g} counts as {EMPTY_SHARE:g}.",
+        (f"Reading (common practice in credit scoring): below {MODERATE_FROM} stable, {MODERATE_FROM} to {MAJOR_ABOVE} "
+         f"a moderate shift, above {MAJOR_ABOVE} a major shift."),
+    ]
+    return "".join(f"-- {line}\n" for line in lines)
+
+
 def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple) -> DriftReport:
     """The report from the drift query's one row (`names`: its column names, see output_names)."""
     values = dict(zip(names, row, strict=True))
@@ -145,7 +177,7 @@ def _row(item: Monitored, values: dict, rows: int) -> DriftRow:
     )
     mean = _optional(values[mean_column(item.name)])
     if item.estimate is not None:
-        shift = _optional(values[contribution_column(item.name)])
+        shift = _optional(values[mean_contribution_column(item.name)])
     else:
         shift = None if mean is None else mean - profile.mean
     psi = float(values[psi_column(item.name)])
@@ -171,24 +203,21 @@ def drift(
     `allow_stale`) and a table that does not meet the input's column contract (the columns the model reads).
     """
     fitted = load_fitted(project, model)
-    stale = _staleness(project, fitted)
-    if stale and not allow_stale:
-        raise FeatpipeError(f"fitted/{model}.yaml is stale: {'; '.join(stale)}; run `featpipe fit -p {project.root} {model}` "
-                            "or pass --allow-stale to compare with the fitted definitions anyway")
+    stale = refuse_if_stale(project, fitted, allow_stale=allow_stale)
     contract = scoring_contract(project.inputs[fitted.input], fitted)
-    query = drift_query(fitted, table=table)
+    query = drift_query(scoring_model(fitted), monitored(fitted), table=table)
     with connect(project) as engine:
         check_contract(contract, table, engine.describe(table), engine.name)
         if progress:
             progress(f"comparing {table} with the training rows of {model} in {engine.name}")
         (row,) = engine.fetch(query)
     report = read_drift(fitted, table, output_names(query), row)
-    return replace(report, stale=tuple(stale))
+    return replace(report, stale=stale)
 
 
 def render_drift_sql(project: Project, model: str, table: str | None = None, dialect: str = "duckdb") -> str:
     """The drift SQL of fitted/MODEL.yaml for `dialect` (default table: the input's name), with its header."""
     check_dialect(dialect)
     fitted = load_fitted(project, model)
-    query = drift_query(fitted, table=table)
+    query = drift_query(scoring_model(fitted), monitored(fitted), table=table)
     return drift_header(fitted, file_hash(project.fitted_path(model))) + render(query, dialect) + ";\n"

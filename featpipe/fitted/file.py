@@ -18,30 +18,11 @@ from pathlib import Path
 import yaml
 
 from ..atomic import write_text_atomic
+from ..compiler import CompiledModel
 from ..errors import FeatpipeError
+from ..sqlgen.profile import Profile
 
 FORMAT_VERSION = 1
-
-
-@dataclass(frozen=True)
-class Profile:
-    """Training distribution of a term (or of the linear predictor), kept for drift and reports.
-
-    `edges` are the distinct deciles of the non-NULL training values (ties collapse into one edge);
-    bin i holds values v with edges[i-1] < v <= edges[i], the first bin everything up to edges[0] and
-    the last everything above edges[-1]. `shares` are the training shares of those bins among
-    non-NULL rows; NULLs are counted apart in `nulls`.
-    """
-
-    count: int
-    nulls: int
-    mean: float
-    sd: float
-    min: float
-    max: float
-    median: float
-    edges: tuple[float, ...]
-    shares: tuple[float, ...]
 
 
 @dataclass(frozen=True)
@@ -95,11 +76,17 @@ class FittedModel:
     linear_predictor: Profile | None = None
     metrics: dict = field(default_factory=dict)
     warnings: tuple[str, ...] = ()
+    depends_on: dict = field(default_factory=dict)  # compiler.fit_dependencies at the fit, to name what changed since
     format: int = FORMAT_VERSION
 
     @property
     def coefficients(self) -> dict[str, float]:
         return {term.name: term.estimate for term in self.terms}
+
+    @property
+    def model_terms(self) -> tuple[FittedTerm, ...]:
+        """The terms after the intercept, in model order."""
+        return self.terms[1:]
 
     def term(self, name: str) -> FittedTerm:
         for term in self.terms:
@@ -114,6 +101,8 @@ def to_yaml(fitted: FittedModel) -> str:
 
 SIGNIFICANT_DIGITS = 12
 ORDER_STATISTICS = {"edges", "min", "median", "max"}
+# Written in full too: the spec's own values, compared with the spec when the fit goes stale.
+WRITTEN_IN_FULL = ORDER_STATISTICS | {"depends_on"}
 
 
 def as_written(value: float) -> float:
@@ -126,7 +115,7 @@ def _plain(value, exact: bool = False):
     if isinstance(value, float) and not exact:
         return as_written(value)
     if isinstance(value, dict):
-        return {key: _plain(item, exact or key in ORDER_STATISTICS) for key, item in value.items()}
+        return {key: _plain(item, exact or key in WRITTEN_IN_FULL) for key, item in value.items()}
     if isinstance(value, (list, tuple)):
         return [_plain(item, exact) for item in value]
     return value
@@ -182,22 +171,58 @@ def file_hash(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()[:16]
 
 
-def staleness(fitted: FittedModel, model) -> list[str]:
-    """Why a fitted model no longer matches the current definitions (empty when it is current)."""
+OLDER_FILE = "the file does not record all the fit depended on (an older featpipe wrote it); fit it again to record it"
+
+
+def staleness(fitted: FittedModel, model: CompiledModel | None) -> list[str]:
+    """Why a fitted model no longer matches its current definitions (empty when it is current);
+    `model` None: its spec is gone.
+
+    Each reason names what changed between the dependencies recorded in the file (`depends_on`) and
+    the model's now. A file written before featpipe recorded them still names its terms' changes,
+    since every fitted term carries its fingerprint.
+    """
+    if model is None:
+        return [f"specs/{fitted.model}.yaml no longer exists"]
     if fitted.fingerprint == model.fingerprint:
         return []
-    reasons = []
-    current = {term.name: term.fingerprint for term in model.terms}
-    kept = {term.name: term.fingerprint for term in fitted.terms if term.fingerprint}
-    for name, print_ in current.items():
-        if name not in kept:
-            reasons.append(f"term '{name}' was added")
-        elif kept[name] != print_:
-            reasons.append(f"term '{name}' changed meaning")
-    reasons += [f"term '{name}' was removed" for name in kept if name not in current]
-    if not reasons:
-        reasons.append("the model spec changed (target, family, offset, weights, holdout or penalty)")
-    return reasons
+    recorded = fitted.depends_on or {"terms": {term.name: term.fingerprint for term in fitted.terms if term.fingerprint}}
+    reasons = [reason for key, now in model.dependencies.items() if key in recorded and not _same(recorded[key], now)
+               for reason in _changes(key, recorded[key], now)]
+    return reasons or [OLDER_FILE]
+
+
+def _same(was, now) -> bool:
+    """Equal, mappings in the same order too: the order of the terms is part of the model."""
+    return was == now and (not isinstance(now, dict) or list(was) == list(now))
+
+
+# Spec fields that map term names to a setting, and how a reason names the setting.
+PER_TERM = {"expect": "expected sign", "step": "step", "notes": "note"}
+
+
+def _changes(key: str, was, now) -> list[str]:
+    """One dependency's change in words: per term, per part (holdout, penalty) or as a whole."""
+    if key == "terms":
+        return _term_changes(was, now)
+    if key in PER_TERM:
+        return [f"{PER_TERM[key]} of term '{name}' changed" for name in sorted({*was, *now}) if was.get(name) != now.get(name)]
+    if isinstance(now, dict):
+        return [f"{key} {part} changed from {_shown(was.get(part))} to {_shown(value)}"
+                for part, value in now.items() if was.get(part) != value]
+    return [f"{key} changed from {_shown(was)} to {_shown(now)}"]
+
+
+def _term_changes(was: dict[str, str], now: dict[str, str]) -> list[str]:
+    """Terms added or redefined (by fingerprint, in model order), then removed; else a change in their order."""
+    reasons = [f"term '{name}' changed meaning" if name in was else f"term '{name}' was added"
+               for name in now if was.get(name) != now[name]]
+    reasons += [f"term '{name}' was removed" for name in was if name not in now]
+    return reasons or ["the order of terms changed"]
+
+
+def _shown(value) -> str:
+    return "none" if value is None else f"{value:.15g}" if isinstance(value, float) else str(value)
 
 
 def stale_fits(compiled) -> tuple[str, ...]:

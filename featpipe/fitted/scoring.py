@@ -16,14 +16,29 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from ..compiler import compile_project
 from ..engines.compute import Progress, connect
 from ..engines.contract import check_contract
 from ..errors import FeatpipeError
 from ..project import PROJECT_FILE, InputSpec, Project
-from ..sqlgen.common import check_dialect, column
-from ..sqlgen.score import STATUS, render_score, score_query, score_statement
-from . import FittedModel, file_hash, read_fitted, staleness
+from ..project.names import (
+    INTERCEPT,
+    LINEAR_PREDICTOR,
+    STATUS,
+    contribution_column,
+    reserved_reason,
+    scoring_clash,
+)
+from ..sqlgen.common import check_dialect, column, render
+from ..sqlgen.score import (
+    OK,
+    ScoringModel,
+    ScoringTerm,
+    baseline,
+    score_query,
+    score_statement,
+)
+from . import FittedModel, file_hash, read_fitted
+from .current import refuse_if_stale
 
 
 @dataclass(frozen=True)
@@ -38,6 +53,65 @@ class ScoreResult:
     def as_dict(self) -> dict:
         return {"model": self.model, "table": self.table, "into": self.into, "rows": self.rows,
                 "status": self.status, "stale": list(self.stale)}
+
+
+def fitted_source(fitted: FittedModel) -> str:
+    return f"fitted/{fitted.model}.yaml"
+
+
+def scoring_model(fitted: FittedModel) -> ScoringModel:
+    """What the scoring and drift queries need of a fitted file, checked first: the file may have been
+    edited by hand, and its names become the output columns' names.
+
+    Refuses a file whose first term is not the intercept, a term without a training profile, a term
+    or key named like a column the queries write, and names that repeat.
+    """
+    source = fitted_source(fitted)
+    if not fitted.terms or fitted.terms[0].name != INTERCEPT:
+        raise FeatpipeError(f"{source}: the first term must be '{INTERCEPT}'; run `featpipe fit` again")
+    names = [term.name for term in fitted.model_terms]
+    for name in names:
+        clash = reserved_reason(name)
+        if clash:
+            raise FeatpipeError(f"{source}: term name '{name}' {clash}; rename the term and run `featpipe fit` again")
+    clash = scoring_clash(fitted.key)
+    if clash:
+        raise FeatpipeError(f"{source}: key column '{fitted.key}' {clash}; key the input by another column")
+    repeated = sorted({name for name in names if names.count(name) > 1} | ({fitted.key} & set(names)))
+    if repeated:
+        raise FeatpipeError(f"{source}: '{repeated[0]}' names two columns of the model; run `featpipe fit` again")
+    for term in fitted.model_terms:
+        if term.profile is None:
+            raise FeatpipeError(f"{source}: term '{term.name}' has no training profile; run `featpipe fit` again")
+    return ScoringModel(
+        key=fitted.key, table=fitted.input, family=fitted.family, intercept=fitted.terms[0].estimate,
+        offset=fitted.offset, columns=fitted.columns, source=source,
+        terms=tuple(ScoringTerm(term.name, term.sql, term.kind == "boolean", term.estimate, term.profile.mean)
+                    for term in fitted.model_terms),
+    )
+
+
+def score_header(fitted: FittedModel, fitted_hash: str) -> str:
+    """SQL comment lines naming the model, every fingerprint and the fitted file's hash."""
+    offset = " + offset" if fitted.offset is not None else ""
+    lines = [
+        f"featpipe scoring query for model '{fitted.model}' ({fitted.family}, {fitted.link} link), input '{fitted.input}'",
+        f"fitted file {fitted_source(fitted)}, hash {fitted_hash}; model fingerprint {fitted.fingerprint}",
+        "term fingerprints:",
+        *(f"  {term.name}: {term.fingerprint}" for term in fitted.model_terms),
+        (f"{LINEAR_PREDICTOR} = {baseline(scoring_model(fitted))!r}{offset} + SUM({contribution_column('*')}) "
+         f"on rows with {STATUS} '{OK}'"),
+        "(the first number is the linear predictor at the training means).",
+        f"{STATUS} 'missing: <term>' names the first NULL term; such rows get no prediction.",
+        "Unseen categories take their term expression's value (indicators give 0, the reference level);",
+        "values outside the training range are extrapolated by the linear model.",
+    ]
+    return "".join(f"-- {line}\n" for line in lines)
+
+
+def render_score(statement: exp.Expression, fitted: FittedModel, fitted_hash: str, dialect: str) -> str:
+    """The header comment and the statement rendered for `dialect`, ending with ';'."""
+    return score_header(fitted, fitted_hash) + render(statement, dialect) + ";\n"
 
 
 def load_fitted(project: Project, model: str) -> FittedModel:
@@ -55,7 +129,7 @@ def render_score_sql(
     """The scoring SQL of fitted/MODEL.yaml for `dialect`, with its header comment."""
     check_dialect(dialect)
     fitted = load_fitted(project, model)
-    statement = score_statement(fitted, table=table, reasons=reasons, as_view=as_view, into=into)
+    statement = score_statement(scoring_model(fitted), table=table, reasons=reasons, as_view=as_view, into=into)
     return render_score(statement, fitted, file_hash(project.fitted_path(model)), dialect)
 
 
@@ -84,13 +158,9 @@ def score(
     fitted = load_fitted(project, model)
     if into == table:
         raise FeatpipeError(f"--into '{into}' is the table being scored; write the scores to another table")
-    stale = _staleness(project, fitted)
-    if stale and not allow_stale:
-        raise FeatpipeError(f"fitted/{model}.yaml is stale: {'; '.join(stale)}; "
-                            f"run `featpipe fit -p {project.root} {model}` "
-                            "or pass --allow-stale to score with the fitted definitions anyway")
+    stale = refuse_if_stale(project, fitted, allow_stale=allow_stale)
     contract = scoring_contract(project.inputs[fitted.input], fitted)
-    query = score_query(fitted, table=table, reasons=reasons)
+    query = score_query(scoring_model(fitted), table=table, reasons=reasons)
     with connect(project) as engine:
         check_contract(contract, table, engine.describe(table), engine.name)
         if progress:
@@ -98,14 +168,7 @@ def score(
         engine.create_table(into, query)
         counts = engine.fetch(_status_counts(into))
     status = {name: int(count) for name, count in counts}
-    return ScoreResult(model, table, into, sum(status.values()), status, tuple(stale))
-
-
-def _staleness(project: Project, fitted: FittedModel) -> list[str]:
-    compiled = compile_project(project)
-    if fitted.model not in compiled.models:
-        return [f"specs/{fitted.model}.yaml no longer exists"]
-    return staleness(fitted, compiled.models[fitted.model])
+    return ScoreResult(model, table, into, sum(status.values()), status, stale)
 
 
 def _status_counts(table: str) -> exp.Select:

@@ -1,5 +1,13 @@
 """GLM fitting where the data is: IRLS over sufficient statistics, penalties, inference, problem checks."""
 
-from .fit import INTERCEPT, GlmFit, fit_glm, fit_glm_arrays
+from .fit import INTERCEPT, Glm
+from .result import (
+    Coefficient,
+    Convergence,
+    GlmResult,
+    GoodnessOfFit,
+    Inference,
+    TrainingRows,
+)
 
-__all__ = ["INTERCEPT", "GlmFit", "fit_glm", "fit_glm_arrays"]
+__all__ = ["INTERCEPT", "Coefficient", "Convergence", "Glm", "GlmResult", "GoodnessOfFit", "Inference", "TrainingRows"]

@@ -1,4 +1,6 @@
-"""Fit a GLM on a design table where the data is (`fit_glm`), or on in-memory arrays (`fit_glm_arrays`).
+"""Fit a GLM: `Glm` holds the parameters, given up front and checked when it is made; `Glm.fit` works
+on a design table where the data is and `Glm.fit_arrays` on in-memory arrays. Each call returns a new
+`GlmResult`; nothing learned is kept on the `Glm`, so one fitter serves any number of data sets.
 
 Both run the same steps: a training profile (counts, domain checks, term means and sds), IRLS over a
 statistics source for the model and its intercept-only null model together, then inference on the
@@ -24,7 +26,7 @@ better; X'WX, the deviance and the standard errors are those of the final coeffi
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import KW_ONLY, dataclass, field
 
 import numpy as np
 import pyarrow as pa
@@ -35,7 +37,6 @@ from ..errors import FeatpipeError
 from ..project import Penalty
 from ..project.names import INTERCEPT
 from ..sqlgen.statistics import (
-    TermProfile,
     TrainingProfile,
     design_columns_query,
     profile_query,
@@ -44,10 +45,12 @@ from ..sqlgen.statistics import (
 )
 from . import problems
 from .families import Family, Poisson, get_family
-from .inference import information_criteria, log_likelihood, wald
+from .inference import Wald, information_criteria, log_likelihood, wald
 from .irls import AliasedTerms, IrlsResult, run_irls
 from .linalg import inverse_spd, variance_inflation
 from .penalty import ScaledPenalty
+from .problems import DataNames
+from .result import Coefficient, Convergence, GlmResult, GoodnessOfFit, TrainingRows
 from .sources import (
     Batch,
     BatchSource,
@@ -62,128 +65,149 @@ from .sources import (
 
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
+SOURCES = ("auto", "sql", "stream")
 
 
 @dataclass(frozen=True)
-class GlmFit:
-    """A fitted GLM. Sequences follow `names`: the intercept first, then the terms.
+class Glm:
+    """The parameters of a GLM fit, e.g. `Glm("binomial", Penalty(l2=0.01)).fit(engine, layout)`.
 
-    Inference fields are None for a penalized fit (`penalized`), where plain Wald inference does not
-    hold; `vif` is None for the intercept.
+    `source` (engine fits): "sql" (one aggregate query per pass, any engine), "stream" (batches through
+    numpy, memory one batch) or "auto" (stream on DuckDB, sql elsewhere). `sample_rows` (engine fits):
+    the first training rows read up front; they set the working scaling and, when the table has more
+    rows, the warm start. A table sorted by a term gives a poorer warm start (more passes), not a
+    different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     """
 
     family: str
-    link: str
-    names: tuple[str, ...]
-    coef: tuple[float, ...]
-    stderr: tuple[float, ...] | None
-    statistic: tuple[float, ...] | None  # z, or t for gaussian (`statistic_name`)
-    p_value: tuple[float, ...] | None
-    ci_low: tuple[float, ...] | None  # 95% Wald interval
-    ci_high: tuple[float, ...] | None
-    covariance: tuple[tuple[float, ...], ...] | None
-    vif: tuple[float | None, ...]
-    deviance: float
-    null_deviance: float  # intercept-only model with the same offset and weights
-    llf: float
-    aic: float  # -2 llf + 2 k, k = coefficients (nonzero ones under an l1 penalty)
-    bic: float  # -2 llf + k ln n
-    n_train: int
-    weight_sum: float
-    df_residual: int
-    dispersion: float  # Pearson chi2 / (n - p) for gaussian, 1 otherwise
-    iterations: int  # IRLS passes over the full training rows for the model
-    converged: bool
-    passes_over_data: int  # every full read of the training rows, profile included
-    source: str  # "sql", "stream" or "arrays"
-    penalized: bool
-    statistic_name: str
-    warnings: tuple[str, ...]
-    term_profiles: tuple[TermProfile, ...]
+    penalty: Penalty = field(default_factory=Penalty)
+    _: KW_ONLY
+    max_iter: int = 50
+    tol: float = 1e-10
+    source: str = "auto"
+    sample_rows: int = SAMPLE_ROWS
+    batch_rows: int = BATCH_ROWS
 
+    def __post_init__(self) -> None:
+        get_family(self.family)  # raises on an unknown family
+        if not (self.penalty.l2 >= 0 and self.penalty.l1 >= 0):
+            raise ValueError(f"penalty l2 and l1 must be zero or more, not {self.penalty.l2!r} and {self.penalty.l1!r}")
+        if self.max_iter < 1:
+            raise ValueError(f"max_iter must be at least 1, not {self.max_iter!r}")
+        if not self.tol > 0:
+            raise ValueError(f"tol must be positive, not {self.tol!r}")
+        if self.source not in SOURCES:
+            raise ValueError(f"unknown statistics source {self.source!r}; use one of {', '.join(SOURCES)}")
+        if self.sample_rows < 100:
+            raise ValueError("sample_rows must be at least 100: the sample also sets the working scaling")
+        if self.batch_rows < 1:
+            raise ValueError(f"batch_rows must be at least 1, not {self.batch_rows!r}")
 
-def fit_glm(
-    engine: Engine,
-    layout: DesignLayout,
-    family: str,
-    penalty: Penalty = Penalty(),
-    *,
-    max_iter: int = 50,
-    tol: float = 1e-10,
-    source: str = "auto",
-    sample_rows: int = SAMPLE_ROWS,
-    batch_rows: int = BATCH_ROWS,
-) -> GlmFit:
-    """Fit on the training rows of a design table in `engine`.
+    def fit(self, engine: Engine, layout: DesignLayout) -> GlmResult:
+        """Fit on the training rows of a design table in `engine`."""
+        family = get_family(self.family)
+        streamed = self.source == "stream" or (self.source == "auto" and engine.name == "duckdb")
+        ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
+        frame = engine.fetch_frame(design_columns_query(layout, limit=self.sample_rows, ordered=ordered))
+        sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
+        passes = 1 if ordered else 0  # ORDER BY key reads every row once
+        scaling = Scaling.of(sample.terms)
+        data = DataNames(layout.terms, f"design table {layout.table}", layout.target, layout.weight)
+        known = None  # a streamed source gathers the profile in its first pass
+        if streamed:
+            statistics: StatisticsSource = BatchSource("stream", engine_batches(engine, layout, self.batch_rows), family, scaling)
+        else:
+            statistics = SqlAggregateSource(engine, layout, family, scaling)
+            known, read = _profile_in_sql(engine, layout, family, scaling)
+            passes += read
+        # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
+        filled = len(sample.y) >= self.sample_rows
+        warm = BatchSource("sample", in_memory_batches(sample, self.batch_rows), family, scaling) if filled else None
+        return self._solve(
+            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes)
+        )
 
-    `source`: "sql" (one aggregate query per pass, any engine), "stream" (batches through numpy,
-    memory one batch) or "auto" (stream on DuckDB, sql elsewhere). `sample_rows`: the first training
-    rows read up front; they set the working scaling and, when the table has more rows, the warm
-    start. A table sorted by a term gives a poorer warm start (more passes), not a different answer.
-    """
-    if source not in ("auto", "sql", "stream"):
-        raise ValueError(f"unknown statistics source {source!r}")
-    if sample_rows < 100:
-        raise ValueError("sample_rows must be at least 100: the sample also sets the working scaling")
-    glm_family = get_family(family)
-    streamed = source == "stream" or (source == "auto" and engine.name == "duckdb")
-    ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
-    frame = engine.fetch_frame(design_columns_query(layout, limit=sample_rows, ordered=ordered))
-    sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
-    passes = 1 if ordered else 0  # ORDER BY key reads every row once
-    scaling = Scaling.of(sample.terms)
-    data = _Data(layout.terms, f"design table {layout.table}", layout.target, layout.weight, layout.offset is not None)
-    if streamed:
-        statistics: StatisticsSource = BatchSource("stream", engine_batches(engine, layout, batch_rows), glm_family, scaling)
-        known = None  # the first streamed pass gathers the profile
-    else:
-        statistics = SqlAggregateSource(engine, layout, glm_family, scaling)
-        known, read = _profile_in_sql(engine, layout, glm_family, scaling)
-        passes += read
-    # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
-    warm = BatchSource("sample", in_memory_batches(sample, batch_rows), glm_family, scaling) if len(sample.y) >= sample_rows else None
-    return _fit(statistics, glm_family, data, sample, scaling, penalty, warm, known, max_iter, tol, passes)
+    def fit_arrays(self, X, y, offset=None, weights=None, names: tuple[str, ...] | None = None) -> GlmResult:
+        """The same fit on in-memory arrays: X (rows x terms, no intercept column), y, optional offset and
+        weights; `names` name the terms (x1, x2, ... by default)."""
+        family = get_family(self.family)
+        terms = np.asarray(X, dtype=float)
+        terms = terms.reshape(len(terms), -1)
+        names = tuple(names) if names is not None else tuple(f"x{j + 1}" for j in range(terms.shape[1]))
+        rows = Batch(
+            np.asarray(y, dtype=float),
+            None if offset is None else np.asarray(offset, dtype=float),
+            None if weights is None else np.asarray(weights, dtype=float),
+            [terms[:, j] for j in range(terms.shape[1])],
+        )
+        scaling = Scaling.of(rows.terms)
+        statistics = BatchSource("arrays", in_memory_batches(rows, self.batch_rows), family, scaling)
+        data = DataNames(names, "the arrays", "y", None if weights is None else "weights")
+        return self._solve(
+            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, known=None, passes=0)
+        )
 
+    def _solve(self, problem: _Problem) -> GlmResult:
+        """IRLS for the model and its null model from the (warm) starts, after the training rows pass the checks."""
+        starts = _starts(problem)
+        if problem.warm is not None:
+            starts = self._warm_starts(problem, starts)
+        first = None
+        if problem.known is None:
+            first, profile, constant = problem.statistics.evaluate_with_profile(starts, problem.data.terms)
+        else:
+            profile, constant = problem.known
+        warnings = problems.check_training_rows(profile, problem.family, problem.data)
+        penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
+        try:
+            model, null = run_irls(
+                problem.statistics, starts, penalty, profile.weight_sum, self.max_iter, self.tol,
+                allow_aliasing=penalty.active, first=first,
+            )
+        except AliasedTerms as error:
+            raise FeatpipeError(problems.aliased_message(error.aliases, problem.data, problem.scaling)) from None
+        solution = _Solution(model=model, null=null, profile=profile, constant=constant, penalty=penalty, warnings=tuple(warnings))
+        return _result(problem, solution, self.max_iter)
 
-def fit_glm_arrays(
-    X,
-    y,
-    family: str,
-    offset=None,
-    weights=None,
-    penalty: Penalty = Penalty(),
-    *,
-    names: tuple[str, ...] | None = None,
-    max_iter: int = 50,
-    tol: float = 1e-10,
-    batch_rows: int = BATCH_ROWS,
-) -> GlmFit:
-    """The same fit on in-memory arrays: X (rows x terms, no intercept column), y, optional offset and weights."""
-    glm_family = get_family(family)
-    terms = np.asarray(X, dtype=float)
-    terms = terms.reshape(len(terms), -1)
-    names = tuple(names) if names is not None else tuple(f"x{j + 1}" for j in range(terms.shape[1]))
-    data = Batch(
-        np.asarray(y, dtype=float),
-        None if offset is None else np.asarray(offset, dtype=float),
-        None if weights is None else np.asarray(weights, dtype=float),
-        [terms[:, j] for j in range(terms.shape[1])],
-    )
-    scaling = Scaling.of(data.terms)
-    statistics = BatchSource("arrays", in_memory_batches(data, batch_rows), glm_family, scaling)
-    about = _Data(names, "the arrays", "y", None if weights is None else "weights", offset is not None)
-    return _fit(statistics, glm_family, about, data, scaling, penalty, None, None, max_iter, tol, 0)
+    def _warm_starts(self, problem: _Problem, starts: list[Request]) -> list[Request]:
+        """Starts fitted on the sample; the plain starts when the sample cannot be fitted cleanly (aliased
+        on its rows, not converging, running away)."""
+        penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1)
+        sample = problem.sample
+        total_weight = float(len(sample.y) if sample.weight is None else sample.weight.sum())
+        try:
+            model, null = run_irls(problem.warm, starts, penalty, total_weight, self.max_iter, self.tol, allow_aliasing=penalty.active)
+        except (AliasedTerms, FeatpipeError):
+            return starts
+        if not (model.converged and null.converged) or problems.runaway_terms(model.step):
+            return starts
+        return [Request(model.terms, model.beta), Request(null.terms, null.beta)]
 
 
 @dataclass(frozen=True)
-class _Data:
-    """What messages and starts need to know about the data being fitted."""
+class _Problem:
+    """What one fit works on, prepared by `Glm.fit` or `Glm.fit_arrays`."""
 
-    names: tuple[str, ...]
-    where: str  # how messages name the data
-    target: str
-    weight: str | None
-    has_offset: bool
+    statistics: StatisticsSource  # the training rows, read once per pass
+    family: Family
+    data: DataNames
+    sample: Batch  # rows in memory: the first training rows, or all of them for arrays
+    scaling: Scaling  # the working coordinates of IRLS, from the sample
+    warm: BatchSource | None  # the sample as a source, when fitting it first gives a warm start
+    known: tuple[TrainingProfile, float] | None  # profile and poisson constant, unless the first pass gathers them
+    passes: int  # full reads of the training rows before IRLS
+
+
+@dataclass(frozen=True)
+class _Solution:
+    """What IRLS returned, with the figures the result is read from."""
+
+    model: IrlsResult
+    null: IrlsResult
+    profile: TrainingProfile
+    constant: float  # the poisson log-likelihood constant (0 for the other families)
+    penalty: ScaledPenalty
+    warnings: tuple[str, ...]  # from the checks of the training rows
 
 
 def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling) -> tuple[tuple[TrainingProfile, float], int]:
@@ -199,8 +223,9 @@ def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scalin
     return (profile, float(weights @ Poisson.likelihood_constant(values))), 2
 
 
-def _starts(family: Family, sample: Batch, size: int) -> list[Request]:
+def _starts(problem: _Problem) -> list[Request]:
     """Model and null model at the intercept of the sample's mean target (kept inside the family's range)."""
+    family, sample, size = problem.family, problem.sample, len(problem.data.terms)
     rows = len(sample.y)
     weight = np.ones(rows) if sample.weight is None else sample.weight
     total = float(weight.sum()) if rows else 1.0
@@ -214,19 +239,6 @@ def _starts(family: Family, sample: Batch, size: int) -> list[Request]:
     return [Request(tuple(range(size)), np.r_[intercept, np.zeros(size)]), Request((), np.array([intercept]))]
 
 
-def _warm_starts(sample: BatchSource, data: Batch, starts: list[Request], penalty: ScaledPenalty, max_iter: int, tol: float) -> list[Request]:
-    """Starts fitted on the sample; the plain starts when the sample cannot be fitted cleanly (aliased on
-    its rows, not converging, running away)."""
-    total_weight = float(len(data.y) if data.weight is None else data.weight.sum())
-    try:
-        model, null = run_irls(sample, starts, penalty, total_weight, max_iter, tol, allow_aliasing=penalty.active)
-    except (AliasedTerms, FeatpipeError):
-        return starts
-    if not (model.converged and null.converged) or problems.runaway_terms(model.step):
-        return starts
-    return [Request(model.terms, model.beta), Request(null.terms, null.beta)]
-
-
 def _penalty_factors(profile: TrainingProfile, scaling: Scaling) -> np.ndarray:
     """Working coefficient to coefficient per training (population) sd, for each term."""
     rows = profile.rows
@@ -234,51 +246,10 @@ def _penalty_factors(profile: TrainingProfile, scaling: Scaling) -> np.ndarray:
     return training_sd / scaling.scales
 
 
-def _fit(
-    source: StatisticsSource,
-    family: Family,
-    data: _Data,
-    sample: Batch,
-    scaling: Scaling,
-    penalty: Penalty,
-    warm: BatchSource | None,
-    known: tuple[TrainingProfile, float] | None,  # profile and poisson constant, unless the first pass gathers them
-    max_iter: int,
-    tol: float,
-    passes: int,
-) -> GlmFit:
-    starts = _starts(family, sample, len(data.names))
-    if warm is not None:
-        starts = _warm_starts(warm, sample, starts, ScaledPenalty(penalty.l2, penalty.l1), max_iter, tol)
-    first = None
-    if known is None:
-        first, profile, constant = source.evaluate_with_profile(starts, data.names)
-    else:
-        profile, constant = known
-    warnings = problems.check_training_rows(profile, family, data.where, data.target, data.weight)
-    scaled = ScaledPenalty(penalty.l2, penalty.l1, _penalty_factors(profile, scaling))
-    try:
-        model, null = run_irls(source, starts, scaled, profile.weight_sum, max_iter, tol, allow_aliasing=scaled.active, first=first)
-    except AliasedTerms as error:
-        raise FeatpipeError(problems.aliased_message(error.aliases, data.names, scaling, data.where)) from None
-    return _result(model, null, source, family, data.names, data.where, profile, constant, scaling, scaled, max_iter, passes, warnings)
-
-
-def _result(
-    model: IrlsResult,
-    null: IrlsResult,
-    source: StatisticsSource,
-    family: Family,
-    names: tuple[str, ...],
-    where: str,
-    profile: TrainingProfile,
-    constant: float,
-    scaling: Scaling,
-    penalty: ScaledPenalty,
-    max_iter: int,
-    passes: int,
-    warnings: list[str],
-) -> GlmFit:
+def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
+    """Estimates and inference on the terms' own scale, the model-level figures, and every warning."""
+    family, data, scaling, penalty = problem.family, problem.data, problem.scaling, solution.penalty
+    model, profile = solution.model, solution.profile
     statistics = model.statistics
     transform = scaling.to_original()
     coef = transform @ model.beta
@@ -286,13 +257,13 @@ def _result(
     df_residual = profile.rows - size
     dispersion = statistics.deviance / df_residual if family.estimates_dispersion else 1.0
     inverse = inverse_spd(statistics.xtwx)
-    inference = None
+    covariance = inference = None
     if not penalty.active:
         covariance = transform @ (dispersion * inverse) @ transform.T
         inference = wald(coef, covariance, family, df_residual)
-    warnings = list(warnings)
+    warnings = list(solution.warnings)
     if model.aliases:
-        warnings.append(problems.aliased_message(model.aliases, names, scaling, where))
+        warnings.append(problems.aliased_message(model.aliases, data, scaling))
     # A step that is still large is a runaway once the deviance has settled (or fitted values sit at
     # the boundary); before that it is only an unfinished fit.
     settled = model.converged or statistics.boundary_rows > 0
@@ -300,51 +271,54 @@ def _result(
     if runaway or statistics.boundary_rows:
         per_sd = np.r_[model.beta[0], model.beta[1:] * penalty.factors]
         message = problems.separation(
-            family, statistics.boundary_rows, names, runaway, per_sd, None if inference is None else inference.statistic
+            family, statistics.boundary_rows, data.terms, runaway, per_sd, None if inference is None else inference.statistic
         )
         if runaway and not penalty.active:
-            raise FeatpipeError(f"{where}: {message}")
+            raise FeatpipeError(f"{data.where}: {message}")
         warnings.append(message)
     if not model.converged:
         warnings.append(problems.not_converged(max_iter, model.change))
-    if not null.converged:
+    if not solution.null.converged:
         warnings.append("the intercept-only model did not converge: the null deviance is approximate")
     if penalty.active:
         warnings.append(problems.penalized_inference(penalty.l2, penalty.l1))
     parameters = size if penalty.l1 == 0 else 1 + int(np.count_nonzero(model.beta[1:]))
-    llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, constant)
+    llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, solution.constant)
     aic, bic = information_criteria(llf, parameters, profile.rows)
-
-    def plain(values) -> tuple[float, ...] | None:
-        return None if inference is None else tuple(float(v) for v in values)
-
-    return GlmFit(
+    return GlmResult(
         family=family.name,
         link=family.link,
-        names=(INTERCEPT, *names),
-        coef=tuple(float(v) for v in coef),
-        stderr=plain(inference.stderr) if inference else None,
-        statistic=plain(inference.statistic) if inference else None,
-        p_value=plain(inference.p_value) if inference else None,
-        ci_low=plain(inference.ci_low) if inference else None,
-        ci_high=plain(inference.ci_high) if inference else None,
-        covariance=None if inference is None else tuple(tuple(float(v) for v in row) for row in covariance),
-        vif=(None, *(float(v) for v in variance_inflation(statistics.xtwx, inverse))),
-        deviance=float(statistics.deviance),
-        null_deviance=float(null.statistics.deviance),
-        llf=float(llf),
-        aic=float(aic),
-        bic=float(bic),
-        n_train=profile.rows,
-        weight_sum=profile.weight_sum,
-        df_residual=df_residual,
-        dispersion=float(dispersion),
-        iterations=model.iterations,
-        converged=model.converged,
-        passes_over_data=passes + source.passes,
-        source=source.name,
-        penalized=penalty.active,
         statistic_name=family.statistic_name,
+        penalized=penalty.active,
+        coefficients=_coefficients((INTERCEPT, *data.terms), coef, inference, variance_inflation(statistics.xtwx, inverse)),
+        covariance=None if covariance is None else tuple(tuple(float(v) for v in row) for row in covariance),
+        goodness_of_fit=GoodnessOfFit(
+            deviance=float(statistics.deviance),
+            null_deviance=float(solution.null.statistics.deviance),
+            log_likelihood=float(llf),
+            aic=float(aic),
+            bic=float(bic),
+            dispersion=float(dispersion),
+        ),
+        rows=TrainingRows(n=profile.rows, weight_sum=profile.weight_sum, df_residual=df_residual, term_profiles=profile.terms),
+        convergence=Convergence(
+            converged=model.converged,
+            iterations=model.iterations,
+            passes_over_data=problem.passes + problem.statistics.passes,
+            source=problem.statistics.name,
+        ),
         warnings=tuple(warnings),
-        term_profiles=profile.terms,
+    )
+
+
+def _coefficients(names: tuple[str, ...], coef: np.ndarray, inference: Wald | None, vif: np.ndarray) -> tuple[Coefficient, ...]:
+    """One record per coefficient; `vif` holds the terms' only (the intercept has none)."""
+    return tuple(
+        Coefficient(
+            name=name,
+            estimate=float(coef[index]),
+            inference=None if inference is None else inference.of(index),
+            vif=None if index == 0 else float(vif[index - 1]),
+        )
+        for index, name in enumerate(names)
     )

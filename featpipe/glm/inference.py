@@ -9,6 +9,7 @@ import numpy as np
 from scipy import stats
 
 from .families import Family
+from .result import Inference
 
 LEVEL = 0.95
 
@@ -20,6 +21,13 @@ class Wald:
     p_value: np.ndarray
     ci_low: np.ndarray
     ci_high: np.ndarray
+
+    def of(self, index: int) -> Inference:
+        """The inference record of coefficient `index` (0 is the intercept)."""
+        return Inference(
+            float(self.stderr[index]), float(self.statistic[index]), float(self.p_value[index]),
+            float(self.ci_low[index]), float(self.ci_high[index]),
+        )
 
 
 def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: int) -> Wald:

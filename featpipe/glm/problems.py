@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -18,8 +19,19 @@ RUNAWAY_TERMS = 3  # terms named in a separation message
 RUNAWAY_STEP = 0.01  # a last step this large (per sd of the term, on the link scale) means no convergence
 
 
-def check_training_rows(profile: TrainingProfile, family: Family, where: str, target: str, weight: str | None) -> list[str]:
-    """Refuse data the family cannot fit; return warnings about thin data. `where` names the data."""
+@dataclass(frozen=True)
+class DataNames:
+    """How messages name the data being fitted."""
+
+    terms: tuple[str, ...]
+    where: str  # the data itself: "design table ..." or "the arrays"
+    target: str
+    weight: str | None
+
+
+def check_training_rows(profile: TrainingProfile, family: Family, data: DataNames) -> list[str]:
+    """Refuse data the family cannot fit; return warnings about thin data."""
+    where, target, weight = data.where, data.target, data.weight
     if profile.rows == 0:
         raise FeatpipeError(
             f"{where} has no training rows: every row is held out or has a NULL target, offset, weight or term; "
@@ -101,12 +113,13 @@ def _thin_data(profile: TrainingProfile, family: Family) -> list[str]:
     ]
 
 
-def aliased_message(aliases: Sequence[Alias], names: Sequence[str], scaling: Scaling, where: str) -> str:
+def aliased_message(aliases: Sequence[Alias], data: DataNames, scaling: Scaling) -> str:
     """Each aliased term written as the combination of earlier terms it equals, on the original scale."""
+    names = data.terms
     lines = [_combination(alias, names, scaling) for alias in aliases]
     dropped = _names([names[alias.column - 1] for alias in aliases])
     return (
-        f"{where}: term(s) {dropped} are linear combinations of other terms on the training rows, "
+        f"{data.where}: term(s) {dropped} are linear combinations of other terms on the training rows, "
         f"so their coefficients are not identified: {'; '.join(lines)}. Remove {dropped} from the model's terms "
         "(or one of the terms each is built from)"
     )

@@ -16,7 +16,7 @@ from sqlglot import exp
 from sqlglot.errors import ParseError
 
 from ..errors import Diagnostic, FeatpipeError, raise_if_errors
-from .names import NAME_PATTERN
+from .names import NAME_PATTERN, scoring_clash
 from .yamlfile import YamlDocument, read_yaml
 
 PROJECT_FILE = "featpipe.yaml"
@@ -236,6 +236,9 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
             diagnostics.append(document.at(path, f"input '{input_name}' needs 'key:', the column that identifies a row", key=True))
         elif key not in columns:
             diagnostics.append(document.at(path + ("key",), f"key '{key}' is not among the columns of '{input_name}'"))
+        elif scoring_clash(str(key)):
+            diagnostics.append(document.at(path + ("key",), f"key '{key}' {scoring_clash(str(key))}; "
+                                           "key the input by another column, or by a view that renames this one"))
         load = spec.get("load")
         if load is not None:
             load = root / str(load)

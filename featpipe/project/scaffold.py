@@ -36,7 +36,7 @@ SELECT
 FROM subscriptions
 """
 
-MODEL_YAML = """\
+SPEC_YAML = """\
 input: subscriptions
 target: churned
 family: binomial
@@ -72,7 +72,7 @@ def scaffold(path: Path) -> list[str]:
     files = {
         "featpipe.yaml": PROJECT_YAML.format(name=name),
         "terms/usage.sql": TERMS_SQL,
-        "specs/churn.yaml": MODEL_YAML,
+        "specs/churn.yaml": SPEC_YAML,
         "data/subscriptions.csv": _demo_rows(),
         ".gitignore": GITIGNORE,
     }

@@ -34,10 +34,6 @@ from ..fitted import FittedModel, FittedTerm, from_yaml, staleness
 from ..project import load_project
 from .revision import Revision, project_files_at, resolve_revision, write_project_files
 
-# Model spec fields compared between the two sides (the offset is compared as canonical SQL).
-SPEC_FIELDS = ("input", "target", "family", "offset", "weights", "penalty", "holdout",
-               "threshold", "expect", "step", "notes", "max_dropped")
-
 
 @dataclass(frozen=True)
 class TermAdded:
@@ -120,7 +116,7 @@ class ModelChange:
     terms_added: tuple[str, ...] = ()
     terms_removed: tuple[str, ...] = ()
     terms_changed: tuple[str, ...] = ()  # listed on both sides, meaning changed
-    spec_changed: tuple[str, ...] = ()  # names of changed spec fields (SPEC_FIELDS)
+    spec_changed: tuple[str, ...] = ()  # spec fields a fit depends on that changed (compiler.fit_dependencies)
 
 
 @dataclass(frozen=True)
@@ -387,12 +383,6 @@ def _text_aspects(before: Term, after: Term, old: WrittenForm | None, new: Writt
     return tuple(aspects)
 
 
-def _spec_values(model: CompiledModel) -> dict[str, object]:
-    values = {name: getattr(model.spec, name) for name in SPEC_FIELDS}
-    values["offset"] = model.offset_sql
-    return values
-
-
 def _model_changes(old_models: dict[str, CompiledModel], new_models: dict[str, CompiledModel]) -> tuple[ModelChange, ...]:
     changes = []
     for name in sorted(set(old_models) | set(new_models)):
@@ -400,15 +390,14 @@ def _model_changes(old_models: dict[str, CompiledModel], new_models: dict[str, C
         if before is None or after is None:
             changes.append(ModelChange(name, "added" if before is None else "removed"))
             continue
-        old_prints = {term.name: term.fingerprint for term in before.terms}
-        new_prints = {term.name: term.fingerprint for term in after.terms}
-        old_spec, new_spec = _spec_values(before), _spec_values(after)
+        old_spec, new_spec = before.dependencies, after.dependencies
+        old_prints, new_prints = old_spec.pop("terms"), new_spec.pop("terms")
         change = ModelChange(
             name, "changed",
             terms_added=tuple(term for term in new_prints if term not in old_prints),
             terms_removed=tuple(term for term in old_prints if term not in new_prints),
             terms_changed=tuple(term for term in new_prints if term in old_prints and old_prints[term] != new_prints[term]),
-            spec_changed=tuple(field for field in SPEC_FIELDS if old_spec[field] != new_spec[field]),
+            spec_changed=tuple(field for field, value in new_spec.items() if old_spec[field] != value),
         )
         if change.terms_added or change.terms_removed or change.terms_changed or change.spec_changed:
             changes.append(change)
@@ -422,10 +411,7 @@ def _stale_fits(models: dict[str, CompiledModel], old_fitted: dict[str, str], ne
     stale = []
     for name, text in sorted(new_fitted.items()):
         file = f"fitted/{name}.yaml"
-        if name in models:
-            reasons = staleness(from_yaml(text, file), models[name])
-        else:
-            reasons = [f"specs/{name}.yaml no longer exists; restore it or delete {file}"]
+        reasons = staleness(from_yaml(text, file), models.get(name))
         if reasons:
             stale.append(StaleFit(name, file, tuple(reasons), name in moved or old_fitted.get(name) != text))
     return tuple(stale)

@@ -8,8 +8,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..errors import FeatpipeError
-
-DIALECTS = ("duckdb", "postgres", "spark", "snowflake", "bigquery", "sqlite")
+from .dialects import DIALECTS
 
 
 def column(name: str, table: str | None = None) -> exp.Column:

@@ -1,9 +1,11 @@
 """The drift query of a fitted model: one pass over a batch, counted in the training bins, with the PSI.
 
-The batch is read through the scoring query's own steps (term_values, checked_terms, contributions;
-see featpipe.sqlgen.score), so every term value and the linear predictor are computed exactly as
-scoring computes them, from the fitted file alone. The contributions step additionally carries the
-term values, and then:
+It takes plain data: the model as the scoring query takes it (featpipe.sqlgen.score.ScoringModel) and
+the monitored quantities, every term then the linear predictor, each with its training profile
+(featpipe.fitted.drift.monitored takes them from a fitted file). The batch is read through the scoring
+query's own steps (term_values, checked_terms, contributions), so every term value and the linear
+predictor are computed exactly as scoring computes them, from the fitted file alone. The
+contributions step additionally carries the term values, and then:
 
     drift_counts   one row: the batch's rows and, for each term and for the linear predictor, the
                    rows per training bin, NULLs, values below the training minimum and above the
@@ -11,7 +13,7 @@ term values, and then:
     drift_shares   the same row plus every bin's share of the batch's rows, floored (empty-bin rule)
     final SELECT   the counts, means and the population stability index of each term and the score
 
-Bins are the training profile's (featpipe.fitted.Profile): bin 1 holds v <= edges[0], bin i holds
+Bins are the training profile's (featpipe.sqlgen.profile.Profile): bin 1 holds v <= edges[0], bin i holds
 edges[i-2] < v <= edges[i-1], the last bin v > edges[-1]; NULL is a bin of its own (a missing value is
 a category of its own, common practice in credit scoring). Expected shares are the training rows'
 shares of these bins counting the training NULLs, written into the query as literals.
@@ -27,8 +29,13 @@ into the same bins. A term's mean contribution is the batch mean of coefficient 
 mean) over the rows where the term is not NULL, the rows its training mean was taken over; in training
 it is 0 by construction, so the batch value is the shift itself.
 
+Output columns are named in featpipe.project.names: `rows`, then per monitored name `<name>__bin_<i>`,
+`<name>__nulls`, `<name>__below_min`, `<name>__above_max`, `<name>__mean`, for terms
+`<name>__mean_contribution`, and `<name>__psi`.
+
 Example:
-    >>> query = drift_query(read_fitted(path), table="leases_2024_06")   # doctest: +SKIP
+    >>> model, items = scoring_model(fitted), monitored(fitted)           # doctest: +SKIP
+    >>> query = drift_query(model, items, table="leases_2024_06")         # doctest: +SKIP
     >>> row = dict(zip(output_names(query), engine.fetch(query)[0]))     # doctest: +SKIP
 """
 
@@ -38,15 +45,24 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from ..errors import FeatpipeError
-from ..fitted import FittedModel, Profile
+from ..project.names import (
+    LINEAR_PREDICTOR,
+    NULL_BIN,
+    ROWS,
+    above_column,
+    below_column,
+    bin_column,
+    mean_column,
+    mean_contribution_column,
+    psi_column,
+    share_column,
+)
 from .common import alias, column, double, number
-from .score import CONTRIBUTIONS, LINEAR_PREDICTOR, model_terms, score_query
+from .profile import Profile
+from .score import CONTRIBUTIONS, ScoringModel, score_query
 
 EMPTY_SHARE = 0.0001
 COUNTS, SHARES = "drift_counts", "drift_shares"
-ROWS = "rows"
-NULL_BIN = "null"
 
 
 @dataclass(frozen=True)
@@ -60,45 +76,6 @@ class Monitored:
     @property
     def bins(self) -> int:
         return len(self.profile.edges) + 1
-
-
-def bin_column(name: str, index: int) -> str:
-    """Rows of the batch in bin `index` (1-based) of `name`; `NULL_BIN` names the NULL bin."""
-    return f"{name}__{'nulls' if index == NULL_BIN else f'bin_{index}'}"
-
-
-def share_column(name: str, index: int | str) -> str:
-    return f"{name}__share_{index}"
-
-
-def below_column(name: str) -> str:
-    return f"{name}__below_min"
-
-
-def above_column(name: str) -> str:
-    return f"{name}__above_max"
-
-
-def mean_column(name: str) -> str:
-    return f"{name}__mean"
-
-
-def contribution_column(name: str) -> str:
-    return f"{name}__mean_contribution"
-
-
-def psi_column(name: str) -> str:
-    return f"{name}__psi"
-
-
-def monitored(fitted: FittedModel) -> tuple[Monitored, ...]:
-    """Every term in model order, then the linear predictor; refuses a fitted file without profiles."""
-    items = [Monitored(term.name, term.profile, term.estimate) for term in model_terms(fitted)]
-    items.append(Monitored(LINEAR_PREDICTOR, fitted.linear_predictor))
-    for item in items:
-        if item.profile is None:
-            raise FeatpipeError(f"fitted/{fitted.model}.yaml: {item.name} has no training profile; run `featpipe fit` again")
-    return tuple(items)
 
 
 def expected_shares(profile: Profile) -> tuple[float, ...]:
@@ -118,11 +95,15 @@ def floored(share: float) -> float:
     return max(share, EMPTY_SHARE)
 
 
-def drift_query(fitted: FittedModel, *, table: str | None = None) -> exp.Select:
-    """The drift SELECT of `fitted` over `table` (default: the fitted input's name): one row of counts and PSIs."""
-    items = monitored(fitted)
-    _refuse_clashes(fitted, items)
-    scoring = score_query(fitted, table=table)
+def drift_query(model: ScoringModel, items: tuple[Monitored, ...], *, table: str | None = None) -> exp.Select:
+    """The drift SELECT of `model` over `table` (default: `model.table`): one row of counts and PSIs.
+
+    `items` are the model's terms in model order, then the linear predictor.
+    """
+    expected = [*(term.name for term in model.terms), LINEAR_PREDICTOR]
+    if [item.name for item in items] != expected:
+        raise ValueError(f"monitored items {[item.name for item in items]} are not the terms and score {expected}")
+    scoring = score_query(model, table=table)
     steps = [(cte.alias, cte.this.copy()) for cte in scoring.ctes]
     if steps[-1][0] != CONTRIBUTIONS:
         raise ValueError(f"the scoring query's last step is {steps[-1][0]}, not {CONTRIBUTIONS}")
@@ -175,7 +156,7 @@ def _counts(item: Monitored) -> list[exp.Expression]:
     if item.estimate is not None:
         centred = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(item.profile.mean)))
         counts.append(alias(exp.Avg(this=exp.Mul(this=number(item.estimate), expression=centred)),
-                            contribution_column(item.name)))
+                            mean_contribution_column(item.name)))
     return counts
 
 
@@ -197,29 +178,3 @@ def _psi(item: Monitored) -> exp.Expression:
                        expression=exp.Ln(this=exp.Div(this=actual.copy(), expression=reference.copy())))
         total = part if total is None else exp.Add(this=total, expression=part)
     return total
-
-
-def _refuse_clashes(fitted: FittedModel, items: tuple[Monitored, ...]) -> None:
-    """Output names are `<name>__<what>`; a term named like the linear predictor or the rows column clashes."""
-    names = [item.name for item in items]
-    if ROWS in names or len(set(names)) != len(names) or any("__" in name for name in names):
-        raise FeatpipeError(f"fitted/{fitted.model}.yaml: a term is named '{LINEAR_PREDICTOR}' or '{ROWS}' or has '__' "
-                            "in its name, which the drift query's output columns use; rename the term")
-
-
-def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
-    """SQL comment lines stating what the drift query returns and the rules it applies."""
-    lines = [
-        f"featpipe drift query for model '{fitted.model}', input '{fitted.input}'",
-        f"fitted file fitted/{fitted.model}.yaml, hash {fitted_hash}; model fingerprint {fitted.fingerprint}",
-        "One row: rows; per term and for linear_predictor the rows per training bin (<name>__bin_<i>),",
-        "NULLs (<name>__nulls, a bin of its own), values outside the training range (__below_min, __above_max),",
-        "the mean of the non-NULL values (__mean), per term the mean of coefficient * (value - training mean) over",
-        "its non-NULL values (__mean_contribution, 0 in training) and the population stability index (__psi).",
-        "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge;",
-        "expected shares are the training rows' (NULLs included), written below as literals.",
-        "PSI = SUM over bins of (actual - expected) * LN(actual / expected); a share below "
-        f"{EMPTY_SHARE:g} counts as {EMPTY_SHARE:g}.",
-        "Reading (common practice in credit scoring): below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift.",
-    ]
-    return "".join(f"-- {line}\n" for line in lines)

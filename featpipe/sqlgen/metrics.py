@@ -18,7 +18,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..project import FAMILIES
-from ..project.names import INTERCEPT
+from ..project.names import INTERCEPT, ROWS
 from .common import alias, column, holdout_rows, number
 
 # EXP(700) is about 1e304 and EXP(-700) about 1e-304: finite and non-zero on every engine.
@@ -120,7 +120,7 @@ def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, floa
                        expression=softplus_rest)
     error = exp.Paren(this=exp.Sub(this=p.copy(), expression=y.copy()))
     return exp.select(
-        alias(exp.Count(this=exp.Star()), "rows"),
+        alias(exp.Count(this=exp.Star()), ROWS),
         alias(_count_if(event), "events"),
         alias(_count_if(predicted_event), "predicted_events"),
         alias(_count_if(exp.and_(predicted_event.copy(), event.copy())), "true_positives"),
@@ -151,7 +151,7 @@ def regression_summary_query(layout: DesignLayout, family: str, coefficients: Ma
     else:
         deviance = squared.copy()
     return exp.select(
-        alias(exp.Count(this=exp.Star()), "rows"),
+        alias(exp.Count(this=exp.Star()), ROWS),
         alias(exp.Sum(this=y.copy()), "observed_sum"),
         alias(exp.Sum(this=mu.copy()), "predicted_sum"),
         alias(exp.Sum(this=exp.Abs(this=residual.copy())), "absolute_error_sum"),
@@ -172,7 +172,7 @@ def calibration_query(layout: DesignLayout, family: str, coefficients: Mapping[s
     return (
         exp.select(
             alias(column(DECILE), "decile"),
-            alias(exp.Count(this=exp.Star()), "rows"),
+            alias(exp.Count(this=exp.Star()), ROWS),
             alias(exp.Sum(this=column(PREDICTED)), "predicted_sum"),
             alias(exp.Sum(this=column(OBSERVED)), "observed_sum"),
         )

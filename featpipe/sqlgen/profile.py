@@ -26,12 +26,32 @@ from functools import reduce
 from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
-from ..fitted import Profile
 from .common import alias, column, double, number
 
 DECILES = range(1, 10)
 NAME, VALUE = "_name", "_value"
 ROWS, AT_OR_BELOW, COUNT = "_rows", "_at_or_below", "_n"
+
+
+@dataclass(frozen=True)
+class Profile:
+    """Training distribution of a term (or of the linear predictor), kept for drift and reports.
+
+    `edges` are the distinct deciles of the non-NULL training values (ties collapse into one edge);
+    bin i holds values v with edges[i-1] < v <= edges[i], the first bin everything up to edges[0] and
+    the last everything above edges[-1]. `shares` are the training shares of those bins among
+    non-NULL rows; NULLs are counted apart in `nulls`.
+    """
+
+    count: int
+    nulls: int
+    mean: float
+    sd: float
+    min: float
+    max: float
+    median: float
+    edges: tuple[float, ...]
+    shares: tuple[float, ...]
 
 
 def profile_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Query:

@@ -1,8 +1,12 @@
-"""The scoring query of a fitted model: one self-contained SELECT built from the fitted file alone.
+"""The scoring query of a fitted model: one self-contained SELECT built from plain data alone.
 
-Every term is computed from the canonical SQL stored in the fitted file, never from the current term
-files, so a later edit of a term cannot change what a fitted model scores. The query reads in steps
-(common table expressions), each computing something once:
+`ScoringModel` holds exactly what the query needs: the key, the input's name, the family, the
+intercept, the offset's SQL, the declared column types and per term its canonical SQL, coefficient
+and training mean. featpipe.fitted.scoring.scoring_model takes it from a fitted file (checking the
+file first), so every term is computed from the canonical SQL stored in the fitted file, never from
+the current term files, and a later edit of a term cannot change what a fitted model scores.
+
+The query reads in steps (common table expressions), each computing something once:
 
     term_values    the key, every term value as DOUBLE (hardened SQL) and the offset
     checked_terms  plus `status`: 'ok', or 'missing: <term>' naming the FIRST NULL term in model order
@@ -13,9 +17,9 @@ files, so a later edit of a term cannot change what a fitted model scores. The q
 The prediction uses the fit's own inverse link (`metrics.prediction`): the linear predictor is clamped
 to [-700, 700] before EXP, so EXP never overflows, nor underflows to an error on PostgreSQL.
 
-Output columns, in order: the key, `prediction`, `linear_predictor`, `offset` (models with an offset
-only), `contribution_<term>` per term in model order, `status`, and with reasons K > 0,
-`reason_1` .. `reason_K`.
+Output columns (named in featpipe.project.names), in order: the key, `prediction`, `linear_predictor`,
+`offset` (models with an offset only), `contribution_<term>` per term in model order, `status`, and
+with reasons K > 0, `reason_1` .. `reason_K`.
 
 Contributions are centred at the training means: contribution_t = coefficient_t * (value_t - mean_t),
 so for every complete row
@@ -23,7 +27,7 @@ so for every complete row
     linear_predictor = baseline + offset + SUM(contribution_t)
 
 where `baseline` = intercept + SUM(coefficient_t * mean_t) is the linear predictor of a row sitting at
-the training means (written in the header comment), and offset is 0 for models without one.
+the training means (written in the scoring SQL's header comment), and offset is 0 for models without one.
 
 Rows that cannot be scored honestly get no number: when any term (or the offset) is NULL, the
 prediction, linear predictor and contributions are NULL and `status` names the first missing one.
@@ -35,12 +39,18 @@ Neither is refused here; `featpipe drift` reports the shares of such values agai
 profile.
 
 Example:
-    >>> from featpipe.fitted import read_fitted                        # doctest: +SKIP
-    >>> query = score_query(read_fitted(path), reasons=3)              # doctest: +SKIP
-    >>> print(render_score(query, fitted, fitted_hash, "postgres"))    # doctest: +SKIP
+    >>> term = ScoringTerm("age", '"age"', is_boolean=False, estimate=0.25, mean=40.0)
+    >>> model = ScoringModel("id", "people", "gaussian", -1.5, None, {"id": "BIGINT", "age": "DOUBLE"}, (term,),
+    ...                      "fitted/m.yaml")
+    >>> baseline(model)
+    8.5
+    >>> [column.alias_or_name for column in score_query(model, reasons=1).expressions]
+    ['id', 'prediction', 'linear_predictor', 'contribution_age', 'status', 'reason_1']
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import sqlglot
 from sqlglot import exp
@@ -49,64 +59,82 @@ from sqlglot.errors import ParseError, TokenError
 from ..compiler.allowlist import check_allowed
 from ..compiler.layout import DesignLayout
 from ..errors import FeatpipeError
-from ..fitted import INTERCEPT, FittedModel, FittedTerm
-from ..project.names import OFFSET_COLUMN
-from .common import alias, column, number, render
+from ..project.names import (
+    INTERCEPT,
+    LINEAR_PREDICTOR,
+    OFFSET,
+    OFFSET_COLUMN,
+    PREDICTION,
+    STATUS,
+    contribution_column,
+    reason_column,
+)
+from .common import alias, column, number
 from .harden import as_number, harden
 from .metrics import linear_predictor, prediction
 
 FITTED_DIALECT = "duckdb"  # the fitted file stores canonical SQL in the duckdb dialect
 
 TERM_VALUES, CHECKED, CONTRIBUTIONS, RANKS = "term_values", "checked_terms", "contributions", "reason_ranks"
-PREDICTION, LINEAR_PREDICTOR, OFFSET, STATUS = "prediction", "linear_predictor", "offset", "status"
 OK = "ok"
 
 
-def contribution_column(term: str) -> str:
-    return f"contribution_{term}"
+@dataclass(frozen=True)
+class ScoringTerm:
+    """One term as the scoring query computes it."""
+
+    name: str
+    sql: str  # canonical SQL over input columns, in FITTED_DIALECT
+    is_boolean: bool  # booleans count as 1.0 / 0.0
+    estimate: float
+    mean: float  # the training mean, at which contributions are centred
 
 
-def reason_column(rank: int) -> str:
-    return f"reason_{rank}"
+@dataclass(frozen=True)
+class ScoringModel:
+    """Everything the scoring query reads, as plain data."""
+
+    key: str
+    table: str  # the table scored by default: the input the model was fitted on
+    family: str
+    intercept: float
+    offset: str | None  # SQL over input columns, in FITTED_DIALECT
+    columns: dict[str, str]  # declared SQL type of every input column the terms and offset read
+    terms: tuple[ScoringTerm, ...]  # in model order
+    source: str  # where the model comes from, for messages, e.g. "fitted/NAME.yaml"
+
+    @property
+    def coefficients(self) -> dict[str, float]:
+        return {INTERCEPT: self.intercept, **{term.name: term.estimate for term in self.terms}}
 
 
 def missing_status(name: str) -> str:
     return f"missing: {name}"
 
 
-def model_terms(fitted: FittedModel) -> tuple[FittedTerm, ...]:
-    """The terms after the intercept, in model order."""
-    if not fitted.terms or fitted.terms[0].name != INTERCEPT:
-        raise FeatpipeError(f"{_source(fitted)}: the first term must be '{INTERCEPT}'; run `featpipe fit` again")
-    return fitted.terms[1:]
-
-
-def baseline(fitted: FittedModel) -> float:
+def baseline(model: ScoringModel) -> float:
     """The linear predictor (without offset) of a row whose every term sits at its training mean."""
-    terms = model_terms(fitted)
-    return fitted.terms[0].estimate + sum(term.estimate * _mean(fitted, term) for term in terms)
+    return model.intercept + sum(term.estimate * term.mean for term in model.terms)
 
 
-def score_query(fitted: FittedModel, *, table: str | None = None, reasons: int = 0) -> exp.Select:
-    """The scoring SELECT of `fitted` over `table` (default: the fitted input's name).
+def score_query(model: ScoringModel, *, table: str | None = None, reasons: int = 0) -> exp.Select:
+    """The scoring SELECT of `model` over `table` (default: `model.table`, the fitted input's name).
 
     `reasons` K > 0 adds reason_1..reason_K: the names of the K terms with the largest positive
     contributions (ties broken by model order), NULL where fewer than K terms push the prediction up.
     Ranks are sums of CASE comparisons, so the SQL needs no array or window functions.
     """
-    terms = model_terms(fitted)
-    if not 0 <= reasons <= len(terms):
-        raise FeatpipeError(f"--reasons must be between 0 and {len(terms)}, the number of terms of model '{fitted.model}'")
-    _refuse_clashes(fitted, terms)
-    names = [term.name for term in terms]
+    if not 0 <= reasons <= len(model.terms):
+        raise FeatpipeError(f"--reasons must be between 0 and {len(model.terms)}, the number of terms in {model.source}")
+    names = [term.name for term in model.terms]
     steps = [
-        (TERM_VALUES, _term_values(fitted, terms, table or fitted.input)),
-        (CHECKED, _checked_terms(fitted, names)),
-        (CONTRIBUTIONS, _contributions(fitted, terms)),
+        (TERM_VALUES, _term_values(model, table or model.table)),
+        (CHECKED, _checked_terms(model, names)),
+        (CONTRIBUTIONS, _contributions(model)),
     ]
-    outputs = [column(fitted.key), alias(_prediction(fitted.family, column(LINEAR_PREDICTOR)), PREDICTION),
+    outputs = [column(model.key), alias(_prediction(model, column(LINEAR_PREDICTOR)), PREDICTION),
                column(LINEAR_PREDICTOR)]
-    outputs += [column(OFFSET)] if fitted.offset is not None else []
+    outputs += [column(OFFSET)] if model.offset is not None else []
     outputs += [column(contribution_column(name)) for name in names]
     outputs.append(column(STATUS))
     if reasons:
@@ -118,37 +146,37 @@ def score_query(fitted: FittedModel, *, table: str | None = None, reasons: int =
     return query
 
 
-def _term_values(fitted: FittedModel, terms: tuple[FittedTerm, ...], table: str) -> exp.Select:
+def _term_values(model: ScoringModel, table: str) -> exp.Select:
     """The key, each term's value as DOUBLE and the offset, from the input table."""
-    values = [column(fitted.key), *(alias(term_value(fitted, term), term.name) for term in terms)]
-    if fitted.offset is not None:
-        values.append(alias(_parsed(fitted, "offset", fitted.offset, is_boolean=False), OFFSET_COLUMN))
+    values = [column(model.key), *(alias(term_value(model, term), term.name) for term in model.terms)]
+    if model.offset is not None:
+        values.append(alias(_parsed(model, "offset", model.offset, is_boolean=False), OFFSET_COLUMN))
     return exp.select(*values).from_(exp.to_table(table))
 
 
-def _checked_terms(fitted: FittedModel, names: list[str]) -> exp.Select:
+def _checked_terms(model: ScoringModel, names: list[str]) -> exp.Select:
     """Everything of term_values, plus the row's status."""
-    has_offset = fitted.offset is not None
-    carried = [column(fitted.key), *map(column, names), *([column(OFFSET_COLUMN)] if has_offset else [])]
+    has_offset = model.offset is not None
+    carried = [column(model.key), *map(column, names), *([column(OFFSET_COLUMN)] if has_offset else [])]
     status = alias(status_expression(names, has_offset), STATUS)
     return exp.select(*carried, status).from_(exp.to_table(TERM_VALUES))
 
 
-def _contributions(fitted: FittedModel, terms: tuple[FittedTerm, ...]) -> exp.Select:
+def _contributions(model: ScoringModel) -> exp.Select:
     """The key, status, linear predictor, offset and, on complete rows, each term's contribution.
 
-    checked_terms has the shape of a design table (key, DOUBLE terms, offset), so the fit's own linear
-    predictor applies to it unchanged.
+    checked_terms has the shape of a design table without its target (key, DOUBLE terms, offset), so
+    the fit's own linear predictor, which reads only terms and offset, applies to it unchanged.
     """
-    names = tuple(term.name for term in terms)
-    has_offset = fitted.offset is not None
-    shape = DesignLayout(CHECKED, fitted.key, fitted.target, names, offset=OFFSET_COLUMN if has_offset else None)
+    names = tuple(term.name for term in model.terms)
+    has_offset = model.offset is not None
+    shape = DesignLayout(CHECKED, model.key, target="", terms=names, offset=OFFSET_COLUMN if has_offset else None)
     complete = column(STATUS).eq(exp.Literal.string(OK))
-    projections = [column(fitted.key), column(STATUS),
-                   alias(linear_predictor(shape, fitted.coefficients), LINEAR_PREDICTOR)]
+    projections = [column(model.key), column(STATUS),
+                   alias(linear_predictor(shape, model.coefficients), LINEAR_PREDICTOR)]
     projections += [alias(column(OFFSET_COLUMN), OFFSET)] if has_offset else []
-    for term in terms:
-        centred = exp.Paren(this=exp.Sub(this=column(term.name), expression=number(_mean(fitted, term))))
+    for term in model.terms:
+        centred = exp.Paren(this=exp.Sub(this=column(term.name), expression=number(term.mean)))
         contribution = exp.Case().when(complete.copy(), exp.Mul(this=number(term.estimate), expression=centred))
         projections.append(alias(contribution, contribution_column(term.name)))
     return exp.select(*projections).from_(exp.to_table(CHECKED))
@@ -161,9 +189,9 @@ def _reason_ranks(names: list[str], contributions: exp.Select) -> exp.Select:
     return exp.select(*carried, *ranks).from_(exp.to_table(CONTRIBUTIONS))
 
 
-def term_value(fitted: FittedModel, term: FittedTerm) -> exp.Expression:
+def term_value(model: ScoringModel, term: ScoringTerm) -> exp.Expression:
     """A term's value as DOUBLE from its fitted canonical SQL, hardened like the design table's."""
-    return _parsed(fitted, f"term '{term.name}'", term.sql, is_boolean=term.kind == "boolean")
+    return _parsed(model, f"term '{term.name}'", term.sql, is_boolean=term.is_boolean)
 
 
 def status_expression(names: list[str], has_offset: bool) -> exp.Expression:
@@ -201,10 +229,10 @@ def reason_expression(names: list[str], rank: int) -> exp.Expression:
 
 
 def score_statement(
-    fitted: FittedModel, *, table: str | None = None, reasons: int = 0, as_view: str | None = None, into: str | None = None
+    model: ScoringModel, *, table: str | None = None, reasons: int = 0, as_view: str | None = None, into: str | None = None
 ) -> exp.Expression:
     """The scoring query, optionally wrapped as CREATE VIEW `as_view` or CREATE TABLE `into` AS."""
-    query = score_query(fitted, table=table, reasons=reasons)
+    query = score_query(model, table=table, reasons=reasons)
     if as_view and into:
         raise FeatpipeError("give --as-view or --into, not both")
     if as_view:
@@ -214,67 +242,28 @@ def score_statement(
     return query
 
 
-def score_header(fitted: FittedModel, fitted_hash: str) -> str:
-    """SQL comment lines naming the model, every fingerprint and the fitted file's hash."""
-    terms = model_terms(fitted)
-    offset = " + offset" if fitted.offset is not None else ""
-    lines = [
-        f"featpipe scoring query for model '{fitted.model}' ({fitted.family}, {fitted.link} link), input '{fitted.input}'",
-        f"fitted file fitted/{fitted.model}.yaml, hash {fitted_hash}; model fingerprint {fitted.fingerprint}",
-        "term fingerprints:",
-        *(f"  {term.name}: {term.fingerprint}" for term in terms),
-        f"linear_predictor = {baseline(fitted)!r}{offset} + SUM(contribution_*) on rows with status 'ok'",
-        "(the first number is the linear predictor at the training means).",
-        "status 'missing: <term>' names the first NULL term; such rows get no prediction.",
-        "Unseen categories take their term expression's value (indicators give 0, the reference level);",
-        "values outside the training range are extrapolated by the linear model.",
-    ]
-    return "".join(f"-- {line}\n" for line in lines)
-
-
-def render_score(statement: exp.Expression, fitted: FittedModel, fitted_hash: str, dialect: str) -> str:
-    """The header comment and the statement rendered for `dialect`, ending with ';'."""
-    return score_header(fitted, fitted_hash) + render(statement, dialect) + ";\n"
-
-
-def _parsed(fitted: FittedModel, what: str, sql: str | None, *, is_boolean: bool) -> exp.Expression:
+def _parsed(model: ScoringModel, what: str, sql: str | None, *, is_boolean: bool) -> exp.Expression:
     """Parse fitted SQL and re-check it against the allow-list: the file may have been edited by hand."""
     if not sql:
-        raise FeatpipeError(f"{_source(fitted)}: {what} has no SQL; run `featpipe fit` again")
+        raise FeatpipeError(f"{model.source}: {what} has no SQL; run `featpipe fit` again")
     try:
         tree = sqlglot.parse_one(sql, dialect=FITTED_DIALECT)
     except (ParseError, TokenError) as error:
-        raise FeatpipeError(f"{_source(fitted)}: {what} is not a SQL expression ({str(error).splitlines()[0]}); "
+        raise FeatpipeError(f"{model.source}: {what} is not a SQL expression ({str(error).splitlines()[0]}); "
                             "run `featpipe fit` again") from None
-    problems = check_allowed(tree, _source(fitted))
+    problems = check_allowed(tree, model.source)
     if problems:
-        raise FeatpipeError(f"{_source(fitted)}: {what}: {problems[0].message}; run `featpipe fit` again")
-    return as_number(harden(tree, schema=fitted.columns), is_boolean)
+        raise FeatpipeError(f"{model.source}: {what}: {problems[0].message}; run `featpipe fit` again")
+    return as_number(harden(tree, schema=model.columns), is_boolean)
 
 
-def _prediction(family: str, eta: exp.Expression) -> exp.Expression:
+def _prediction(model: ScoringModel, eta: exp.Expression) -> exp.Expression:
     try:
-        return prediction(family, eta)
+        return prediction(model.family, eta)
     except ValueError as error:
-        raise FeatpipeError(f"fitted file: {error}") from None
-
-
-def _mean(fitted: FittedModel, term: FittedTerm) -> float:
-    if term.profile is None:
-        raise FeatpipeError(f"{_source(fitted)}: term '{term.name}' has no training profile; run `featpipe fit` again")
-    return term.profile.mean
+        raise FeatpipeError(f"{model.source}: {error}") from None
 
 
 def _rank_column(term: str) -> str:
     return f"_rank_{term}"
 
-
-def _refuse_clashes(fitted: FittedModel, terms: tuple[FittedTerm, ...]) -> None:
-    reserved = {PREDICTION, LINEAR_PREDICTOR, OFFSET, STATUS, *(contribution_column(t.name) for t in terms)}
-    if fitted.key in reserved or fitted.key.startswith("reason_") or fitted.key in {t.name for t in terms}:
-        raise FeatpipeError(f"{_source(fitted)}: the key column '{fitted.key}' has the name of a scoring output column; "
-                            "rename the key column of the input")
-
-
-def _source(fitted: FittedModel) -> str:
-    return f"fitted/{fitted.model}.yaml"

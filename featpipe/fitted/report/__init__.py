@@ -15,17 +15,14 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from ...atomic import write_text_atomic
-from ...compiler import compile_project
 from ...engines.base import Engine
 from ...engines.builds import read_builds, record_builds
 from ...engines.compute import connect, prepare_inputs
-from ...errors import FeatpipeError
 from ...project import Project
-from .. import FittedModel, file_hash, staleness
+from .. import FittedModel, file_hash
+from ..current import refuse_if_stale
 from ..scoring import load_fitted
 from .compare import check_comparable, likelihood_ratio
-from .data import gather
-from .render import Sources, render_report
 
 __all__ = ["write_report", "write_reports", "report_path"]
 
@@ -40,22 +37,24 @@ def report_path(project: Project, model: str, against: str | None = None) -> Pat
 
 def write_report(
     project: Project, model: str, *, against: str | None = None, pair: tuple[str, str] | None = None,
-    out: Path | None = None, engine: Engine | None = None,
+    out: Path | None = None, engine: Engine | None = None, allow_stale: bool = False,
 ) -> Path:
     """Write the report of fitted/MODEL.yaml (compared with fitted/AGAINST.yaml when given) and return its path.
 
     `pair` names the two numeric inputs of the decision surface (default: the two read together by the
     most terms). `engine` reuses an open engine of the project; by default one is opened and closed.
+    A stale model is refused unless `allow_stale`; the page then says why it is stale.
     """
     fitted = load_fitted(project, model)
     other = load_fitted(project, against) if against else None
     if other is not None:
         check_comparable(fitted, other)
+    stale = {item.model: refuse_if_stale(project, item, allow_stale=allow_stale) for item in (fitted, other) if item is not None}
     if engine is None:
         with connect(project) as opened:
-            html = _build(opened, project, fitted, other, pair)
+            html = _build(opened, project, fitted, other, pair, stale)
     else:
-        html = _build(engine, project, fitted, other, pair)
+        html = _build(engine, project, fitted, other, pair, stale)
     path = Path(out) if out is not None else report_path(project, model, against)
     write_text_atomic(path, html)
     return path
@@ -78,14 +77,18 @@ def write_reports(project: Project, models: Sequence[str], *, engine: Engine | N
 
 
 def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedModel | None,
-           pair: tuple[str, str] | None) -> str:
+           pair: tuple[str, str] | None, stale: dict[str, tuple[str, ...]]) -> str:
+    # numpy, matplotlib and jinja2 load only when a page is drawn, not with the API (`featpipe check`).
+    from .data import gather
+    from .render import Sources, render_report
+
     recorded = read_builds(engine)
     builds = dict(recorded)
     prepare_inputs(engine, project, {fitted.input}, builds)  # loads a changed `load:` file, checks the contract
     record_builds(engine, builds, recorded)
     data = gather(engine, project.inputs[fitted.input], fitted, other, pair)
-    warnings = _warnings(project, fitted, data.figures.train_rows)
-    other_warnings = _warnings(project, other, data.shared_rows[1]) if other is not None else ()
+    warnings = _warnings(fitted, stale[fitted.model], data.figures.train_rows)
+    other_warnings = _warnings(other, stale[other.model], data.shared_rows[1]) if other is not None else ()
     test = likelihood_ratio(fitted, other, data.shared_rows) if other is not None else None
     sources = Sources(
         fitted_hash=file_hash(project.fitted_path(fitted.model)),
@@ -97,20 +100,11 @@ def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedM
     return render_report(data, sources, test)
 
 
-def _warnings(project: Project, fitted: FittedModel, train_rows_now: int) -> tuple[str, ...]:
-    """The fit's own warnings, then why it is stale: changed definitions, or data that no longer match."""
+def _warnings(fitted: FittedModel, stale: tuple[str, ...], train_rows_now: int) -> tuple[str, ...]:
+    """The fit's own warnings, then why it is stale: changed definitions (drawn anyway when allowed), or
+    data that no longer match."""
     found = list(fitted.warnings)
-    try:
-        compiled = compile_project(project)
-    except FeatpipeError:
-        found.append("stale? the project does not pass `featpipe check` now, so whether this fit still matches its "
-                     "definitions is unknown")
-        compiled = None
-    if compiled is not None:
-        if fitted.model not in compiled.models:
-            found.append(f"stale: specs/{fitted.model}.yaml no longer exists")
-        else:
-            found += [f"stale: {reason}; run `featpipe fit {fitted.model}`" for reason in staleness(fitted, compiled.models[fitted.model])]
+    found += [f"stale: {reason}; run `featpipe fit {fitted.model}`" for reason in stale]
     if train_rows_now != fitted.rows["train"]:
         found.append(f"stale: input '{fitted.input}' now gives {train_rows_now:,} training rows where the fit had "
                      f"{fitted.rows['train']:,}; the data changed since the fit, run `featpipe fit {fitted.model}`")

@@ -10,10 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from scipy.stats import chi2
-
 from ...errors import FeatpipeError
-from ...sqlgen.score import model_terms
 from .. import FittedModel
 
 
@@ -73,14 +70,17 @@ def likelihood_ratio(fitted: FittedModel, other: FittedModel, shared_rows: tuple
         return LikelihoodRatio(reason=(
             f"the models were not fitted on the same rows ({this_rows:,} and {other_rows:,} training rows, "
             f"{both:,} in common), so their log-likelihoods are not comparable"))
+    # scipy loads here, when a test is run, not when the API imports the report (`featpipe check`).
+    from scipy.stats import chi2
+
     statistic = 2.0 * (larger.fit["log_likelihood"] - smaller.fit["log_likelihood"])
     df = len(larger.terms) - len(smaller.terms)
-    extra = tuple(term.name for term in model_terms(larger) if (term.name, term.fingerprint) not in _terms(smaller))
+    extra = tuple(term.name for term in larger.model_terms if (term.name, term.fingerprint) not in _terms(smaller))
     return LikelihoodRatio(larger.model, smaller.model, statistic, df, float(chi2.sf(statistic, df)), extra)
 
 
 def _terms(fitted: FittedModel) -> frozenset[tuple[str, str | None]]:
-    return frozenset((term.name, term.fingerprint) for term in model_terms(fitted))
+    return frozenset((term.name, term.fingerprint) for term in fitted.model_terms)
 
 
 def _penalized(fitted: FittedModel) -> bool:

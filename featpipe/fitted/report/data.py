@@ -25,7 +25,7 @@ from sqlglot import exp
 from ...engines.base import Engine
 from ...errors import FeatpipeError
 from ...project import InputSpec
-from ...sqlgen.score import PREDICTION, model_terms
+from ...project.names import PREDICTION
 from .. import FittedModel
 from ..scoring import scoring_contract
 from . import queries
@@ -127,7 +127,7 @@ class ReportData:
 def term_inputs(fitted: FittedModel) -> list[str]:
     """Input columns the terms read, in the order the terms first read them."""
     seen: dict[str, None] = {}
-    for term in model_terms(fitted):
+    for term in fitted.model_terms:
         for name in term.columns:
             if name != fitted.key:
                 seen.setdefault(name, None)
@@ -143,7 +143,7 @@ def default_pair(fitted: FittedModel, numeric: set[str]) -> tuple[str, str] | No
     best, best_count = (inputs[0], inputs[1]), 0
     for i, a in enumerate(inputs):
         for b in inputs[i + 1:]:
-            count = sum(a in term.columns and b in term.columns for term in model_terms(fitted))
+            count = sum(a in term.columns and b in term.columns for term in fitted.model_terms)
             if count > best_count:
                 best, best_count = (a, b), count
     return best
@@ -290,7 +290,7 @@ def _surface(
         predictions[model.model] = values.reshape(len(ys), len(xs))
     found = engine.fetch(queries.sample_query(rows_table, models[0].key, [a, b, OBSERVED, PREDICTED], queries.held_out(), POINT_ROWS))
     points = tuple((float(x), float(y), float(o), float(p)) for x, y, o, p in found if x is not None and y is not None)
-    combining = {model.model: tuple(t.name for t in model_terms(model) if a in t.columns and b in t.columns) for model in models}
+    combining = {model.model: tuple(t.name for t in model.model_terms if a in t.columns and b in t.columns) for model in models}
     return Surface(a, b, tuple(xs), tuple(ys), predictions, points, combining)
 
 

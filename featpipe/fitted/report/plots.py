@@ -17,7 +17,6 @@ import matplotlib
 import numpy as np
 from matplotlib.figure import Figure
 
-from ...sqlgen.score import model_terms
 from .. import FittedModel
 from ..notes import figure as figure_text
 from ..notes import words
@@ -59,7 +58,7 @@ def _styled(draw):
 @_styled
 def interval_plot(fitted: FittedModel, name: str) -> str:
     """Each term's effect per step with its 95% interval, against the line of no effect."""
-    terms = [term for term in model_terms(fitted) if term.effect is not None]
+    terms = [term for term in fitted.model_terms if term.effect is not None]
     ratio = bool(terms) and terms[0].effect.kind != "difference"
     labels = [f"{t.name} (per {t.effect.step:g})" for t in reversed(terms)]
     height = 0.9 + 0.3 * max(len(terms), 1)

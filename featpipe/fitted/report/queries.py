@@ -26,10 +26,12 @@ from collections.abc import Mapping, Sequence
 from sqlglot import exp
 
 from ...project import Holdout, InputSpec
+from ...project.names import PREDICTION, ROWS, STATUS
 from ...sqlgen.common import alias, column, number
 from ...sqlgen.design import holdout_flag, target_value
-from ...sqlgen.score import OK, PREDICTION, STATUS, score_query
+from ...sqlgen.score import OK, score_query
 from .. import FittedModel
+from ..scoring import scoring_model
 
 OBSERVED, HOLDOUT, PREDICTED, COMPLETE = "_observed", "_holdout", "_prediction", "_complete"
 SAMPLE_SALT = "featpipe-report:"
@@ -64,7 +66,7 @@ def rows_query(fitted: FittedModel, source: InputSpec, columns: Sequence[str]) -
         )
         .from_(exp.to_table(source.name).as_(exp.to_identifier(INPUT, quoted=True)))
         .join(
-            score_query(fitted, table=source.name).subquery(exp.to_identifier(SCORED, quoted=True)),
+            score_query(scoring_model(fitted), table=source.name).subquery(exp.to_identifier(SCORED, quoted=True)),
             on=column(key, INPUT).eq(column(key, SCORED)),
         )
     )
@@ -103,7 +105,7 @@ def levels_query(table: str, name: str, limit: int) -> exp.Select:
     """The most frequent non-NULL values of a column among training rows, with their counts."""
     count = exp.Count(this=exp.Star())
     return (
-        exp.select(alias(column(name), "value"), alias(count, "rows"))
+        exp.select(alias(column(name), "value"), alias(count, ROWS))
         .from_(exp.to_table(table))
         .where(exp.and_(training(), column(name).is_(exp.null()).not_()))
         .group_by(column(name))
@@ -129,7 +131,7 @@ def score_bins_query(table: str) -> exp.Select:
     scaled = exp.Mul(this=column(PREDICTED), expression=number(float(SCORE_BINS)))
     bin_ = exp.cast(exp.Floor(this=scaled), "BIGINT")
     return (
-        exp.select(alias(bin_, "bin"), alias(exp.Count(this=exp.Star()), "rows"), alias(exp.Sum(this=column(OBSERVED)), "events"))
+        exp.select(alias(bin_, "bin"), alias(exp.Count(this=exp.Star()), ROWS), alias(exp.Sum(this=column(OBSERVED)), "events"))
         .from_(exp.to_table(table))
         .where(held_out())
         .group_by(bin_.copy())
@@ -168,7 +170,7 @@ def residual_deciles_query(table: str, key: str, family: str) -> exp.Select:
     return (
         exp.select(
             column("_decile"),
-            alias(rows, "rows"),
+            alias(rows, ROWS),
             alias(exp.Avg(this=column(PREDICTED)), "mean_predicted"),
             alias(exp.Avg(this=column(OBSERVED)), "mean_observed"),
             *(alias(_percentile(column("_residual"), share), f"_q{int(share * 100)}") for share in (0.1, 0.25, 0.5, 0.75, 0.9)),
@@ -235,7 +237,7 @@ def grid_scores_query(fitted: FittedModel, grid: str, columns: Sequence[str]) ->
         exp.select(alias(column(key, "_g"), key), *(alias(column(name, "_g"), name) for name in columns if name != key),
                    alias(column(PREDICTION, SCORED), PREDICTION))
         .from_(exp.to_table(grid).as_(exp.to_identifier("_g", quoted=True)))
-        .join(score_query(fitted, table=grid).subquery(exp.to_identifier(SCORED, quoted=True)),
+        .join(score_query(scoring_model(fitted), table=grid).subquery(exp.to_identifier(SCORED, quoted=True)),
               on=column(key, "_g").eq(column(key, SCORED)))
         .order_by(column(key, "_g"))
     )

@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
-from ...sqlgen.score import model_terms
 from .. import FittedModel
 from ..notes import figure, model_reading, p_text, words
 from .compare import LikelihoodRatio
@@ -18,7 +17,7 @@ def summary(fitted: FittedModel, figures: ModelFigures, warnings: Sequence[str])
     """The model in one paragraph: what it predicts, on what, how well, and whether to trust the fit."""
     fit = fitted.fit
     text = model_reading(
-        family=fitted.family, target=fitted.target, terms=len(model_terms(fitted)), train_rows=fitted.rows["train"],
+        family=fitted.family, target=fitted.target, terms=len(fitted.model_terms), train_rows=fitted.rows["train"],
         metrics=fitted.metrics, threshold=fitted.threshold, converged=bool(fit.get("converged")),
         penalized=bool(fit.get("penalized")),
     )
@@ -35,7 +34,7 @@ def summary(fitted: FittedModel, figures: ModelFigures, warnings: Sequence[str])
 
 
 def coefficients(fitted: FittedModel) -> str:
-    terms = [term for term in model_terms(fitted) if term.effect is not None]
+    terms = [term for term in fitted.model_terms if term.effect is not None]
     if not terms:
         return "The model has no terms besides the intercept."
     no_effect = 1.0 if terms[0].effect.kind != "difference" else 0.0
@@ -47,7 +46,7 @@ def coefficients(fitted: FittedModel) -> str:
 
 
 def terms(fitted: FittedModel) -> str:
-    count = len(model_terms(fitted))
+    count = len(fitted.model_terms)
     return (f"Each of the {count} terms is the SQL below, as stored in fitted/{fitted.model}.yaml: the scoring query "
             "computes exactly this, and a term's fingerprint changes whenever its meaning does.")
 

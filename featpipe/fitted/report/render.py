@@ -16,7 +16,6 @@ from pygments import highlight
 from pygments.formatters import HtmlFormatter
 from pygments.lexers import SqlLexer
 
-from ...sqlgen.score import model_terms
 from .. import FittedModel
 from ..notes import figure
 from . import plots, readings
@@ -109,7 +108,7 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
         "coefficients_reading": readings.coefficients(fitted),
         "interval_svg": Markup(plots.interval_plot(fitted, "intervals")),
         "terms_reading": readings.terms(fitted),
-        "terms": [_term(term, formatter) for term in model_terms(fitted)],
+        "terms": [_term(term, formatter) for term in fitted.model_terms],
         "curves_reading": readings.curves(fitted, data.curves, data.held, other),
         "curves": [_curve(curve, models, data.held, index) for index, curve in enumerate(data.curves)],
         "surface_reading": readings.surface(fitted, data.surface, data.surface_note, other),
