@@ -57,7 +57,7 @@ def _progress(message: str) -> None:
 
 @app.command()
 def new(path: Annotated[Path, typer.Argument(help="Folder to create; must not exist or be empty.")]) -> None:
-    """Scaffold a project with one input, one term file and one model."""
+    """Scaffold a project with one input, one term file and one spec."""
     from .project.scaffold import scaffold
 
     written = scaffold(path)
@@ -124,15 +124,15 @@ def _relative_to_cwd(path: Path) -> str:
 
 @app.command()
 def compute(
+    models: Annotated[Optional[list[str]], typer.Argument(help="Models whose design tables to compute (default: all).")] = None,
     project: ProjectOption = None,
-    model: Annotated[Optional[list[str]], typer.Option("--model", "-m", help="Only this model (repeatable).")] = None,
     json_output: JsonOption = False,
 ) -> None:
-    """Build each model's design table in the engine (loading local data files first)."""
+    """Compute each model's design table in the engine, loading local data files first."""
     from . import api
     from .project import load_project
 
-    built = api.compute(load_project(project), model, progress=None if json_output else _progress)
+    built = api.compute(load_project(project), models, progress=None if json_output else _progress)
     if json_output:
         _print_json([vars(table) for table in built])
         return

@@ -111,6 +111,18 @@ def test_a_term_name_holding_a_double_underscore(tmp_path):
         "columns use; choose another name"]
 
 
+def test_an_input_column_named_like_a_scoring_output_cannot_be_listed_as_a_term(tmp_path):
+    root = write_project(tmp_path / "shop")
+    project_file = root / "featpipe.yaml"
+    project_file.write_text(project_file.read_text().replace("      returned: BIGINT\n", "      returned: BIGINT\n      status: BIGINT\n"))
+    (root / "specs" / "returns.yaml").write_text("input: orders\ntarget: returned\nfamily: binomial\nterms: [items, status]\n")
+    with pytest.raises(FeatpipeError) as caught:
+        compile_dir(root)
+    assert [str(d) for d in caught.value.diagnostics] == [
+        "specs/returns.yaml:4:16: column 'status' is a column the scoring query writes, so it cannot be a term "
+        "as it is; define a term with another name for it"]
+
+
 def test_arithmetic_on_text(tmp_path):
     assert errors_of(tmp_path, extra="SELECT\n  amount + region AS odd\nFROM orders\n") == [
         "terms/extra.sql:2:12: arithmetic on text: 'region' is TEXT; compare it to a value "

@@ -116,3 +116,32 @@ def test_score_drift_and_report_refuse_a_stale_model_with_the_same_message(tmp_p
             refused()
         assert str(raised.value) == expected, use
     assert not (root / "build").exists()  # refused before opening the engine
+
+
+def test_a_threshold_edit_refits_without_rebuilding_the_design_table(tmp_path):
+    """Only the fit reads the threshold: refresh refits from the design table already in the engine."""
+    root = copy_demo("lease_default", tmp_path)
+    api.compute(load_project(root))
+    edit(root / "specs" / f"{MODEL}.yaml", "threshold: 0.2", "threshold: 0.3")
+    said: list[str] = []
+    api.refresh(load_project(root), progress=said.append)
+    assert f"fitting {MODEL}" in " ".join(said)
+    assert not [line for line in said if line.startswith("building")]
+
+
+def test_a_new_key_makes_the_fit_stale_and_refresh_rebuilds_on_it(tmp_path):
+    """The key decides the holdout split, so the fit depends on it."""
+    root = copy_demo("lease_default", tmp_path)
+    data = root / "data" / "leases.csv"
+    lines = data.read_text(encoding="utf-8").splitlines()
+    data.write_text("\n".join([lines[0] + ",contract"] + [f"{line},C{line.split(',')[0]}" for line in lines[1:]]) + "\n")
+    edit(root / "featpipe.yaml", "    key: lease_id\n", "    key: contract\n")
+    edit(root / "featpipe.yaml", "      lease_id: BIGINT\n", "      lease_id: BIGINT\n      contract: VARCHAR\n")
+    stale = api.check_report(load_project(root)).stale
+    assert f"fitted/{MODEL}.yaml is stale: key changed from lease_id to contract" in stale
+
+    said: list[str] = []
+    api.refresh(load_project(root), progress=said.append)
+    assert f"building design_{MODEL}" in said
+    fitted = read_fitted(root / "fitted" / f"{MODEL}.yaml")
+    assert fitted.key == "contract" and fitted.depends_on["key"] == "contract"

@@ -74,12 +74,13 @@ class CompiledModel:
 
     @property
     def dependencies(self) -> dict[str, object]:
-        return fit_dependencies(self.spec, self.terms, self.offset_sql)
+        return fit_dependencies(self.spec, self.layout.key, self.terms, self.offset_sql)
 
 
-def fit_dependencies(spec: ModelSpec, terms: Sequence[Term], offset_sql: str | None) -> dict[str, object]:
+def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sql: str | None) -> dict[str, object]:
     """What a fit depends on, in a fixed order: every spec field that changes the fitted file or whether
-    the fit runs, the offset as canonical SQL, and each term's fingerprint in model order.
+    the fit runs, the input's key (it decides the holdout split), the offset as canonical SQL, and
+    each term's fingerprint in model order.
 
     One mapping decides the model's fingerprint, names what changed when a fit goes stale, and is
     written into the fitted file as `depends_on`, so that a later edit can be named against it.
@@ -87,6 +88,7 @@ def fit_dependencies(spec: ModelSpec, terms: Sequence[Term], offset_sql: str | N
     """
     return {
         "input": spec.input,
+        "key": key,
         "target": spec.target,
         "family": spec.family,
         "offset": offset_sql,
@@ -261,6 +263,11 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
             if name == spec.target:
                 diagnostics.append(spec.at(where, f"'{name}' is the model's target; it cannot also be a term"))
                 continue
+            clash = reserved_reason(name)
+            if clash:
+                diagnostics.append(spec.at(where, f"column '{name}' {clash}, so it cannot be a term as it is; "
+                                                  f"define a term with another name for it"))
+                continue
             declared = exp.DataType.build(columns[name], dialect=TERM_DIALECT)
             if not declared.is_type(*exp.DataType.REAL_TYPES, *exp.DataType.INTEGER_TYPES, exp.DataType.Type.BOOLEAN):
                 diagnostics.append(spec.at(where, f"column '{name}' is {columns[name]}; only numeric or boolean "
@@ -300,7 +307,7 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
         weight=WEIGHT_COLUMN if spec.weights else None,
     )
     return CompiledModel(spec, tuple(chosen), offset_tree, offset_sql, layout,
-                         model_fingerprint(spec, chosen, offset_sql))
+                         model_fingerprint(spec, layout.key, chosen, offset_sql))
 
 
 def _compile_offset(spec: ModelSpec, columns: dict[str, str], diagnostics) -> exp.Expression | None:
@@ -328,10 +335,10 @@ def _compile_offset(spec: ModelSpec, columns: dict[str, str], diagnostics) -> ex
     return None if problems else canonical_tree(tree)
 
 
-def model_fingerprint(spec: ModelSpec, terms: Sequence[Term], offset_sql: str | None) -> str:
+def model_fingerprint(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sql: str | None) -> str:
     """Hash of what a fit depends on (`fit_dependencies`): a change of any of it makes a fit stale.
 
     Keys are hashed in their fixed order, so listing the same terms in another order is a change too.
     """
-    content = json.dumps(fit_dependencies(spec, terms, offset_sql))
+    content = json.dumps(fit_dependencies(spec, key, terms, offset_sql))
     return hashlib.sha256(content.encode()).hexdigest()[:16]

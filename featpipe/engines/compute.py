@@ -5,6 +5,7 @@ Side effects go through the engine adapter; this module decides what to build an
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Callable
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -13,6 +14,7 @@ from sqlglot import exp
 
 from ..compiler import CompiledModel
 from ..project import Project
+from ..sqlgen.common import render
 from ..sqlgen.design import design_query
 from . import open_engine
 from .base import Engine
@@ -53,7 +55,10 @@ def prepare_inputs(
 
 
 def design_signature(project: Project, model: CompiledModel) -> str:
-    return f"{model.fingerprint}:{input_signature(project.inputs[model.spec.input])}"
+    """A hash of the design query and the input file's signature: a design table is rebuilt exactly when
+    what it holds would change, not when a setting that only the fit reads (threshold, notes) did."""
+    query = render(design_query(model, project.inputs[model.spec.input]), "duckdb", pretty=False)
+    return f"{hashlib.sha256(query.encode()).hexdigest()[:16]}:{input_signature(project.inputs[model.spec.input])}"
 
 
 def build_designs(

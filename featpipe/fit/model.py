@@ -24,9 +24,6 @@ from .metrics import holdout_metrics, training_profiles
 if TYPE_CHECKING:
     from ..glm import Coefficient
 
-LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}
-
-
 def account_rows(engine: Engine, model: CompiledModel) -> dict:
     """Rows of the design table: all, training, holdout, and dropped per reason (refused above the limit)."""
     layout, spec = model.layout, model.spec
@@ -74,7 +71,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         key=layout.key,
         target=spec.target,
         family=spec.family,
-        link=LINKS[spec.family],
+        link=glm.link,
         offset=model.offset_sql,
         weights=spec.weights,
         holdout={"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},

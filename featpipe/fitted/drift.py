@@ -14,10 +14,9 @@ does not meet the input's column contract.
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass, replace
 
-from ..engines.compute import connect
+from ..engines.compute import Progress, connect
 from ..engines.contract import check_contract
 from ..errors import FeatpipeError
 from ..project import Project
@@ -43,8 +42,6 @@ from ..sqlgen.drift import (
 from . import FittedModel, file_hash
 from .current import refuse_if_stale
 from .scoring import fitted_source, load_fitted, scoring_contract, scoring_model
-
-Progress = Callable[[str], None]
 
 # Readings of the stability index (common practice in credit scoring).
 MODERATE_FROM, MAJOR_ABOVE = 0.1, 0.25

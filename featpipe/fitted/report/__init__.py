@@ -11,13 +11,13 @@ network (no scripts, fonts or style sheets from elsewhere; figures are inline SV
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from pathlib import Path
 
 from ...atomic import write_text_atomic
 from ...engines.base import Engine
 from ...engines.builds import read_builds, record_builds
-from ...engines.compute import connect, prepare_inputs
+from ...engines.compute import Progress, connect, prepare_inputs
 from ...project import Project
 from .. import FittedModel, file_hash
 from ..current import refuse_if_stale
@@ -26,7 +26,6 @@ from .compare import check_comparable, likelihood_ratio
 
 __all__ = ["write_report", "write_reports", "report_path"]
 
-Progress = Callable[[str], None]
 
 
 def report_path(project: Project, model: str, against: str | None = None) -> Path:
