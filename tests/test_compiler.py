@@ -177,6 +177,20 @@ def test_formatting_comments_case_quotes_and_parentheses_keep_the_fingerprint(tm
     assert fingerprint_after(tmp_path, "edited", edit) == fingerprint_after(tmp_path, "original", BASKET)
 
 
+@pytest.mark.parametrize(("written", "same_as"), [
+    ("amount * 0.30", "amount * 0.3"),
+    ("amount * 1e3", "amount * 1000"),
+    ("amount * 1000.0", "amount * 1000"),
+    ("amount / 2.50E1", "amount / 25"),
+])
+def test_a_number_spelled_another_way_keeps_the_fingerprint(tmp_path, written, same_as):
+    """Numbers are canonical by value: generated SQL casts every number to DOUBLE, so spelling is no meaning."""
+    def fingerprint(name: str, expression: str) -> str:
+        return fingerprint_after(tmp_path, name, BASKET.replace("amount / NULLIF(items, 0)", expression))
+
+    assert fingerprint("written", written) == fingerprint("same_as", same_as)
+
+
 @pytest.mark.parametrize("edit", [
     BASKET.replace("NULLIF(items, 0)", "NULLIF(items, 1)"),
     BASKET.replace("amount /", "amount * 1.0 /"),

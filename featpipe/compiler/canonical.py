@@ -1,10 +1,15 @@
-"""Canonical SQL and fingerprints: formatting, comments, case, quoting and redundant parentheses
-do not change them; any change of meaning does.
+"""Canonical SQL and fingerprints: formatting, comments, case, quoting, redundant parentheses and
+the spelling of a number do not change them; any change of meaning does.
+
+Numbers are written by value (`0.30` as 0.3, `1e3` and `1000.0` as 1000): every number in generated
+SQL is cast to DOUBLE before arithmetic (sqlgen/harden.py), so the spelling never changes a result.
 
 Example:
     >>> import sqlglot
     >>> canonical_sql(sqlglot.parse_one("((A + b)) * c -- note", dialect="duckdb"))
     '("a" + "b") * "c"'
+    >>> canonical_sql(sqlglot.parse_one("x * 0.30 + 1e3", dialect="duckdb"))
+    '"x" * 0.3 + 1000'
     >>> fingerprint(sqlglot.parse_one("(a+b)*c")) == fingerprint(sqlglot.parse_one("a + b * c"))
     False
 """
@@ -12,6 +17,7 @@ Example:
 from __future__ import annotations
 
 import hashlib
+from decimal import Decimal
 
 from sqlglot import exp
 from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
@@ -48,6 +54,8 @@ def canonical_tree(expression: exp.Expression) -> exp.Expression:
     tree = normalize_identifiers(expression.copy(), dialect=CANONICAL_DIALECT)
     for node in reversed(list(tree.walk())):
         node.comments = None
+        if isinstance(node, exp.Literal) and node.is_number:
+            node.set("this", _by_value(node.this))
         if isinstance(node, exp.Paren) and node is not tree:
             node.replace(node.this)
     while isinstance(tree, exp.Paren):
@@ -66,6 +74,12 @@ def canonical_tree(expression: exp.Expression) -> exp.Expression:
             if child_level < level or (child_level == level and not associates_left):
                 child.replace(exp.Paren(this=child.copy()))
     return tree
+
+
+def _by_value(number: str) -> str:
+    """A numeric literal's text in plain decimal notation without redundant zeros ('1.50e2' -> '150')."""
+    text = format(Decimal(number).normalize(), "f")
+    return text if text != "-0" else "0"
 
 
 def canonical_sql(expression: exp.Expression) -> str:
