@@ -358,3 +358,16 @@ def test_an_unreadable_fitted_file_at_the_revision_is_reported_not_fatal(tmp_pat
     assert fit["change"] == "unreadable" and fit["problem"].startswith("fitted/returns.yaml at the revision: not a fitted file")
     assert any(line.startswith("  fitted/returns.yaml  could not be read: fitted/returns.yaml at the revision:") for line in text)
     assert data["stale"] == []  # the file now matches the model
+
+
+def test_an_unreadable_fitted_file_now_is_reported_not_fatal(tmp_path):
+    """A fitted file broken in the working tree is one `unreadable` fit and one stale fit, not an abort."""
+    project = committed_project(tmp_path)
+    (project / "fitted" / "returns.yaml").write_text("model: returns\n")
+    _, text, _, data = diff_all(project)
+
+    (fit,) = data["fitted"]
+    assert fit["change"] == "unreadable" and fit["problem"].startswith("fitted/returns.yaml: not a fitted file")
+    (stale,) = data["stale"]
+    assert stale["model"] == "returns" and stale["reasons"][0].startswith("it cannot be read (fitted/returns.yaml: not a fitted file")
+    assert any(line.startswith("  fitted/returns.yaml  could not be read: fitted/returns.yaml:") for line in text)

@@ -411,7 +411,10 @@ def _stale_fits(models: dict[str, CompiledModel], old_fitted: dict[str, str], ne
     stale = []
     for name, text in sorted(new_fitted.items()):
         file = f"fitted/{name}.yaml"
-        reasons = staleness(from_yaml(text, file), models.get(name))
+        try:
+            reasons = staleness(from_yaml(text, file), models.get(name))
+        except FeatpipeError as error:  # its fit change says `unreadable`; no fit can be current through it
+            reasons = [f"it cannot be read ({error})"]
         if reasons:
             stale.append(StaleFit(name, file, tuple(reasons), name in moved or old_fitted.get(name) != text))
     return tuple(stale)
