@@ -123,6 +123,20 @@ def test_an_input_column_named_like_a_scoring_output_cannot_be_listed_as_a_term(
         "as it is; define a term with another name for it"]
 
 
+def test_a_column_qualified_by_its_own_input_is_that_column(tmp_path):
+    """`orders.amount` in a file reading FROM orders is `amount`: same type, same SQL, same fingerprint."""
+    qualified = compile_dir(write_project(tmp_path / "a", {"terms/extra.sql": "SELECT orders.amount * 2 AS twice FROM orders"}))
+    plain = compile_dir(write_project(tmp_path / "b", {"terms/extra.sql": "SELECT amount * 2 AS twice FROM orders"}))
+    assert qualified.terms["twice"].kind == "numeric"
+    assert qualified.terms["twice"].sql == plain.terms["twice"].sql == '"amount" * 2'
+    assert qualified.terms["twice"].fingerprint == plain.terms["twice"].fingerprint
+
+
+def test_a_column_qualified_by_another_table_is_refused(tmp_path):
+    assert errors_of(tmp_path, extra="SELECT o.amount * 2 AS twice FROM orders") == [
+        "terms/extra.sql:1:8: 'o.amount' names another table; a term reads only its input 'orders'"]
+
+
 def test_arithmetic_on_text(tmp_path):
     assert errors_of(tmp_path, extra="SELECT\n  amount + region AS odd\nFROM orders\n") == [
         "terms/extra.sql:2:12: arithmetic on text: 'region' is TEXT; compare it to a value "

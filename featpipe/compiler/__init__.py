@@ -119,7 +119,7 @@ def compile_project(project: Project) -> CompiledProject:
     columns_by_input = {name: spec.columns for name, spec in project.inputs.items()}
     raw_terms = _parse_files(project, diagnostics)
     raw_terms = _unique_names(raw_terms, columns_by_input, diagnostics)
-    uses, problems = resolve_names(raw_terms, columns_by_input, texts)
+    raw_terms, uses, problems = resolve_names(raw_terms, columns_by_input, texts)
     for term in raw_terms:
         problems.setdefault(term.name, []).extend(check_allowed(term.expression, term.file))
     broken = {name for name, found in problems.items() if found}

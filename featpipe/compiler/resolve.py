@@ -1,16 +1,21 @@
 """Resolve every name a term uses to an input column or another term of the same input.
 
+A column qualified by the term's own input (`leases.p` in a file reading FROM leases) is that input's
+column: the qualifier is dropped, so later passes see one spelling. Any other qualifier is refused.
+
 Example:
     >>> import sqlglot
     >>> from featpipe.compiler.parse import RawTerm
-    >>> ratio = RawTerm("ratio", "leases", "t.sql", 1, 1, "", sqlglot.parse_one("p / r"))
-    >>> resolve_names([ratio], {"leases": {"p": "DOUBLE", "r": "DOUBLE"}}, {"t.sql": "p / r"})
-    ({'ratio': set()}, {})
+    >>> ratio = RawTerm("ratio", "leases", "t.sql", 1, 1, "", sqlglot.parse_one("leases.p / r"))
+    >>> terms, uses, problems = resolve_names([ratio], {"leases": {"p": "DOUBLE", "r": "DOUBLE"}}, {"t.sql": "p / r"})
+    >>> terms[0].expression.sql(), uses, problems
+    ('p / r', {'ratio': set()}, {})
 """
 
 from __future__ import annotations
 
 import difflib
+from dataclasses import replace
 
 from sqlglot import exp
 
@@ -20,8 +25,10 @@ from .parse import RawTerm, node_position
 
 def resolve_names(
     terms: list[RawTerm], columns_by_input: dict[str, dict[str, str]], texts: dict[str, str]
-) -> tuple[dict[str, set[str]], dict[str, list[Diagnostic]]]:
-    """For each term, the other terms it uses directly, and its problems (unknown names get a "did you mean")."""
+) -> tuple[list[RawTerm], dict[str, set[str]], dict[str, list[Diagnostic]]]:
+    """The terms with their own input's qualifier dropped; for each term, the other terms it uses
+    directly, and its problems (unknown names get a "did you mean")."""
+    terms = [replace(term, expression=_without_own_qualifier(term)) for term in terms]
     by_name = {term.name: term for term in terms}
     uses: dict[str, set[str]] = {}
     problems: dict[str, list[Diagnostic]] = {}
@@ -50,4 +57,13 @@ def resolve_names(
                 hint = difflib.get_close_matches(name, candidates, n=1)
                 advice = f"did you mean '{hint[0]}'?" if hint else "declare it among the input's columns or define it as a term"
                 problem(f"unknown name '{name}': not a column of input '{term.input}' nor a term; {advice}")
-    return uses, {name: found for name, found in problems.items() if found}
+    return terms, uses, {name: found for name, found in problems.items() if found}
+
+
+def _without_own_qualifier(term: RawTerm) -> exp.Expression:
+    """A copy of the expression in which `input.column` reads `column` (positions kept for messages)."""
+    tree = term.expression.copy()
+    for reference in tree.find_all(exp.Column):
+        if reference.table == term.input:
+            reference.set("table", None)
+    return tree
