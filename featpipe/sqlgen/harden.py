@@ -19,7 +19,9 @@ raise an error, it gives NULL (EXP saturates instead):
 - POWER(a, b) is NULL when a < 0 and b is not a whole number, or a = 0 and b < 0 (PostgreSQL raises,
   DuckDB gives NaN or inf); a literal exponent or base keeps only the guard it needs;
 - ROUND rounds half away from zero on the scaled DOUBLE (PostgreSQL rounds half to even and has no
-  ROUND(double, digits)); GREATEST/LEAST become CASE chains that skip NULLs (SQLite has neither);
+  ROUND(double, digits)); GREATEST/LEAST become CASE chains that are NULL when any argument is NULL
+  (DuckDB, PostgreSQL and Spark skip NULLs, SQLite has neither: a missing input must stay missing, so a
+  term never scores a row as `ok` on a value it did not have; COALESCE fills a NULL on purpose);
 - CAST to an integer type rounds half to even (DuckDB and PostgreSQL do; SQLite and Spark truncate),
   CAST to DECIMAL(p, s) rounds half away from zero to s digits (SQLite does not round at all), and
   both are NULL out of the type's range; the result is a whole-number DOUBLE;
@@ -220,15 +222,15 @@ class _Hardening:
                         default=self.rewrite(default, context) if default else None)
 
     def extreme(self, node: exp.Greatest | exp.Least, context: str) -> exp.Expression:
-        """GREATEST/LEAST that skip NULLs, as DuckDB, PostgreSQL and Spark do, as a CASE chain."""
+        """GREATEST/LEAST as a CASE chain, NULL when any argument is NULL."""
         wins = exp.GTE if isinstance(node, exp.Greatest) else exp.LTE
         values = [self.rewrite(value, context) for value in [node.this, *node.expressions]]
         best = values[0]
         for value in values[1:]:
-            keep = exp.or_(wins(this=_operand(best.copy()), expression=_operand(value.copy())),
-                           exp.Is(this=_operand(value.copy()), expression=exp.Null()))
+            keep = wins(this=_operand(best.copy()), expression=_operand(value.copy()))
             best = exp.Case(ifs=[exp.If(this=keep, true=best)], default=value)
-        return best
+        known = exp.and_(*(exp.Is(this=_operand(value.copy()), expression=exp.Null()).not_() for value in values))
+        return exp.Case(ifs=[exp.If(this=known, true=best)])
 
     # Arithmetic that needs more than a cast
 
