@@ -4,6 +4,7 @@ atomic failure, staleness, explain and refresh."""
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import copy_demo
@@ -14,6 +15,7 @@ from featpipe.engines.statements import select_all
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted
 from featpipe.fitted.explain import explain
+from featpipe.project import load_project
 from featpipe.sqlgen.common import training_rows
 
 FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson()}
@@ -111,3 +113,24 @@ def test_explain_a_term_and_a_model(fitted_demos):
     assert model["fitted"]["family"] == "binomial"
     with pytest.raises(FeatpipeError, match="did you mean 'payment_to_revenue'"):
         explain(compiled, "payment_to_revenu")
+
+
+def test_a_missing_input_is_dropped_through_least_and_counted_when_a_term_fills_it_in(tmp_path):
+    """LEAST keeps a missing revenue missing (the row is dropped, not capped); a CASE that reads a
+    missing revenue as 'not high' fills it in, and the fitted file counts those rows per term."""
+    root = copy_demo("lease_default", tmp_path)
+    (root / "terms" / "revenue.sql").write_text(
+        "SELECT\n"
+        "  LEAST(monthly_revenue, 50000) AS revenue_capped,\n"
+        "  CASE WHEN monthly_revenue > 20000 THEN 1 ELSE 0 END AS high_revenue\n"
+        "FROM leases\n")
+    (root / "specs" / "revenue.yaml").write_text(
+        "input: leases\ntarget: defaulted_12m\nfamily: binomial\n"
+        "terms: [revenue_capped, high_revenue, firm_age_years]\n")
+    (outcome,) = api.fit(load_project(root), ["revenue"])
+
+    # Reference: pandas' count of leases whose monthly revenue is missing in the demo data.
+    missing = int(pd.read_csv(root / "data" / "leases.csv")["monthly_revenue"].isna().sum())
+    assert missing > 0
+    assert outcome.fitted.rows["dropped"] == {"null term revenue_capped": missing}
+    assert outcome.fitted.rows["imputed"] == {"high_revenue": missing}

@@ -15,8 +15,9 @@ from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
 from ..fitted.notes import effect, term_notes
+from ..project import InputSpec
 from ..project.names import LINEAR_PREDICTOR
-from ..sqlgen.accounting import dropped_reasons, row_accounting_query
+from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
 from .metrics import holdout_metrics, training_profiles
@@ -24,8 +25,9 @@ from .metrics import holdout_metrics, training_profiles
 if TYPE_CHECKING:
     from ..glm import Coefficient
 
-def account_rows(engine: Engine, model: CompiledModel) -> dict:
-    """Rows of the design table: all, training, holdout, and dropped per reason (refused above the limit)."""
+def account_rows(engine: Engine, model: CompiledModel, source: InputSpec) -> dict:
+    """Rows of the design table: all, training, holdout, and dropped per reason (refused above the limit);
+    and per term, the input's rows its definition filled in although an input it reads is NULL."""
     layout, spec = model.layout, model.spec
     values = engine.fetch(row_accounting_query(layout))[0]
     total, incomplete, train, holdout = (int(v or 0) for v in values[:4])
@@ -40,7 +42,16 @@ def account_rows(engine: Engine, model: CompiledModel) -> dict:
             f"({detail}), more than max_dropped {spec.max_dropped:g}; fix the data or the terms (guard divisions, "
             "COALESCE missing inputs), or raise max_dropped in the spec if dropping them is right"
         )
-    return {"input": total, "complete": total - incomplete, "train": train, "holdout": holdout, "dropped": dropped}
+    return {"input": total, "complete": total - incomplete, "train": train, "holdout": holdout, "dropped": dropped,
+            "imputed": _imputed(engine, model, source)}
+
+
+def _imputed(engine: Engine, model: CompiledModel, source: InputSpec) -> dict[str, int]:
+    terms = imputing_terms(list(model.terms))
+    if not terms:
+        return {}
+    counts = engine.fetch(imputed_rows_query(terms, source))[0]
+    return {term.name: int(count) for term, count in zip(terms, counts, strict=True) if count}
 
 
 def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -> FittedModel:
@@ -49,7 +60,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     from ..glm import Glm
 
     spec, layout = model.spec, model.layout
-    rows = account_rows(engine, model)
+    rows = account_rows(engine, model, compiled.project.inputs[spec.input])
     glm = Glm(spec.family, spec.penalty).fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}

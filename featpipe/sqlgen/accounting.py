@@ -1,11 +1,15 @@
-"""Row accounting of a design table: how many rows train, are held out, or are dropped and why."""
+"""Row accounting: how many rows of a design table train, are held out, or are dropped and why; and
+how many rows of the input a term gives a value although an input column it reads is NULL."""
 
 from __future__ import annotations
 
 from sqlglot import exp
 
+from ..compiler import Term
 from ..compiler.layout import DesignLayout
+from ..project import InputSpec
 from .common import alias, column, complete_rows, holdout_rows, training_rows
+from .design import term_value
 
 
 def _count_where(condition: exp.Expression) -> exp.Expression:
@@ -40,3 +44,19 @@ def row_accounting_query(layout: DesignLayout) -> exp.Select:
     ]
     projections += [alias(_count_where(_is_null(name)), f"null_{index}") for index, (_, name) in enumerate(dropped_reasons(layout))]
     return exp.select(*projections).from_(exp.to_table(layout.table))
+
+
+def imputing_terms(terms: list[Term]) -> list[Term]:
+    """The terms that could have a value on a row missing one of their inputs (a CASE ... ELSE or
+    COALESCE does that); an input column used as a term is missing exactly when the column is."""
+    return [term for term in terms if term.columns and not isinstance(term.inlined, exp.Column)]
+
+
+def imputed_rows_query(terms: list[Term], source: InputSpec) -> exp.Select:
+    """One pass over the input: per term, the rows where it is not NULL while a column it reads is."""
+    projections = []
+    for index, term in enumerate(terms):
+        missing_input = exp.or_(*(column(name).is_(exp.null()) for name in term.columns))
+        filled = exp.and_(term_value(term, source).is_(exp.null()).not_(), missing_input)
+        projections.append(alias(_count_where(filled), f"imputed_{index}"))
+    return exp.select(*projections).from_(exp.to_table(source.name))
