@@ -52,6 +52,25 @@ def test_a_wrong_option_shows_the_usage_not_an_internal_error():
     assert "internal error" not in result.stderr
 
 
+def test_a_bug_is_one_line_with_exit_2_and_the_traceback_only_on_request(project_dir, monkeypatch):
+    """An error featpipe did not expect is an internal error: exit 2, its type and text on one line, and
+    the way to the traceback; FEATPIPE_DEBUG=1 shows the traceback itself."""
+    from featpipe import api
+
+    def broken(project):
+        raise RuntimeError("the check broke")
+
+    monkeypatch.setattr(api, "check_report", broken)
+    result = run("check", "-p", str(project_dir))
+    assert result.returncode == 2
+    assert result.stderr.splitlines() == [
+        "internal error: RuntimeError: the check broke",
+        "set FEATPIPE_DEBUG=1 to see the traceback, and please report it"]
+
+    debugged = run("check", "-p", str(project_dir), env={"FEATPIPE_DEBUG": "1"})
+    assert debugged.returncode == 2 and "Traceback (most recent call last)" in debugged.stderr
+
+
 def test_check_refuses_a_file_reading_function_and_runs_nothing(tmp_path):
     root = write_project(tmp_path, {"terms/sneaky.sql": "SELECT\n  LENGTH(read_text('/etc/passwd')) AS leak\nFROM orders\n"})
     result = run("check", "-p", str(root))
