@@ -24,7 +24,7 @@ from .engines.compute import (
     say,
 )
 from .errors import Diagnostic, FeatpipeError
-from .fit.model import fit_model
+from .fitting.model import fit_model
 from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
 from .fitted.report import report_path, write_reports
 from .project import Project, load_project

@@ -30,7 +30,7 @@ from sqlite_engine import SQLiteEngine
 
 from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.fit.metrics import holdout_metrics
+from featpipe.fitting.metrics import holdout_metrics
 from featpipe.fitted import INTERCEPT
 from featpipe.sqlgen.common import alias, number
 from featpipe.sqlgen.metrics import linear_predictor, prediction

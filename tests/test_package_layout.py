@@ -12,7 +12,7 @@ from pathlib import Path
 import featpipe
 
 PACKAGE = Path(featpipe.__file__).parent
-STAGES = ["errors", "atomic", "project", "compiler", "sqlgen", "engines", "glm", "fitted", "fit", "review", "api", "cli"]
+STAGES = ["errors", "atomic", "project", "compiler", "sqlgen", "engines", "glm", "fitted", "fitting", "review", "api", "cli"]
 FOUNDATIONS = {"errors", "atomic"}  # every stage may use these two modules
 
 
@@ -75,3 +75,16 @@ def test_every_module_belongs_to_a_stage_named_in_the_developer_guide():
     assert loose == []
     missing = [stage for stage in STAGES if f"`{stage}" not in guide]
     assert missing == []
+
+
+def test_the_public_names_stay_the_api_once_every_stage_is_loaded():
+    """A stage folder named like an API function would replace `featpipe.<name>` when it is imported."""
+    import importlib
+    import inspect
+    import pkgutil
+
+    for module in pkgutil.walk_packages([str(PACKAGE)], prefix="featpipe."):
+        if not module.name.endswith("__main__"):
+            importlib.import_module(module.name)
+    modules = [name for name in featpipe.__all__ if inspect.ismodule(getattr(featpipe, name))]
+    assert modules == []

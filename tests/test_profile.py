@@ -18,7 +18,7 @@ from test_metrics import (  # the engines every SQL test runs on
 )
 
 from featpipe.compiler.layout import DesignLayout
-from featpipe.fit.metrics import training_profiles
+from featpipe.fitting.metrics import training_profiles
 from featpipe.fitted import INTERCEPT, Profile
 from featpipe.sqlgen.common import column
 from featpipe.sqlgen.metrics import linear_predictor

@@ -178,7 +178,7 @@ def model_reading(
     converged: bool = True,
     penalized: bool = False,
 ) -> str:
-    """One paragraph summing up a fitted model and its holdout metrics (see featpipe.fit.metrics)."""
+    """One paragraph summing up a fitted model and its holdout metrics (see featpipe.fitting.metrics)."""
     if family not in MODEL_NAMES:
         raise ValueError(f"unknown family '{family}'; use one of {', '.join(MODEL_NAMES)}")
     plural = "term" if terms == 1 else "terms"
