@@ -21,9 +21,10 @@ subprocess. The engines' own memory (the PostgreSQL server, Spark's JVM) is not 
 and is not counted: the point is that featpipe's memory stays flat as rows grow, because the data
 stay in the engine. DuckDB is the exception: it runs inside the featpipe process, so its working
 memory (up to its memory_limit, 80% of RAM by default) is in the figure; the peaks after compute
-and after fit show which step grows. Printed: one line per engine x size, the peak RSS ratio between
-the largest and smallest sizes per engine, and how far each engine's coefficients are from DuckDB's
-on the same rows.
+and after fit show which step grows. Printed: the package versions, core count and load average
+(benchmarks/context.py), one line per engine x size, the peak RSS ratio between the largest and
+smallest sizes per engine, and each engine's agreement with DuckDB on the same rows (training rows,
+rows scored, how far its coefficients are from DuckDB's).
 """
 
 from __future__ import annotations
@@ -39,10 +40,13 @@ import tempfile
 import time
 from pathlib import Path
 
+from context import machine_context
+
 REPO = Path(__file__).resolve().parent.parent
 DEMO = REPO / "projects" / "lease_default"
 MODEL = "default_risk"
 ENGINES = ("duckdb", "postgres", "spark")
+PACKAGES = ("featpipe", "duckdb", "sqlglot", "psycopg", "pyspark")
 DSN_VARIABLE = "FEATPIPE_BENCH_DSN"
 PRIME = 2**31 - 1  # residues below it square to less than 2**62: no BIGINT overflow on any engine
 SECTORS = (("construction", 0.20, 0.55), ("retail", 0.18, 0.15), ("logistics", 0.16, 0.10),
@@ -230,7 +234,7 @@ def serve_postgres() -> None:
 
 def child(mode: str, *args: str, env: dict[str, str] | None = None) -> dict:
     command = [sys.executable, __file__, "--child", mode, *args]
-    done = subprocess.run(command, capture_output=True, text=True, env={**os.environ, **(env or {})})
+    done = subprocess.run(command, capture_output=True, text=True, env={**os.environ, **(env or {})}, check=False)
     if done.returncode != 0:
         raise SystemExit(f"{mode} {' '.join(args)} failed:\n{done.stderr[-3000:]}")
     return json.loads(done.stdout.strip().splitlines()[-1])
@@ -273,6 +277,7 @@ def main() -> None:
         print(json.dumps(child_measure(arguments.project)))
         return
 
+    print(machine_context(PACKAGES), flush=True)
     server = None
     base_dsn = ""
     if "postgres" in arguments.engines:
@@ -319,14 +324,16 @@ def main() -> None:
             ratio = results[kind, largest]["peak_rss_mb"] / results[kind, smallest]["peak_rss_mb"]
             print(f"  {kind:<9} {ratio:.2f}x")
     if "duckdb" in arguments.engines and len(arguments.engines) > 1:
-        print("\nlargest relative difference of the coefficients from DuckDB's, on the same generated rows:")
+        print("\nagreement with DuckDB on the same generated rows: training rows, rows scored, "
+              "largest relative difference of the coefficients:")
         for rows in arguments.rows:
-            reference = results["duckdb", rows]["coef"]
-            others = ", ".join(
-                f"{kind} {max_relative_difference(results[kind, rows]['coef'], reference):.1e}"
+            reference = results["duckdb", rows]
+            others = "; ".join(
+                f"{kind} train {results[kind, rows]['train']:,}, scored {results[kind, rows]['scored']:,}, "
+                f"coefficients {max_relative_difference(results[kind, rows]['coef'], reference['coef']):.1e}"
                 for kind in arguments.engines if kind != "duckdb"
             )
-            print(f"  {rows:>11,} rows: {others}")
+            print(f"  {rows:>11,} rows: duckdb train {reference['train']:,}, scored {reference['scored']:,}; {others}")
 
 
 if __name__ == "__main__":

@@ -13,8 +13,9 @@ peak RSS (measured in the child) is its own:
 - pandas + scikit-learn: fetch the training rows into a DataFrame, then
   LogisticRegression(solver="newton-cholesky", C=inf) (scikit-learn >= 1.8 spells penalty=None as C=inf).
 
-Printed side by side: seconds, peak RSS, passes over the data, ratios, and the largest relative
-difference between coefficients. On a shared machine use --repeat: the competitors then run
+Printed: the package versions, core count and load average (benchmarks/context.py), then side by
+side: seconds, peak RSS, passes over the data, ratios, and the largest relative difference between
+coefficients. On a shared machine use --repeat: the competitors then run
 interleaved and the fastest run of each is compared. Targets at 10M rows: featpipe time <= half of fetch + fit, peak
 memory <= a fifth.
 """
@@ -25,7 +26,6 @@ import argparse
 import json
 import math
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -36,6 +36,9 @@ import numpy as np
 from sqlglot import exp
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from context import machine_context  # noqa: E402
+from memory import peak_rss_mb  # noqa: E402
 
 from featpipe.compiler.layout import DesignLayout  # noqa: E402
 from featpipe.engines.duckdb import DuckDBEngine  # noqa: E402
@@ -48,6 +51,7 @@ INDICATORS = 10
 SEED = 20240611
 TWO_52 = 2**52
 STREAMS = 1000  # random streams per row
+PACKAGES = ("featpipe", "duckdb", "sqlglot", "numpy", "pandas", "scikit-learn")
 
 
 def layout() -> DesignLayout:
@@ -122,20 +126,6 @@ def build_table(path: Path, rows: int) -> None:
         engine.close()
 
 
-def peak_rss_mb() -> float:
-    """Peak resident memory of this process since it started.
-
-    Linux's VmHWM belongs to the process image, while getrusage's ru_maxrss also keeps the peak of
-    the parent it was forked from (here the benchmark driver that built the table).
-    """
-    status = Path("/proc/self/status")
-    if status.exists():
-        for line in status.read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024.0
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kilobytes on Linux
-
-
 def child_featpipe(path: Path, source: str) -> dict:
     from featpipe.glm import Glm
 
@@ -197,6 +187,7 @@ def main() -> None:
         print(json.dumps(child_sklearn(arguments.db)))
         return
 
+    print(machine_context(PACKAGES), flush=True)
     with tempfile.TemporaryDirectory() as folder:
         path = arguments.keep or Path(folder) / "bench.duckdb"
         started = time.perf_counter()

@@ -18,8 +18,9 @@ import statistics
 import subprocess
 import sys
 import time
-from importlib.metadata import version
 from pathlib import Path
+
+from context import machine_context
 
 REPO = Path(__file__).resolve().parent.parent
 PACKAGES = ("featpipe", "typer", "rich", "pydantic", "sqlglot", "duckdb", "pyyaml")
@@ -48,8 +49,7 @@ def main() -> None:
     parser.add_argument("--project", default="projects/lease_default", help="project to check (relative to the repository)")
     arguments = parser.parse_args()
 
-    print(f"Python {sys.version.split()[0]}; " + ", ".join(f"{name} {version(name)}" for name in PACKAGES))
-    print(f"{os.cpu_count()} cores; load average {' '.join(f'{load:.2f}' for load in os.getloadavg())}")
+    print(machine_context(PACKAGES), flush=True)
     featpipe = console_script()
     commands = {
         "import duckdb, sqlglot, yaml": [sys.executable, "-c", "import duckdb, sqlglot, yaml"],

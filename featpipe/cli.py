@@ -426,7 +426,9 @@ def main(args: list[str] | None = None) -> None:
     process exactly as a user's would run.
     """
     try:
-        status = app(args=args, standalone_mode=False)  # returns the code of a typer.Exit instead of raising
+        # standalone_mode=False returns the code of a typer.Exit instead of raising; the program name is the
+        # command users type, also when featpipe runs inside another program (tests, a scheduler).
+        status = app(args=args, prog_name="featpipe", standalone_mode=False)
     except FeatpipeError as error:
         err.print(f"error: {error}", markup=False)
         sys.exit(1)

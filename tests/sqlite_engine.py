@@ -24,6 +24,7 @@ from sqlglot.dialects.sqlite import SQLite
 
 from featpipe.engines import statements
 from featpipe.engines.arrowfile import open_arrow_file, sql_type
+from featpipe.engines.base import Check
 from featpipe.errors import EngineError
 
 MATH_FUNCTIONS = ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
@@ -94,10 +95,10 @@ class SQLiteEngine:
     def execute(self, statement: exp.Expression) -> None:
         self._run(statement)
 
-    def create_table(self, name: str, query: exp.Query) -> None:
-        self._build_then_swap(name, lambda building: self._run(statements.create_table_as(building, query)))
+    def create_table(self, name: str, query: exp.Query, check: Check | None = None) -> None:
+        self._build_then_swap(name, lambda building: self._run(statements.create_table_as(building, query)), check)
 
-    def load_file(self, name: str, path: Path) -> None:
+    def load_file(self, name: str, path: Path, check: Check | None = None) -> None:
         data = open_arrow_file(path, self.name)
 
         def build(building: str) -> None:
@@ -115,15 +116,17 @@ class SQLiteEngine:
                 except sqlite3.Error as error:
                     raise EngineError(f"sqlite: cannot load {path}: {error}") from None
 
-        self._build_then_swap(name, build)
+        self._build_then_swap(name, build, check)
 
-    def _build_then_swap(self, name: str, build: Callable[[str], None]) -> None:
-        """Build under the building name and swap in one transaction; any failure rolls all of it back."""
+    def _build_then_swap(self, name: str, build: Callable[[str], None], check: Check | None) -> None:
+        """Build under the building name, check it and swap in one transaction; any failure rolls all of it back."""
         building = statements.building_name(name)
         self._run(exp.Transaction())
         try:
             self._run(statements.drop_table(building))
             build(building)
+            if check is not None:
+                check(building)
             self._run(statements.drop_table(name))
             self._run(statements.rename_table(building, name))
             self._run(exp.Commit())

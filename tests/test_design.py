@@ -99,7 +99,7 @@ def test_a_contract_mismatch_builds_nothing(tmp_path):
     root = write_project(tmp_path, {"data/orders.csv": "order_id,amount,items,region,returned\n1,abc,2,north,0\n"})
     with pytest.raises(FeatpipeError) as caught:
         featpipe.compute(featpipe.load_project(root))
-    assert "column 'amount' is declared DOUBLE (floating point) but table 'orders' has" in str(caught.value)
+    assert "column 'amount' is declared DOUBLE (floating point) but file data/orders.csv has" in str(caught.value)
     with featpipe.connect(featpipe.load_project(root)) as engine:
         assert engine.describe("design_returns") is None
 

@@ -331,9 +331,9 @@ def test_a_command_that_changes_nothing_writes_no_table(tmp_path):
             super().__init__(path)
             self.written: list[str] = []
 
-        def create_table(self, name, query):
+        def create_table(self, name, query, check=None):
             self.written.append(name)
-            super().create_table(name, query)  # DuckDB's load_file builds through create_table too
+            super().create_table(name, query, check)  # DuckDB's load_file builds through create_table too
 
     project = api.load_project(copy_demo("fleet_claims", tmp_path))
     models = list(api.check(project).models.values())

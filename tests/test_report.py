@@ -30,6 +30,7 @@ from conftest import copy_demo
 from scipy.stats import chi2
 
 from featpipe import api
+from featpipe.compiler import dependencies_fingerprint
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted, write_fitted
 from featpipe.fitted.report import report_path, write_report
@@ -296,7 +297,10 @@ def test_likelihood_ratio_equals_twice_the_log_likelihood_difference_and_statsmo
 def test_comparing_models_of_different_targets_is_refused(demos):
     lease = demos["lease"]
     raw = read_fitted(lease.fitted_path("default_raw"))
-    write_fitted(lease.fitted_path("late_payments"), dataclasses.replace(raw, model="late_payments", target="past_late_payments"))
+    # A fitted file of another target that agrees with itself (its depends_on and model fingerprint).
+    depends_on = {**raw.depends_on, "target": "late_12m"}
+    write_fitted(lease.fitted_path("late_payments"), dataclasses.replace(
+        raw, model="late_payments", target="late_12m", depends_on=depends_on, fingerprint=dependencies_fingerprint(depends_on)))
     try:
         with pytest.raises(FeatpipeError, match="compare two models of the same target"):
             write_report(lease, "default_risk", against="late_payments")

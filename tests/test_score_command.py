@@ -38,6 +38,7 @@ def write_shop_fit(root) -> FittedModel:
         family="binomial", link="logit", offset=None, weights=None, holdout={"fraction": 0.3, "salt": "v1"},
         threshold=0.5, penalty={"l2": 0.0, "l1": 0.0}, rows={}, fit={}, terms=tuple(terms),
         columns={"order_id": "BIGINT", "amount": "DOUBLE", "items": "BIGINT", "region": "VARCHAR"},
+        depends_on=model.dependencies,
     )
     write_fitted(project.fitted_path("returns"), fitted)
     return fitted

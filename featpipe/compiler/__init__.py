@@ -336,9 +336,13 @@ def _compile_offset(spec: ModelSpec, columns: dict[str, str], diagnostics) -> ex
 
 
 def model_fingerprint(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sql: str | None) -> str:
-    """Hash of what a fit depends on (`fit_dependencies`): a change of any of it makes a fit stale.
+    """Hash of what a fit depends on (`fit_dependencies`): a change of any of it makes a fit stale."""
+    return dependencies_fingerprint(fit_dependencies(spec, key, terms, offset_sql))
+
+
+def dependencies_fingerprint(dependencies: dict[str, object]) -> str:
+    """Hash of a `fit_dependencies` mapping; a fitted file's `depends_on` hashes to its model fingerprint.
 
     Keys are hashed in their fixed order, so listing the same terms in another order is a change too.
     """
-    content = json.dumps(fit_dependencies(spec, key, terms, offset_sql))
-    return hashlib.sha256(content.encode()).hexdigest()[:16]
+    return hashlib.sha256(json.dumps(dependencies).encode()).hexdigest()[:16]

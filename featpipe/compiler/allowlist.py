@@ -3,7 +3,8 @@
 The check is an allow-list of node types, not a deny-list: sqlglot parses an unknown function as
 `exp.Anonymous` (in the duckdb dialect even ``NOW()``), so anything not listed here is rejected.
 Known dangerous kinds (subqueries, aggregates, windows, randomness, clocks, readers of files,
-settings or the environment, one-argument LOG, ``//``) get their own message saying what to do.
+settings or the environment, one-argument LOG, ``//``, numbers no engine reads) get their own message
+saying what to do.
 
 Example:
     >>> import sqlglot
@@ -16,6 +17,8 @@ Example:
 """
 
 from __future__ import annotations
+
+import math
 
 from sqlglot import exp
 
@@ -32,6 +35,10 @@ _ALLOWED = (
 )
 _FUNCTIONS = ("ABS, CEIL, COALESCE, EXP, FLOOR, GREATEST, LEAST, LENGTH, LN, LOG(base, x), LOG10, LOWER, NULLIF, "
               "POWER, ROUND, SIGN, SQRT, TRIM, UPPER")
+
+# The most digits a number in a term may have: DECIMAL's largest precision in DuckDB and Spark; DuckDB
+# cannot read a longer integer literal at all.
+MAX_NUMBER_DIGITS = 38
 
 _INTEGER_CASTS = {exp.DataType.Type.TINYINT, exp.DataType.Type.SMALLINT, exp.DataType.Type.INT, exp.DataType.Type.BIGINT}
 _FOUR_BYTE_FLOATS = {exp.DataType.Type.FLOAT}  # the duckdb dialect reads both FLOAT and REAL as this type
@@ -84,6 +91,8 @@ IN_LIST = "IN takes a list of literal values here, e.g. x IN (1, 2, 3); compare 
 IS = "{name} is not allowed: IS is allowed only as IS NULL or IS NOT NULL; for x IS TRUE write COALESCE(x, FALSE)"
 ROUND_DIGITS = "ROUND's second argument must be a whole-number literal, e.g. ROUND(x, 2)"
 STAR = "* is not a term value: name each column"
+LONG_NUMBER = "the number {name} has {digits} digits; a number in a term may have at most " + f"{MAX_NUMBER_DIGITS}: round it"
+HUGE_NUMBER = "the number {name} is beyond the range of DOUBLE (about 1.8e308), which every term is computed in; use a smaller number"
 STATEMENT = "{name} is a statement, not an expression: a term file holds one SELECT whose projections are the terms"
 OTHER = ("{name} is not allowed in a term: featpipe accepts only portable deterministic scalar SQL (columns, literals, "
          "arithmetic, comparisons, AND/OR/NOT, IS NULL, BETWEEN, IN (...), CASE, CAST and the functions " + _FUNCTIONS + ")")
@@ -134,6 +143,8 @@ def _problem(node: exp.Expression) -> tuple[str | None, list[exp.Expression]]:
     children = list(node.iter_expressions())
     if isinstance(node, exp.Column) and isinstance(node.this, exp.Star) or isinstance(node, exp.Star):
         return STAR, []
+    if isinstance(node, exp.Literal) and node.is_number:
+        return _number_problem(node), children
     if isinstance(node, _ALLOWED):
         if isinstance(node, (exp.Floor, exp.Ceil)) and (node.args.get("decimals") or node.args.get("to")):
             return OTHER.format(name=_show(node)), children
@@ -207,6 +218,16 @@ def _cast_problem(node: exp.Cast) -> str | None:
         or target.is_type(exp.DataType.Type.DECIMAL) and all(_whole_number(p.this) for p in target.expressions)
     )
     return None if portable else CAST.format(name=target.sql(dialect="duckdb"))
+
+
+def _number_problem(literal: exp.Literal) -> str | None:
+    mantissa = literal.this.lower().partition("e")[0]
+    digits = sum(character.isdigit() for character in mantissa)
+    if digits > MAX_NUMBER_DIGITS:
+        return LONG_NUMBER.format(name=_show(literal, 20), digits=digits)
+    if not math.isfinite(float(literal.this)):
+        return HUGE_NUMBER.format(name=_show(literal, 20))
+    return None
 
 
 def _whole_number(node: exp.Expression) -> bool:

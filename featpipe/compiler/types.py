@@ -1,4 +1,5 @@
-"""Infer each term's type from the column contract; a term must be numeric or boolean.
+"""Infer each term's type from the column contract; a term must be numeric or boolean, arithmetic
+reads numbers, and LENGTH, LOWER, UPPER and TRIM read text.
 
 Terms are checked in dependency order, each against a schema holding the input's columns and the
 types of the terms it may use, so an error points into the term's own file.
@@ -21,11 +22,17 @@ ARITHMETIC = (
     exp.Add, exp.Sub, exp.Mul, exp.Div, exp.IntDiv, exp.Mod, exp.Pow, exp.Neg, exp.Abs, exp.Ln,
     exp.Log, exp.Exp, exp.Sqrt, exp.Round, exp.Floor, exp.Ceil, exp.Sign, exp.Least, exp.Greatest,
 )
+TEXT_FUNCTIONS = (exp.Length, exp.Lower, exp.Upper, exp.Trim)  # engines have them for text only
 TERM_TABLE = "term_input"
 
 
 def _is_text(data_type: exp.DataType | None) -> bool:
     return data_type is not None and data_type.is_type(*exp.DataType.TEXT_TYPES)
+
+
+def _is_number(data_type: exp.DataType | None) -> bool:
+    return data_type is not None and data_type.is_type(
+        *exp.DataType.REAL_TYPES, *exp.DataType.INTEGER_TYPES, exp.DataType.Type.BOOLEAN)
 
 
 def term_type(expression: exp.Expression, schema: dict[str, str]) -> tuple[str | None, list[tuple[exp.Expression, str]]]:
@@ -45,6 +52,11 @@ def term_type(expression: exp.Expression, schema: dict[str, str]) -> tuple[str |
                     problems.append((original,
                                      f"arithmetic on text: '{label}' is {operand.type.sql()}; "
                                      "compare it to a value (e.g. CASE WHEN x = 'a' THEN 1 ELSE 0 END) or CAST it"))
+        if isinstance(node, TEXT_FUNCTIONS) and _is_number(node.this.type):
+            original = _original(expression, node.this)
+            label = (original if isinstance(original, exp.Column) else node.this).sql(dialect=TERM_DIALECT)
+            message = f"{node.sql_name()} takes text, but '{label}' is {node.this.type.sql()}; use the number itself, or CAST it to VARCHAR"
+            problems.append((original, message))
     if problems:
         return None, problems
     result = value.type

@@ -17,6 +17,7 @@ import pyarrow.parquet as pq
 from sqlglot import exp
 
 from ..errors import EngineError
+from .datafiles import check_data_file
 
 CSV_BLOCK_BYTES = 64 << 20
 
@@ -33,8 +34,7 @@ class ArrowFile:
 def open_arrow_file(path: Path, engine: str, batch_rows: int = 65_536) -> ArrowFile:
     """Open `path` (.parquet, else CSV with a header row); problems are EngineErrors naming `engine` and the file."""
     path = Path(path)
-    if not path.is_file():
-        raise EngineError(f"{engine}: cannot load {path}: no such file")
+    check_data_file(path, engine)
     try:
         if path.suffix.lower() == ".parquet":
             parquet = pq.ParquetFile(path)

@@ -6,7 +6,7 @@ built elsewhere. Table names are plain (unquoted) names; adapters quote them.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Protocol
 
@@ -15,6 +15,9 @@ from sqlglot import exp
 if TYPE_CHECKING:  # only annotations: `featpipe check` never pays for pandas or Arrow
     import pandas as pd
     import pyarrow as pa
+
+Check = Callable[[str], None]
+"""Inspects a table about to be swapped in, given its temporary name; raising keeps the old table."""
 
 
 class Engine(Protocol):
@@ -33,14 +36,19 @@ class Engine(Protocol):
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         """Stream a query's result as Arrow record batches of at most `batch_rows` rows."""
 
-    def create_table(self, name: str, query: exp.Query) -> None:
-        """Build `name` from `query` under a temporary name, then swap it in.
+    def create_table(self, name: str, query: exp.Query, check: Check | None = None) -> None:
+        """Build `name` from `query` under a temporary name, run `check` on it, then swap it in.
 
-        A failure leaves any previous table `name` intact and no temporary table behind.
+        A failure (of the build or of `check`) leaves any previous table `name` intact and no
+        temporary table behind.
         """
 
-    def load_file(self, name: str, path: Path) -> None:
-        """Load a CSV or Parquet file as table `name`, atomically like `create_table`."""
+    def load_file(self, name: str, path: Path, check: Check | None = None) -> None:
+        """Load a CSV or Parquet file as table `name`, atomically like `create_table` (and checked like it).
+
+        A directory, a missing or empty file and a CSV that is not UTF-8 are refused naming the file
+        (`datafiles.check_data_file`).
+        """
 
     def describe(self, name: str) -> dict[str, exp.DataType] | None:
         """Column names and types of table `name`, or None when it does not exist."""

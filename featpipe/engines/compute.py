@@ -7,19 +7,21 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Callable
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
+from functools import partial
 
 from sqlglot import exp
 
 from ..compiler import CompiledModel
-from ..project import Project
+from ..errors import EngineError
+from ..project import InputSpec, Project
 from ..sqlgen.common import render
 from ..sqlgen.design import design_query
 from . import open_engine
 from .base import Engine
 from .builds import input_signature, read_builds, record_builds
-from .contract import check_contract
+from .contract import check_contract, check_key
 
 Progress = Callable[[str], None]
 
@@ -43,15 +45,31 @@ def connect(project: Project):
 def prepare_inputs(
     engine: Engine, project: Project, inputs: set[str], builds: dict[str, str], progress: Progress | None = None
 ) -> None:
-    """Load each input's `load:` file when it changed, and check the engine's table against the contract."""
+    """Load each input's `load:` file when it changed, and check the engine's table against the contract.
+
+    A file is checked (columns, then key) on its temporary table before it replaces the input's table,
+    so a bad file leaves the old table, and `builds` gets the file's signature only once it is in. A
+    table without `load:` is checked as it is, key included; a loaded one's key was checked at load.
+    """
     for name in sorted(inputs):
         source = project.inputs[name]
         signature = input_signature(source)
-        if source.load is not None and builds.get(name) != signature:
-            say(progress, f"loading {source.load.relative_to(project.root)} into {engine.name} table {name}")
-            engine.load_file(name, source.load)
-        check_contract(source, name, engine.describe(name), engine.name)
+        if source.load is None:
+            check_contract(source, name, engine.describe(name), engine.name)
+            check_key(engine, name, source.key, f"{engine.name} table '{name}'")
+        elif builds.get(name) != signature:
+            shown = source.load.relative_to(project.root)
+            say(progress, f"loading {shown} into {engine.name} table {name}")
+            engine.load_file(name, source.load, partial(check_loaded_file, engine, source, str(shown)))
+        else:
+            check_contract(source, name, engine.describe(name), engine.name)
         builds[name] = signature
+
+
+def check_loaded_file(engine: Engine, source: InputSpec, shown: str, building: str) -> None:
+    """The contract and the key of a file `shown` as loaded into `building`, before it replaces the input's table."""
+    check_contract(source, source.name, engine.describe(building), engine.name, subject=f"file {shown}")
+    check_key(engine, building, source.key, shown)
 
 
 def design_signature(project: Project, model: CompiledModel) -> str:
@@ -68,17 +86,24 @@ def build_designs(
     """Build (or, with only_stale, rebuild when changed) each model's design table; a failure keeps the old one."""
     recorded = read_builds(engine)
     builds = dict(recorded)
-    prepare_inputs(engine, project, {model.spec.input for model in models}, builds, progress)
     built = []
-    for model in models:
-        signature = design_signature(project, model)
-        if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
-            continue
-        say(progress, f"building {model.layout.table}")
-        engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
-        builds[model.layout.table] = signature
-        rows = engine.fetch(_count(model.layout.table))[0][0]
-        built.append(BuiltTable(model.name, model.layout.table, rows))
+    try:
+        prepare_inputs(engine, project, {model.spec.input for model in models}, builds, progress)
+        for model in models:
+            signature = design_signature(project, model)
+            if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
+                continue
+            say(progress, f"building {model.layout.table}")
+            engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
+            builds[model.layout.table] = signature
+            rows = engine.fetch(_count(model.layout.table))[0][0]
+            built.append(BuiltTable(model.name, model.layout.table, rows))
+    except Exception:
+        # Record what did land (a file loaded before a later step failed): a stale signature would
+        # keep its old file from being loaded again when the user restores it.
+        with suppress(EngineError):
+            record_builds(engine, builds, recorded)
+        raise
     record_builds(engine, builds, recorded)
     return built
 

@@ -13,6 +13,8 @@ from sqlglot import exp
 
 from ..errors import EngineError
 from . import statements
+from .base import Check
+from .datafiles import check_data_file
 
 
 class DuckDBEngine:
@@ -66,11 +68,13 @@ class DuckDBEngine:
     def execute(self, statement: exp.Expression) -> None:
         self._run(statement)
 
-    def create_table(self, name: str, query: exp.Query) -> None:
+    def create_table(self, name: str, query: exp.Query, check: Check | None = None) -> None:
         building = statements.building_name(name)
         self._run(statements.drop_table(building))
         try:
             self._run(statements.create_table_as(building, query))
+            if check is not None:
+                check(building)
             self.connection.begin()
             self._run(statements.drop_table(name))
             self._run(statements.rename_table(building, name))
@@ -81,10 +85,14 @@ class DuckDBEngine:
             self._run(statements.drop_table(building))
             raise
 
-    def load_file(self, name: str, path: Path) -> None:
+    def load_file(self, name: str, path: Path, check: Check | None = None) -> None:
+        check_data_file(path, self.name)
         reader = "read_parquet" if path.suffix.lower() == ".parquet" else "read_csv"
         source = exp.Anonymous(this=reader, expressions=[exp.Literal.string(str(path))])
-        self.create_table(name, exp.select(exp.Star()).from_(source))
+        try:
+            self.create_table(name, exp.select(exp.Star()).from_(source), check)
+        except EngineError as error:  # DuckDB's CSV errors give the line but not the file
+            raise EngineError(f"duckdb: cannot load {path}: {str(error).removeprefix('duckdb: ')}") from None
 
     def describe(self, name: str) -> dict[str, exp.DataType] | None:
         query = (

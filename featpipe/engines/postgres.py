@@ -23,6 +23,7 @@ from ..errors import EngineError
 from ..project import EngineConfig
 from . import statements
 from .arrowfile import open_arrow_file, sql_type
+from .base import Check
 
 try:  # the postgres extra is optional; the error says how to install it
     import psycopg
@@ -113,14 +114,14 @@ class PostgresEngine:
         with self._translated(), self.connection.cursor() as cursor:
             self._run(cursor, statement)
 
-    def create_table(self, name: str, query: exp.Query) -> None:
+    def create_table(self, name: str, query: exp.Query, check: Check | None = None) -> None:
         building = self._building_name(name)
         with self._translated(), self.connection.transaction(), self.connection.cursor() as cursor:
             self._run(cursor, statements.drop_table(building))
             self._run(cursor, statements.create_table_as(building, query))
-            self._swap(cursor, building, name)
+            self._swap(cursor, building, name, check)
 
-    def load_file(self, name: str, path: Path) -> None:
+    def load_file(self, name: str, path: Path, check: Check | None = None) -> None:
         """CREATE TABLE from the file's Arrow schema, then COPY the rows in as CSV, all in one transaction."""
         data = open_arrow_file(path, self.name, FETCH_ROWS)
         building = self._building_name(name)
@@ -143,9 +144,12 @@ class PostgresEngine:
             with cursor.copy(self.render(copy)) as stream:
                 for batch in data.batches:
                     stream.write(_csv_bytes(batch))
-            self._swap(cursor, building, name)
+            self._swap(cursor, building, name, check)
 
-    def _swap(self, cursor, building: str, name: str) -> None:
+    def _swap(self, cursor, building: str, name: str, check: Check | None) -> None:
+        """Run `check` on the building table (inside the transaction, which a failure rolls back), then swap."""
+        if check is not None:
+            check(building)
         self._run(cursor, statements.drop_table(name))
         self._run(cursor, statements.rename_table(building, name))
 

@@ -30,6 +30,8 @@ from sqlglot.generators.spark import SparkGenerator
 from ..errors import EngineError
 from ..project import EngineConfig
 from . import statements
+from .base import Check
+from .datafiles import check_data_file
 
 
 @contextlib.contextmanager
@@ -139,12 +141,15 @@ class SparkEngine:
         with self._translated():
             self._frame(statement)
 
-    def create_table(self, name: str, query: exp.Query) -> None:
-        self._build_then_swap(name, lambda building: self._frame(statements.create_table_as(building, query)))
+    def create_table(self, name: str, query: exp.Query, check: Check | None = None) -> None:
+        self._build_then_swap(name, lambda building: self._frame(statements.create_table_as(building, query)), check)
 
-    def load_file(self, name: str, path: Path) -> None:
-        """Spark reads the file itself (on a Spark Connect server: the server's file system)."""
+    def load_file(self, name: str, path: Path, check: Check | None = None) -> None:
+        """Spark reads the file itself (on a Spark Connect server: the server's file system). featpipe checks
+        it here first (`check_data_file`; compute hashes it here too), so with Spark Connect the file must be
+        at the same path on both machines."""
         path = Path(path).resolve()
+        check_data_file(path, self.name)
 
         def build(building: str) -> None:
             if path.suffix.lower() == ".parquet":
@@ -153,14 +158,19 @@ class SparkEngine:
                 frame = self.session.read.csv(str(path), header=True, inferSchema=True)
             frame.write.saveAsTable(building)
 
-        self._build_then_swap(name, build)
+        try:
+            self._build_then_swap(name, build, check)
+        except EngineError as error:  # Spark's reader errors do not name the file
+            raise EngineError(f"spark: cannot load {path}: {str(error).removeprefix('spark: ')}") from None
 
-    def _build_then_swap(self, name: str, build: Callable[[str], None]) -> None:
+    def _build_then_swap(self, name: str, build: Callable[[str], None], check: Check | None) -> None:
         building = statements.building_name(name)
         with self._translated():
             self._frame(statements.drop_table(building))
             try:
                 build(building)
+                if check is not None:
+                    check(building)
                 self._frame(statements.drop_table(name))
                 self._frame(statements.rename_table(building, name))
             except BaseException:

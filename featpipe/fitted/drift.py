@@ -41,7 +41,13 @@ from ..sqlgen.drift import (
 )
 from . import FittedModel, file_hash
 from .current import refuse_if_stale
-from .scoring import fitted_source, load_fitted, scoring_contract, scoring_model
+from .scoring import (
+    fitted_source,
+    load_fitted,
+    scoring_contract,
+    scoring_model,
+    sql_comment,
+)
 
 # Readings of the stability index (common practice in credit scoring).
 MODERATE_FROM, MAJOR_ABOVE = 0.1, 0.25
@@ -145,7 +151,7 @@ def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
         (f"Reading (common practice in credit scoring): below {MODERATE_FROM} stable, {MODERATE_FROM} to {MAJOR_ABOVE} "
          f"a moderate shift, above {MAJOR_ABOVE} a major shift."),
     ]
-    return "".join(f"-- {line}\n" for line in lines)
+    return sql_comment(lines)
 
 
 def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple) -> DriftReport:

@@ -12,7 +12,7 @@ values, exact on every run, and are written in full so a value on an edge stays 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import yaml
@@ -20,9 +20,9 @@ import yaml
 from ..atomic import write_text_atomic
 from ..compiler import CompiledModel
 from ..errors import FeatpipeError
+from ..project.yamlfile import read_text
 from ..sqlgen.profile import Profile
-
-FORMAT_VERSION = 1
+from .validate import AGAIN, FORMAT_VERSION, check_integrity, check_values
 
 
 @dataclass(frozen=True)
@@ -127,16 +127,30 @@ SAFE_LOADER = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
 
 
 def from_yaml(text: str, source: str) -> FittedModel:
+    """The fitted model in `text`, every value checked before use and refused if edited by hand
+    (featpipe.fitted.validate); `source` names the file in messages."""
+    data = _yaml_data(text, source)
+    check_values(data, source)
+    fitted = FittedModel(**{
+        **data,
+        "terms": tuple(_term(item) for item in data["terms"]),
+        "linear_predictor": _profile(data.get("linear_predictor")),
+        "warnings": tuple(data.get("warnings") or ()),
+    })
+    check_integrity(fitted, source)
+    return fitted
+
+
+def _yaml_data(text: str, source: str):
     try:
-        data = yaml.load(text, Loader=SAFE_LOADER)
-        return FittedModel(**{
-            **data,
-            "terms": tuple(_term(item) for item in data["terms"]),
-            "linear_predictor": _profile(data.get("linear_predictor")),
-            "warnings": tuple(data.get("warnings") or ()),
-        })
-    except (yaml.YAMLError, KeyError, TypeError) as error:
-        raise FeatpipeError(f"{source}: not a fitted file featpipe can read ({error}); run `featpipe fit` again") from None
+        return yaml.load(text, Loader=SAFE_LOADER)
+    except yaml.YAMLError as error:
+        mark = getattr(error, "problem_mark", None)
+        where = f"YAML error at line {mark.line + 1}" if mark else "YAML error"
+        problem = getattr(error, "problem", None) or str(error).splitlines()[0]
+        raise FeatpipeError(f"{source}: not a fitted file featpipe can read ({where}: {problem}); {AGAIN}") from None
+    except RecursionError:
+        raise FeatpipeError(f"{source}: not a fitted file featpipe can read (nested too deeply); {AGAIN}") from None
 
 
 def _profile(data: dict | None) -> Profile | None:
@@ -147,10 +161,8 @@ def _profile(data: dict | None) -> Profile | None:
 
 def _term(data: dict) -> FittedTerm:
     effect = Effect(**data["effect"]) if data.get("effect") else None
-    known = {f.name for f in fields(FittedTerm)}
-    values = {key: value for key, value in data.items() if key in known}
     return FittedTerm(**{
-        **values,
+        **data,
         "columns": tuple(data.get("columns") or ()),
         "built_from": tuple(data.get("built_from") or ()),
         "notes": tuple(data.get("notes") or ()),
@@ -160,16 +172,23 @@ def _term(data: dict) -> FittedTerm:
 
 
 def write_fitted(path: Path, fitted: FittedModel) -> FittedModel:
-    """Write atomically and return the model as written (floats at the file's precision)."""
+    """Write atomically and return the model as written (floats at the file's precision); a model whose
+    file featpipe would refuse to read is not written."""
     text = to_yaml(fitted)
+    written = from_yaml(text, _source(path))
     write_text_atomic(path, text)
-    return from_yaml(text, str(path))
+    return written
 
 
 def read_fitted(path: Path) -> FittedModel:
     if not path.is_file():
         raise FeatpipeError(f"{path.name}: no fitted file at {path}; run `featpipe fit` first")
-    return from_yaml(path.read_text(encoding="utf-8"), str(path))
+    return from_yaml(read_text(path, _source(path)), _source(path))
+
+
+def _source(path: Path) -> str:
+    """The file as messages name it: fitted/NAME.yaml."""
+    return f"{path.parent.name}/{path.name}"
 
 
 def file_hash(path: Path) -> str:

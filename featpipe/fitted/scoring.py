@@ -1,6 +1,7 @@
 """Scoring API: the exported scoring SQL of a fitted model, and batch scoring inside the engine.
 
-    >>> from featpipe import load_project, scoring
+    >>> from featpipe import load_project
+    >>> from featpipe.fitted import scoring
     >>> project = load_project("projects/lease_default")                              # doctest: +SKIP
     >>> print(scoring.render_score_sql(project, "default_risk", dialect="postgres"))  # doctest: +SKIP
     >>> scoring.score(project, "default_risk", table="new_leases", into="scores")     # doctest: +SKIP
@@ -17,7 +18,7 @@ from dataclasses import dataclass
 from sqlglot import exp
 
 from ..engines.compute import Progress, connect
-from ..engines.contract import check_contract
+from ..engines.contract import check_contract, check_key
 from ..errors import FeatpipeError
 from ..project import PROJECT_FILE, InputSpec, Project
 from ..project.names import (
@@ -27,6 +28,7 @@ from ..project.names import (
     contribution_column,
     reserved_reason,
     scoring_clash,
+    table_reference,
 )
 from ..sqlgen.common import check_dialect, column, render
 from ..sqlgen.score import (
@@ -106,6 +108,15 @@ def score_header(fitted: FittedModel, fitted_hash: str) -> str:
         "Unseen categories take their term expression's value (indicators give 0, the reference level);",
         "values outside the training range are extrapolated by the linear model.",
     ]
+    return sql_comment(lines)
+
+
+def sql_comment(lines: list[str]) -> str:
+    """`lines` as SQL line comments. A line break inside a line would end its comment and turn the rest
+    into SQL, so one is refused as a bug: header lines hold validated values only (fitted/validate.py)."""
+    for line in lines:
+        if line.splitlines() not in ([line], []):
+            raise AssertionError(f"a SQL comment line holds a line break: {line!r}")
     return "".join(f"-- {line}\n" for line in lines)
 
 
@@ -155,26 +166,28 @@ def score(
     Refuses, before anything is written: a model whose definitions changed since its fit (unless
     `allow_stale`), a table that does not meet the input's column contract, and `into` == `table`.
     """
-    fitted = load_fitted(project, model)
-    if into == table:
+    target = table_reference(into, "--into")
+    if table_reference(table, "--table") == target:
         raise FeatpipeError(f"--into '{into}' is the table being scored; write the scores to another table")
+    fitted = load_fitted(project, model)
     stale = refuse_if_stale(project, fitted, allow_stale=allow_stale)
     contract = scoring_contract(project.inputs[fitted.input], fitted)
     query = score_query(scoring_model(fitted), table=table, reasons=reasons)
     with connect(project) as engine:
         check_contract(contract, table, engine.describe(table), engine.name)
+        check_key(engine, table, fitted.key, f"{engine.name} table '{table}'")
         if progress:
             progress(f"scoring {table} into {into} with {engine.name}")
         engine.create_table(into, query)
-        counts = engine.fetch(_status_counts(into))
+        counts = engine.fetch(_status_counts(target))
     status = {name: int(count) for name, count in counts}
     return ScoreResult(model, table, into, sum(status.values()), status, stale)
 
 
-def _status_counts(table: str) -> exp.Select:
+def _status_counts(table: exp.Table) -> exp.Select:
     return (
         exp.select(column(STATUS), exp.Count(this=exp.Star()))
-        .from_(exp.to_table(table))
+        .from_(table)
         .group_by(column(STATUS))
         .order_by(column(STATUS))
     )

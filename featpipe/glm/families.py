@@ -19,6 +19,8 @@ from abc import ABC, abstractmethod
 import numpy as np
 from scipy.special import expit, gammaln
 
+from ..project.load import LINKS
+
 # |eta| beyond this puts a fitted probability within 1e-10 of 0 or 1 (binomial), or a fitted mean
 # below 1e-10 (poisson, eta < -BOUNDARY_ETA).
 BOUNDARY_ETA = math.log((1 - 1e-10) / 1e-10)
@@ -59,7 +61,8 @@ class Family(ABC):
 
 
 class Binomial(Family):
-    name, link = "binomial", "logit"
+    name = "binomial"
+    link = LINKS[name]
     eta_limit = 36.0
 
     def mean(self, eta):
@@ -80,7 +83,8 @@ class Binomial(Family):
 
 
 class Poisson(Family):
-    name, link = "poisson", "log"
+    name = "poisson"
+    link = LINKS[name]
     eta_limit = 50.0
 
     def mean(self, eta):
@@ -107,7 +111,8 @@ class Poisson(Family):
 
 
 class Gaussian(Family):
-    name, link = "gaussian", "identity"
+    name = "gaussian"
+    link = LINKS[name]
     statistic_name = "t"  # dispersion estimated: t with n - p degrees of freedom
     estimates_dispersion = True
 

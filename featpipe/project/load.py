@@ -16,11 +16,12 @@ from sqlglot import exp
 from sqlglot.errors import ParseError
 
 from ..errors import Diagnostic, FeatpipeError, raise_if_errors
-from .names import NAME_PATTERN, scoring_clash
-from .yamlfile import YamlDocument, read_yaml
+from .names import NAME_PATTERN, NAME_RULE, scoring_clash
+from .yamlfile import YamlDocument, read_text, read_yaml
 
 PROJECT_FILE = "featpipe.yaml"
-FAMILIES = ("binomial", "poisson", "gaussian")
+LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}  # each GLM family with its link
+FAMILIES = tuple(LINKS)
 ENGINE_KINDS = ("duckdb", "postgres", "spark")
 EXPECTATIONS = ("positive", "negative")
 
@@ -136,10 +137,13 @@ def load_project(path: Path | str | None = None) -> Project:
         name = root.name
     engine = _engine(document, data.get("engine") or {}, root, name, diagnostics)
     inputs = _inputs(document, data.get("inputs"), root, diagnostics)
-    term_files = tuple(
-        TermFile(file, file.relative_to(root).as_posix(), file.read_text(encoding="utf-8"))
-        for file in sorted((root / "terms").glob("*.sql"))
-    )
+    term_files = []
+    for file in sorted((root / "terms").glob("*.sql")):
+        display = file.relative_to(root).as_posix()
+        try:
+            term_files.append(TermFile(file, display, read_text(file, display)))
+        except FeatpipeError as error:  # not UTF-8 or too large; keep checking the other files
+            diagnostics.extend(error.diagnostics)
     models = {}
     for file in sorted((root / "specs").glob("*.yaml")):
         try:
@@ -150,7 +154,7 @@ def load_project(path: Path | str | None = None) -> Project:
         if model is not None:
             models[model.name] = model
     raise_if_errors(diagnostics)
-    return Project(root, name, engine, inputs, term_files, models, document)
+    return Project(root, name, engine, inputs, tuple(term_files), models, document)
 
 
 def _mapping(document: YamlDocument, path: tuple, diagnostics: list[Diagnostic]) -> dict:
@@ -195,6 +199,12 @@ def _engine(document, data, root: Path, name: str, diagnostics) -> EngineConfig:
     if kind not in ENGINE_KINDS:
         diagnostics.append(document.at(("engine", "kind"), f"unknown engine kind '{kind}'; use one of {', '.join(ENGINE_KINDS)}"))
         kind = "duckdb"
+    for setting in ("path", "dsn", "url", "master", "database"):
+        if setting in data and not isinstance(data[setting], str):
+            diagnostics.append(document.at(("engine", setting), f"engine {setting} must be a text, not {type(data[setting]).__name__}"))
+            data = {key: value for key, value in data.items() if key != setting}
+    if "database" in data and not _is_name(data["database"]):
+        diagnostics.append(document.at(("engine", "database"), f"engine database {data['database']!r} {NAME_RULE}; it names a schema in SQL"))
     path = Path(data.get("path") or f"build/{name}.duckdb")
     dsn = data.get("dsn")
     if dsn is not None:
@@ -219,6 +229,8 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
     inputs = {}
     for input_name, spec in data.items():
         path = ("inputs", input_name)
+        if not _is_name(input_name):
+            diagnostics.append(document.at(path, f"input name {input_name!r} {NAME_RULE}; it names a table in SQL", key=True))
         if not isinstance(spec, dict):
             diagnostics.append(document.at(path, f"input '{input_name}' must be a mapping with 'key' and 'columns'"))
             continue
@@ -227,13 +239,20 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
         if not isinstance(columns, dict) or not columns:
             diagnostics.append(document.at(path + ("columns",), f"input '{input_name}' needs 'columns:' mapping each column to its SQL type"))
             columns = {}
+        for column in columns:
+            if not _is_name(column):
+                diagnostics.append(document.at(path + ("columns", column), f"column name {column!r} {NAME_RULE}", key=True))
         columns = {str(column): str(kind) for column, kind in columns.items()}
         for column, kind in columns.items():
             if not _valid_type(kind):
-                diagnostics.append(document.at(path + ("columns", column), f"'{kind}' is not a SQL type (for example BIGINT, DOUBLE, VARCHAR, BOOLEAN)"))
+                diagnostics.append(document.at(path + ("columns", column), f"{kind!r} is not a SQL type (for example BIGINT, DOUBLE, VARCHAR, BOOLEAN)"))
         key = spec.get("key")
         if not key:
             diagnostics.append(document.at(path, f"input '{input_name}' needs 'key:', the column that identifies a row", key=True))
+        elif not isinstance(key, str):
+            diagnostics.append(document.at(path + ("key",), f"key must name one column (e.g. key: {next(iter(columns), 'id')}), "
+                                           f"not {type(key).__name__} {key!r}"))
+            key = None
         elif key not in columns:
             diagnostics.append(document.at(path + ("key",), f"key '{key}' is not among the columns of '{input_name}'"))
         elif scoring_clash(str(key)):
@@ -244,13 +263,26 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
             load = root / str(load)
             if load.suffix.lower() not in (".csv", ".parquet"):
                 diagnostics.append(document.at(path + ("load",), "load must be a .csv or .parquet file"))
+            elif load.is_dir():
+                diagnostics.append(document.at(path + ("load",), f"{spec['load']} is a directory; point load at one .csv or .parquet file"))
             elif not load.is_file():
                 diagnostics.append(document.at(path + ("load",), f"file {spec['load']} does not exist"))
         inputs[str(input_name)] = InputSpec(str(input_name), str(key or ""), columns, load)
     return inputs
 
 
+def _is_name(value) -> bool:
+    return isinstance(value, str) and NAME_PATTERN.match(value) is not None
+
+
+# A column type as written: words, then optional (n) or (p, s): BIGINT, DOUBLE PRECISION, DECIMAL(10, 2).
+TYPE_FORM = re.compile(r"[A-Za-z][A-Za-z0-9_]*(?: [A-Za-z][A-Za-z0-9_]*)*(?: ?\( *[0-9]+ *(?:, *[0-9]+ *)?\))?")
+
+
 def _valid_type(kind: str) -> bool:
+    """A plain SQL type DuckDB knows; anything more (`VARCHAR); DROP ...`) is refused, not half-parsed."""
+    if not TYPE_FORM.fullmatch(kind):
+        return False
     try:
         return exp.DataType.build(kind, dialect="duckdb").this != exp.DataType.Type.USERDEFINED
     except (ParseError, ValueError):
@@ -282,7 +314,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
             diagnostics.append(Diagnostic(display, 1, 1, f"missing required key '{key}'"))
             return ""
         if not isinstance(value, str):
-            diagnostics.append(document.at((key,), f"'{key}' must be a text"))
+            diagnostics.append(document.at((key,), f"'{key}' must be one text, not {type(value).__name__} {value!r}"))
             return ""
         return value
 
@@ -296,6 +328,9 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     if target and columns and target not in columns:
         diagnostics.append(document.at(("target",), f"target '{target}' is not a column of input '{input_name}'"))
     weights = data.get("weights")
+    if weights is not None and not isinstance(weights, str):
+        diagnostics.append(document.at(("weights",), f"weights must name one column, not {type(weights).__name__} {weights!r}"))
+        weights = None
     if weights is not None and columns and weights not in columns:
         diagnostics.append(document.at(("weights",), f"weights column '{weights}' is not a column of input '{input_name}'"))
     offset = data.get("offset")

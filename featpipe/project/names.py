@@ -12,13 +12,37 @@ from __future__ import annotations
 
 import re
 
-NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+from sqlglot import exp
+
+from ..errors import FeatpipeError
+
+NAME_PATTERN = re.compile(r"^[A-Za-z][A-Za-z0-9_]*\Z")  # \Z, not $: "$" also matches before a final newline
+NAME_RULE = "must start with a letter and hold only letters, digits and _"
 
 INTERCEPT = "(intercept)"
 
 HOLDOUT_COLUMN = "_holdout"
 OFFSET_COLUMN = "_offset"
 WEIGHT_COLUMN = "_weight"
+
+
+def table_reference(text: str, option: str) -> exp.Table:
+    """The table `name` or `schema.name` given in `option` as quoted identifiers; the text is never parsed as SQL.
+
+    A table name from a command line or a file ends up in exported SQL, so anything but plain names
+    (a function call, a quote, a statement) is refused here rather than escaped.
+
+    >>> table_reference("scores.june", "--into").sql(identify=True)
+    '"scores"."june"'
+    >>> table_reference("read_csv('/etc/passwd')", "--table")
+    Traceback (most recent call last):
+    featpipe.errors.FeatpipeError: --table "read_csv('/etc/passwd')" is not a table name: give name or schema.name, each part must start with a letter and hold only letters, digits and _
+    """
+    parts = text.split(".") if isinstance(text, str) else []
+    if not 1 <= len(parts) <= 2 or not all(NAME_PATTERN.match(part) for part in parts):
+        raise FeatpipeError(f"{option} {text!r} is not a table name: give name or schema.name, each part {NAME_RULE}")
+    *schema, name = parts
+    return exp.table_(exp.to_identifier(name, quoted=True), db=exp.to_identifier(schema[0], quoted=True) if schema else None)
 
 
 def design_table_name(model: str) -> str:

@@ -1,4 +1,10 @@
-"""Read YAML safely while remembering where every key and value sits, for `file:line:col` errors."""
+"""Read project files safely: UTF-8 text of a bounded size, and YAML that remembers where every key
+and value sits, for `file:line:col` errors.
+
+Project files come from pull requests like code, so a file featpipe cannot read as intended (not
+UTF-8, too large, nested too deeply, a YAML tag or a list where a key belongs) is refused with one
+positioned line, never a traceback.
+"""
 
 from __future__ import annotations
 
@@ -10,6 +16,8 @@ import yaml
 from ..errors import Diagnostic, FeatpipeError
 
 PathKey = tuple  # a path into the document: ("engine", "kind"), ("terms", 2)
+
+MAX_FILE_BYTES = 1_000_000  # the largest project file (featpipe.yaml, a spec, a term file) featpipe reads
 
 
 @dataclass
@@ -31,22 +39,43 @@ class YamlDocument:
         return Diagnostic(self.file, line, col, message, severity)
 
 
+def read_text(path: Path, display_name: str) -> str:
+    """The UTF-8 text of a project file; a file too large or not UTF-8 is a positioned FeatpipeError."""
+    size = path.stat().st_size
+    if size > MAX_FILE_BYTES:
+        raise FeatpipeError(diagnostics=[Diagnostic(display_name, 1, 1, f"the file holds {size:,} bytes; project files "
+                                                    f"may hold at most {MAX_FILE_BYTES:,}: split it into smaller files")])
+    data = path.read_bytes()
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as error:
+        line = data.count(b"\n", 0, error.start) + 1
+        col = len(data[data.rfind(b"\n", 0, error.start) + 1:error.start].decode("utf-8", errors="replace")) + 1
+        message = f"not UTF-8 text (byte 0x{data[error.start]:02X}); save the file as UTF-8"
+        raise FeatpipeError(diagnostics=[Diagnostic(display_name, line, col, message)]) from None
+
+
 def read_yaml(path: Path, display_name: str) -> YamlDocument:
     """Parse `path` with the safe loader; a syntax error becomes a positioned FeatpipeError."""
-    text = path.read_text(encoding="utf-8")
+    text = read_text(path, display_name)
+    document = YamlDocument(display_name, {})
     try:
         node = yaml.compose(text, Loader=yaml.SafeLoader)
+        if node is not None:
+            document.data = _convert(node, (), document)
     except yaml.YAMLError as error:
-        mark = getattr(error, "problem_mark", None) or getattr(error, "context_mark", None)
-        line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
-        problem = getattr(error, "problem", None) or str(error)
-        raise FeatpipeError(diagnostics=[Diagnostic(display_name, line, col, f"YAML syntax error: {problem}")])
-    document = YamlDocument(display_name, None)
-    if node is None:
-        document.data = {}
-        return document
-    document.data = _convert(node, (), document)
+        raise _positioned(error, display_name) from None
+    except RecursionError:  # PyYAML composes nested collections recursively and offers no depth limit
+        raise FeatpipeError(diagnostics=[Diagnostic(display_name, 1, 1, "YAML nested too deeply to read; "
+                                                    "project files need a few levels of keys only")]) from None
     return document
+
+
+def _positioned(error: yaml.YAMLError, file: str) -> FeatpipeError:
+    mark = getattr(error, "problem_mark", None) or getattr(error, "context_mark", None)
+    line, col = (mark.line + 1, mark.column + 1) if mark else (1, 1)
+    problem = getattr(error, "problem", None) or str(error)
+    return FeatpipeError(diagnostics=[Diagnostic(file, line, col, f"YAML syntax error: {problem}")])
 
 
 def _convert(node: yaml.Node, path: PathKey, document: YamlDocument):
@@ -54,6 +83,10 @@ def _convert(node: yaml.Node, path: PathKey, document: YamlDocument):
     if isinstance(node, yaml.MappingNode):
         result = {}
         for key_node, value_node in node.value:
+            if not isinstance(key_node, yaml.ScalarNode):
+                line, col = key_node.start_mark.line + 1, key_node.start_mark.column + 1
+                raise FeatpipeError(diagnostics=[Diagnostic(document.file, line, col,
+                                                            "a key must be a name, not a list or a mapping")])
             key = _scalar(key_node)
             if key in result:
                 line, col = key_node.start_mark.line + 1, key_node.start_mark.column + 1
@@ -69,6 +102,6 @@ def _convert(node: yaml.Node, path: PathKey, document: YamlDocument):
 def _scalar(node: yaml.Node):
     loader = yaml.SafeLoader("")
     try:
-        return loader.construct_object(node, deep=True)
+        return loader.construct_object(node, deep=True)  # a tag it does not construct raises a YAMLError
     finally:
         loader.dispose()

@@ -11,6 +11,7 @@ from sqlglot import exp
 
 from ..compiler import CompiledModel, Term
 from ..project import Holdout, InputSpec
+from ..project.names import table_reference
 from .common import alias, column, double
 from .harden import as_number, harden
 
@@ -43,11 +44,16 @@ def target_value(name: str, declared_type: str) -> exp.Expression:
     return as_number(column(name), declared.is_type(exp.DataType.Type.BOOLEAN))
 
 
+def _source_table(source: InputSpec, table: str | None) -> exp.Table:
+    """The table a query reads: `table` (given as --table) or else the input's own name."""
+    return table_reference(table, "--table") if table else table_reference(source.name, f"input {source.name!r}")
+
+
 def terms_query(terms: list[Term], source: InputSpec, table: str | None = None) -> exp.Select:
     """Key and every term value of one input."""
     projections = [alias(column(source.key), source.key)]
     projections += [alias(term_value(term, source), term.name) for term in terms]
-    return exp.select(*projections).from_(exp.to_table(table or source.name))
+    return exp.select(*projections).from_(_source_table(source, table))
 
 
 def design_query(model: CompiledModel, source: InputSpec, table: str | None = None) -> exp.Select:
@@ -63,4 +69,4 @@ def design_query(model: CompiledModel, source: InputSpec, table: str | None = No
         projections.append(alias(double(column(spec.weights)), layout.weight))
     projections.append(alias(holdout_flag(source.key, spec.holdout), layout.holdout))
     projections += [alias(term_value(term, source), term.name) for term in model.terms]
-    return exp.select(*projections).from_(exp.to_table(table or source.name))
+    return exp.select(*projections).from_(_source_table(source, table))

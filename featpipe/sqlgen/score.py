@@ -68,6 +68,7 @@ from ..project.names import (
     STATUS,
     contribution_column,
     reason_column,
+    table_reference,
 )
 from .common import alias, column, number
 from .harden import as_number, harden
@@ -128,7 +129,7 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
         raise FeatpipeError(f"--reasons must be between 0 and {len(model.terms)}, the number of terms in {model.source}")
     names = [term.name for term in model.terms]
     steps = [
-        (TERM_VALUES, _term_values(model, table or model.table)),
+        (TERM_VALUES, _term_values(model, table)),
         (CHECKED, _checked_terms(model, names)),
         (CONTRIBUTIONS, _contributions(model)),
     ]
@@ -146,12 +147,13 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
     return query
 
 
-def _term_values(model: ScoringModel, table: str) -> exp.Select:
-    """The key, each term's value as DOUBLE and the offset, from the input table."""
+def _term_values(model: ScoringModel, table: str | None) -> exp.Select:
+    """The key, each term's value as DOUBLE and the offset, from `table` (given as --table) or the input table."""
+    source = table_reference(table, "--table") if table else table_reference(model.table, f"{model.source}: input")
     values = [column(model.key), *(alias(term_value(model, term), term.name) for term in model.terms)]
     if model.offset is not None:
         values.append(alias(_parsed(model, "offset", model.offset, is_boolean=False), OFFSET_COLUMN))
-    return exp.select(*values).from_(exp.to_table(table))
+    return exp.select(*values).from_(source)
 
 
 def _checked_terms(model: ScoringModel, names: list[str]) -> exp.Select:
@@ -236,9 +238,9 @@ def score_statement(
     if as_view and into:
         raise FeatpipeError("give --as-view or --into, not both")
     if as_view:
-        return exp.Create(this=exp.to_table(as_view), kind="VIEW", expression=query)
+        return exp.Create(this=table_reference(as_view, "--as-view"), kind="VIEW", expression=query)
     if into:
-        return exp.Create(this=exp.to_table(into), kind="TABLE", expression=query)
+        return exp.Create(this=table_reference(into, "--into"), kind="TABLE", expression=query)
     return query
 
 
