@@ -219,3 +219,23 @@ def test_a_change_in_a_used_term_changes_the_users_fingerprint(tmp_path):
     before = compile_dir(write_project(tmp_path / "a", user)).terms["double_price"].fingerprint
     after = compile_dir(write_project(tmp_path / "b", {**user, "terms/basket.sql": BASKET.replace("NULLIF(items, 0)", "items")}))
     assert after.terms["double_price"].fingerprint != before
+
+
+def test_terms_that_grow_too_large_once_inlined_are_refused_at_the_first_one(tmp_path):
+    """Each term is small, but each doubles the one before; written out, t12 would hold 2^12 copies."""
+    doubling = ["SELECT", "  amount AS t0,"] + [f"  t{i - 1} + t{i - 1} AS t{i}," for i in range(1, 16)]
+    assert errors_of(tmp_path, extra="\n".join([*doubling, "  items AS last", "FROM orders"])) == [
+        "terms/extra.sql:14:16: term 't12' grows to 20,477 parts nested 25 deep once the terms it uses are "
+        "written out (at most 20,000 parts, 250 deep); build it from fewer or simpler terms"]
+
+
+def test_terms_that_nest_too_deep_once_inlined_are_refused(tmp_path):
+    """Terms of 19 nested ABS each are within a file's limit alone; written out into one another they
+    nest 38 deep, deeper than scoring could safely parse the fitted SQL back."""
+    def nested(inner: str) -> str:
+        return "ABS(" * 19 + inner + ")" * 19
+
+    text = f"SELECT\n  {nested('amount')} AS a1,\n  {nested('a1')} AS a2,\n  {nested('a2')} AS a3\nFROM orders"
+    assert errors_of(tmp_path, extra=text) == [
+        "terms/extra.sql:3:104: term 'a2' nests parentheses and CASE 38 deep once the terms it uses are written out "
+        "(at most 30); build it from fewer or shallower terms"]

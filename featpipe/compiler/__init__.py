@@ -31,10 +31,17 @@ from ..project.names import (
 )
 from .allowlist import check_allowed
 from .canonical import canonical_sql, canonical_tree, fingerprint_of_sql
-from .inline import dependency_order, inline_terms
+from .inline import (
+    MAX_INLINED_DEPTH,
+    MAX_INLINED_NESTING,
+    MAX_INLINED_NODES,
+    dependency_order,
+    inline_terms,
+    inlined_shape,
+)
 from .layout import DesignLayout
 from .leakage import target_paths
-from .parse import TERM_DIALECT, RawTerm, node_position, parse_term_file
+from .parse import TERM_DIALECT, RawTerm, nesting_depth, node_position, parse_term_file
 from .resolve import resolve_names
 from .types import term_type
 
@@ -204,12 +211,35 @@ def _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics) ->
             continue
         kinds[name] = kind
 
-    good = [name for name in order if name in kinds]
-    inlined = inline_terms({name: by_name[name].expression for name in good}, good)
+    typed = [name for name in order if name in kinds]
+    expressions = {name: by_name[name].expression for name in typed}
+    shapes = inlined_shape(expressions, typed)
+    good: list[str] = []
+    for name in typed:
+        nodes, depth = shapes[name]
+        if any(used in typed and used not in good for used in uses[name]):
+            continue  # built from a term refused below: that term carries the message
+        if depth > MAX_INLINED_DEPTH or nodes > MAX_INLINED_NODES:
+            term = by_name[name]
+            diagnostics.append(Diagnostic(term.file, term.line, term.col,
+                f"term '{name}' grows to {nodes:,} parts nested {depth} deep once the terms it uses are written "
+                f"out (at most {MAX_INLINED_NODES:,} parts, {MAX_INLINED_DEPTH} deep); build it from fewer or "
+                "simpler terms"))
+        else:
+            good.append(name)
+    inlined = inline_terms({name: expressions[name] for name in good}, good)
     terms = {}
     for name in good:
         raw, tree = by_name[name], canonical_tree(inlined[name])
         sql = canonical_sql(tree)
+        if any(used in good and used not in terms for used in uses[name]):
+            continue  # built from a term refused below
+        nesting = nesting_depth(sql)
+        if nesting > MAX_INLINED_NESTING:
+            diagnostics.append(Diagnostic(raw.file, raw.line, raw.col,
+                f"term '{name}' nests parentheses and CASE {nesting} deep once the terms it uses are written out "
+                f"(at most {MAX_INLINED_NESTING}); build it from fewer or shallower terms"))
+            continue
         terms[name] = Term(
             name=name, input=raw.input, file=raw.file, line=raw.line, col=raw.col, doc=raw.doc,
             kind=kinds[name], sql=sql, fingerprint=fingerprint_of_sql(sql),

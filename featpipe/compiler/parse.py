@@ -188,6 +188,22 @@ def _projection_spans(tokens: list[Token]) -> list[range]:
     return [range(start, end) for start, end in zip(starts, ends)]
 
 
+def nesting_depth(sql: str) -> int:
+    """How deep parentheses and CASE nest in `sql` (the parser's recursion grows with it).
+
+    >>> nesting_depth("ABS((a + 1) * CASE WHEN b THEN 1 END)")
+    2
+    """
+    depth = deepest = 0
+    for token in sqlglot.Dialect.get_or_raise(TERM_DIALECT).tokenize(sql):
+        if token.token_type in _OPENING:
+            depth += 1
+            deepest = max(deepest, depth)
+        elif token.token_type in _CLOSING:
+            depth -= 1
+    return deepest
+
+
 def _first_too_deep(tokens: list[Token]) -> Token | None:
     """The first token that opens a parenthesis or CASE more than MAX_NESTING_DEPTH levels deep."""
     depth = 0
