@@ -6,13 +6,23 @@ import os
 import tempfile
 from pathlib import Path
 
+from .errors import FeatpipeError
+
 
 def write_text_atomic(path: Path, text: str) -> None:
     """Replace `path` with `text` in one step; on any failure the old file is left untouched.
 
     The file takes the mode any tool's new file takes (0666 less the umask), not the private 0600
-    that a temporary file is created with.
+    that a temporary file is created with. A refusal of the system (a full disk, no permission) is a
+    FeatpipeError naming the file.
     """
+    try:
+        _write(path, text)
+    except OSError as error:
+        raise FeatpipeError(f"cannot write {path}: {error.strerror or error}; the file was left as it was") from None
+
+
+def _write(path: Path, text: str) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
