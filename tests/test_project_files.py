@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import pytest
-from conftest import write_project
+from conftest import PROJECT_YAML, write_project
 
 from featpipe.errors import FeatpipeError
 from featpipe.project import load_project
@@ -100,3 +100,20 @@ def test_a_key_column_named_like_a_scoring_output_is_refused_at_the_key(tmp_path
     assert errors_of(root) == [
         "featpipe.yaml:7:10: key 'prediction' is a column the scoring query writes; "
         "key the input by another column, or by a view that renames this one"]
+
+
+def test_yaml_anchors_and_aliases_are_refused_before_they_expand(tmp_path):
+    """A few hundred bytes of nested aliases expand to billions of values: refused at the first anchor."""
+    bomb = 'a: &a ["x", "x", "x", "x", "x", "x", "x", "x", "x"]\n' + "".join(
+        f"{chr(98 + i)}: &{chr(98 + i)} [*{chr(97 + i)}, *{chr(97 + i)}, *{chr(97 + i)}, *{chr(97 + i)}]\n" for i in range(9))
+    root = write_project(tmp_path, {"specs/returns.yaml": bomb})
+    with pytest.raises(FeatpipeError) as caught:
+        load_project(root)
+    assert str(caught.value) == ("specs/returns.yaml:1:4: YAML anchors and aliases (&name, *name) are not allowed in "
+                                 "project files; write the value out")
+
+
+def test_a_column_named_like_a_yaml_boolean_stays_a_name(tmp_path):
+    """YAML 1.1 reads an unquoted yes, no, on or off as a boolean; a key is always read as written."""
+    root = write_project(tmp_path, {"featpipe.yaml": PROJECT_YAML.replace("      returned: BIGINT\n", "      returned: BIGINT\n      on: BIGINT\n")})
+    assert load_project(root).inputs["orders"].columns["on"] == "BIGINT"

@@ -60,6 +60,7 @@ def read_yaml(path: Path, display_name: str) -> YamlDocument:
     text = read_text(path, display_name)
     document = YamlDocument(display_name, {})
     try:
+        _refuse_aliases(text, display_name)
         node = yaml.compose(text, Loader=yaml.SafeLoader)
         if node is not None:
             document.data = _convert(node, (), document)
@@ -69,6 +70,16 @@ def read_yaml(path: Path, display_name: str) -> YamlDocument:
         raise FeatpipeError(diagnostics=[Diagnostic(display_name, 1, 1, "YAML nested too deeply to read; "
                                                     "project files need a few levels of keys only")]) from None
     return document
+
+
+def _refuse_aliases(text: str, file: str) -> None:
+    """Anchors and aliases (`&a`, `*a`) let a few hundred bytes expand into millions of values; a project
+    file needs neither, so the first one is refused before anything is built."""
+    for event in yaml.parse(text, Loader=yaml.SafeLoader):
+        if isinstance(event, yaml.AliasEvent) or getattr(event, "anchor", None):
+            mark = event.start_mark
+            raise FeatpipeError(diagnostics=[Diagnostic(file, mark.line + 1, mark.column + 1,
+                "YAML anchors and aliases (&name, *name) are not allowed in project files; write the value out")])
 
 
 def _positioned(error: yaml.YAMLError, file: str) -> FeatpipeError:
@@ -87,7 +98,7 @@ def _convert(node: yaml.Node, path: PathKey, document: YamlDocument):
                 line, col = key_node.start_mark.line + 1, key_node.start_mark.column + 1
                 raise FeatpipeError(diagnostics=[Diagnostic(document.file, line, col,
                                                             "a key must be a name, not a list or a mapping")])
-            key = _scalar(key_node)
+            key = key_node.value  # as written: a column named yes, no, on or off stays a text
             if key in result:
                 line, col = key_node.start_mark.line + 1, key_node.start_mark.column + 1
                 raise FeatpipeError(diagnostics=[Diagnostic(document.file, line, col, f"duplicate key '{key}'")])
