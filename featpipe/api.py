@@ -84,10 +84,11 @@ def select_models(compiled: CompiledProject, names: list[str] | None) -> list[Co
 
 
 def compute(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[BuiltTable]:
-    """Build each model's design table in the engine; a failure keeps the previous table."""
+    """Load every input's `load:` file that changed, then build each model's design table in the engine;
+    a failure keeps the previous table."""
     chosen = select_models(check(project), models)
     with connect(project) as engine:
-        return build_designs(engine, project, chosen, progress=progress)
+        return build_designs(engine, project, chosen, every_file=True, progress=progress)
 
 
 @dataclass(frozen=True)

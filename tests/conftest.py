@@ -108,3 +108,15 @@ def run_featpipe(*args: str, cwd: Path | None = None, env: dict[str, str] | None
         sys.stdout.flush()
         sys.stderr.flush()
         return subprocess.CompletedProcess(["featpipe", *args], status, stdout.getvalue().decode(), stderr.getvalue().decode())
+
+
+def table_row_counts(database: Path | None = None, connection=None) -> dict[str, int]:
+    """Every table of a DuckDB database (a file, opened read-only, or an open connection) with its row
+    count: what a refused command must leave exactly as it was."""
+    import duckdb
+
+    if connection is None:
+        with duckdb.connect(str(database), read_only=True) as opened:
+            return table_row_counts(connection=opened)
+    names = [name for (name,) in connection.execute("SELECT table_name FROM information_schema.tables").fetchall()]
+    return {name: connection.table(name).count("*").fetchall()[0][0] for name in sorted(names)}

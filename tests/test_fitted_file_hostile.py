@@ -18,7 +18,7 @@ from pathlib import Path
 import duckdb
 import pytest
 import yaml
-from conftest import DEMOS, copy_demo
+from conftest import DEMOS, copy_demo, table_row_counts
 from conftest import run_featpipe as run
 
 from featpipe.fitted import read_fitted
@@ -152,17 +152,6 @@ def project(computed: Path, tmp_path: Path) -> Path:
     return Path(shutil.copytree(computed, tmp_path / computed.name))
 
 
-def tables(database: Path) -> dict[str, int]:
-    """Every table of a DuckDB database with its row count."""
-    with duckdb.connect(str(database), read_only=True) as connection:
-        return _row_counts(connection)
-
-
-def _row_counts(connection: duckdb.DuckDBPyConnection) -> dict[str, int]:
-    names = [name for (name,) in connection.execute("SELECT table_name FROM information_schema.tables").fetchall()]
-    return {name: connection.table(name).count("*").fetchall()[0][0] for name in sorted(names)}
-
-
 def run_on_scratch_leases(sql: str, csv: Path) -> dict[str, int]:
     """Run `sql` (all its statements) on a scratch database holding a copy of the leases table;
     its tables and their rows afterwards."""
@@ -170,7 +159,7 @@ def run_on_scratch_leases(sql: str, csv: Path) -> dict[str, int]:
         connection.read_csv(str(csv)).create("leases")
         if sql.strip():
             connection.execute(sql)
-        return _row_counts(connection)
+        return table_row_counts(connection=connection)
 
 
 @pytest.mark.parametrize("command", COMMANDS)
@@ -180,12 +169,12 @@ def test_a_hostile_fitted_file_is_refused_in_one_line(project, case, command):
     fitted = project / SOURCE
     fitted.write_bytes(edit(fitted.read_bytes()))
     database = project / "build" / "lease_default.duckdb"
-    before = tables(database)
+    before = table_row_counts(database)
 
     done = run(*COMMANDS[command], "-p", str(project))
 
     assert (done.returncode, done.stderr) == (1, f"error: {message}\n")
-    assert tables(database) == before
+    assert table_row_counts(database) == before
     assert run_on_scratch_leases(done.stdout, project / "data" / "leases.csv") == {"leases": LEASE_ROWS}
 
 

@@ -11,20 +11,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import duckdb
 import pytest
-from conftest import MODEL_YAML, PROJECT_YAML, copy_demo, write_project
+from conftest import MODEL_YAML, PROJECT_YAML, copy_demo, table_row_counts, write_project
 from conftest import run_featpipe as run
 
 CHECK_SUMMARY = "1 error; nothing was run"  # what `featpipe check` prints under its diagnostics
 TERM_FILE = "terms/hostile.sql"
-
-
-def tables(database: Path) -> dict[str, int]:
-    """Every table of a DuckDB database with its row count."""
-    with duckdb.connect(str(database), read_only=True) as connection:
-        names = [name for (name,) in connection.execute("SELECT table_name FROM information_schema.tables").fetchall()]
-        return {name: connection.execute(f'SELECT COUNT(*) FROM "{name}"').fetchone()[0] for name in names}
 
 
 def refusal(result) -> str:
@@ -125,13 +117,13 @@ def test_hostile_project_files_are_refused_and_change_no_table(tmp_path, files, 
     root = write_project(tmp_path)
     assert run("compute", "-p", str(root)).returncode == 0
     database = root / "build" / "shop.duckdb"
-    before = tables(database)
+    before = table_row_counts(database)
     for relative, text in files.items():
         (root / relative).write_bytes(text.encode("latin-1"))
     result = run("compute", "-p", str(root))
     assert result.returncode == 1
     assert refusal(result) == f"error: {expected}"
-    assert tables(database) == before
+    assert table_row_counts(database) == before
 
 
 @pytest.fixture(scope="module")
@@ -174,13 +166,13 @@ ARGUMENTS = {
 @pytest.mark.parametrize("args, status, expected", ARGUMENTS.values(), ids=ARGUMENTS.keys())
 def test_hostile_arguments_are_refused_and_change_no_table(lease_demo, args, status, expected):
     database = lease_demo / "build" / "lease_default.duckdb"
-    before = tables(database)
+    before = table_row_counts(database)
     result = run(*args, "-p", str(lease_demo))
     assert result.returncode == status
     assert refusal(result) == expected
     if status == 2:  # the usage names the command as users type it, also when featpipe runs inside another program
         assert "\nTry 'featpipe " in result.stderr
-    assert tables(database) == before
+    assert table_row_counts(database) == before
 
 
 def test_a_table_in_a_schema_is_named_by_quoted_identifiers(lease_demo):

@@ -58,7 +58,7 @@ def prepare_inputs(
             check_contract(source, name, engine.describe(name), engine.name)
             check_key(engine, name, source.key, f"{engine.name} table '{name}'")
         elif builds.get(name) != signature:
-            shown = source.load.relative_to(project.root)
+            shown = source.load.relative_to(project.root) if source.load.is_relative_to(project.root) else source.load
             say(progress, f"loading {shown} into {engine.name} table {name}")
             engine.load_file(name, source.load, partial(check_loaded_file, engine, source, str(shown)))
         else:
@@ -81,14 +81,21 @@ def design_signature(project: Project, model: CompiledModel) -> str:
 
 def build_designs(
     engine: Engine, project: Project, models: list[CompiledModel], *, only_stale: bool = False,
-    progress: Progress | None = None,
+    every_file: bool = False, progress: Progress | None = None,
 ) -> list[BuiltTable]:
-    """Build (or, with only_stale, rebuild when changed) each model's design table; a failure keeps the old one."""
+    """Build (or, with only_stale, rebuild when changed) each model's design table; a failure keeps the old one.
+
+    The models' inputs are loaded and checked first; with `every_file`, so is every input with a
+    `load:` file, so a batch no model trains on is in the engine to be scored.
+    """
     recorded = read_builds(engine)
     builds = dict(recorded)
     built = []
+    inputs = {model.spec.input for model in models}
+    if every_file:
+        inputs |= {name for name, source in project.inputs.items() if source.load is not None}
     try:
-        prepare_inputs(engine, project, {model.spec.input for model in models}, builds, progress)
+        prepare_inputs(engine, project, inputs, builds, progress)
         for model in models:
             signature = design_signature(project, model)
             if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):

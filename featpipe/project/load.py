@@ -259,8 +259,8 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
             diagnostics.append(document.at(path + ("key",), f"key '{key}' {scoring_clash(str(key))}; "
                                            "key the input by another column, or by a view that renames this one"))
         load = spec.get("load")
-        if load is not None:
-            load = root / str(load)
+        if load is not None:  # relative to the project; absolute and ~ paths reach shared data elsewhere
+            load = root / Path(str(load)).expanduser()
             if load.suffix.lower() not in (".csv", ".parquet"):
                 diagnostics.append(document.at(path + ("load",), "load must be a .csv or .parquet file"))
             elif load.is_dir():
