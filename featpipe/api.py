@@ -9,6 +9,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -99,30 +100,39 @@ class FitOutcome:
     changed: bool  # the fitted file's bytes changed
 
 
+Fitted = Callable[[FitOutcome], None]
+
+
 def fit_models(engine: Engine, project: Project, compiled: CompiledProject, models: list[CompiledModel],
-               progress: Progress | None = None) -> list[FitOutcome]:
-    """Bring design tables up to date, fit each model and write its fitted file (atomically)."""
+               progress: Progress | None = None, fitted: Fitted | None = None) -> list[FitOutcome]:
+    """Bring design tables up to date, fit each model and write its fitted file (atomically).
+
+    `fitted` hears of each model as soon as its file is written, so a later model's failure does
+    not hide what was already done.
+    """
     build_designs(engine, project, models, only_stale=True, progress=progress)
     outcomes = []
     for model in models:
         say(progress, f"fitting {model.name} ({model.spec.family}, {len(model.terms)} terms)")
-        fitted = fit_model(engine, compiled, model)
         path = project.fitted_path(model.name)
         before = path.read_bytes() if path.is_file() else None
-        fitted = write_fitted(path, fitted)
-        outcomes.append(FitOutcome(model.name, path, fitted, before != path.read_bytes()))
+        written = write_fitted(path, fit_model(engine, compiled, model))
+        outcomes.append(FitOutcome(model.name, path, written, before != path.read_bytes()))
+        if fitted:
+            fitted(outcomes[-1])
     return outcomes
 
 
-def fit(project: Project, models: list[str] | None = None, progress: Progress | None = None) -> list[FitOutcome]:
+def fit(project: Project, models: list[str] | None = None, progress: Progress | None = None,
+        fitted: Fitted | None = None) -> list[FitOutcome]:
     """Fit models in the engine and write fitted/MODEL.yaml; a failed fit leaves the old file in place."""
     compiled = check(project)
     chosen = select_models(compiled, models)
     with connect(project) as engine:
-        return fit_models(engine, project, compiled, chosen, progress)
+        return fit_models(engine, project, compiled, chosen, progress, fitted)
 
 
-def refresh(project: Project, progress: Progress | None = None) -> list[FitOutcome]:
+def refresh(project: Project, progress: Progress | None = None, fitted: Fitted | None = None) -> list[FitOutcome]:
     """Check, then refit every model whose fitted file is missing or stale or whose data file changed,
     and write the reports of the models whose fit changed (or that have none yet)."""
     compiled = check(project)
@@ -134,7 +144,7 @@ def refresh(project: Project, progress: Progress | None = None) -> list[FitOutco
             current = builds.get(model.layout.table) == design_signature(project, model)
             if not path.is_file() or staleness(read_fitted(path), model) or not current:
                 stale.append(model)
-        outcomes = fit_models(engine, project, compiled, stale, progress) if stale else []
+        outcomes = fit_models(engine, project, compiled, stale, progress, fitted) if stale else []
         outdated = [o.model for o in outcomes if o.changed or not report_path(project, o.model).is_file()]
         write_reports(project, outdated, engine=engine, progress=progress)
         return outcomes

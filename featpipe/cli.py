@@ -248,16 +248,23 @@ def fit(models: ModelsArgument = None, project: ProjectOption = None, json_outpu
     from . import api
     from .project import load_project
 
-    _print_outcomes(api.fit(load_project(project), models, progress=None if json_output else _progress), json_output)
-
-
-def _print_outcomes(outcomes: list[FitOutcome], json_output: bool) -> None:
+    outcomes = api.fit(load_project(project), models, **_as_fitted(json_output))
     if json_output:
-        _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed, "fitted": asdict(o.fitted)} for o in outcomes])
-        return
-    for outcome in outcomes:
-        _print_fit_summary(outcome.fitted)
-        out.print(f"wrote {outcome.path}" + ("" if outcome.changed else " (unchanged)"))
+        _print_json_outcomes(outcomes)
+
+
+def _as_fitted(json_output: bool) -> dict:
+    """Progress and each model's table as soon as its file is written; JSON waits for the whole list."""
+    return {} if json_output else {"progress": _progress, "fitted": _print_outcome}
+
+
+def _print_json_outcomes(outcomes: list[FitOutcome]) -> None:
+    _print_json([{"model": o.model, "path": str(o.path), "changed": o.changed, "fitted": asdict(o.fitted)} for o in outcomes])
+
+
+def _print_outcome(outcome: FitOutcome) -> None:
+    _print_fit_summary(outcome.fitted)
+    out.print(f"wrote {outcome.path}" + ("" if outcome.changed else " (unchanged)"))
 
 
 @app.command()
@@ -309,10 +316,11 @@ def refresh(project: ProjectOption = None, json_output: JsonOption = False) -> N
     from . import api
     from .project import load_project
 
-    outcomes = api.refresh(load_project(project), progress=None if json_output else _progress)
-    if not outcomes and not json_output:
+    outcomes = api.refresh(load_project(project), **_as_fitted(json_output))
+    if json_output:
+        _print_json_outcomes(outcomes)
+    elif not outcomes:
         out.print("everything is up to date")
-    _print_outcomes(outcomes, json_output)
 
 
 @app.command()

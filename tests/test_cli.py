@@ -184,3 +184,15 @@ def test_drift_fails_above_the_limit_and_diff_fails_on_stale(tmp_path):
     assert run("diff", "-p", str(root), "--since", "HEAD").returncode == 0
     gated = run("diff", "-p", str(root), "--since", "HEAD", "--fail-on-stale", "--format", "markdown")
     assert gated.returncode == 1 and "km_per_driver" in gated.stdout
+
+
+def test_fit_prints_each_model_as_it_is_written_before_a_later_model_fails(tmp_path):
+    root = copy_demo("lease_default", tmp_path)
+    spec = root / "specs" / "default_risk.yaml"
+    spec.write_text(spec.read_text().replace("max_dropped: 0.03", "max_dropped: 0.0"))
+    result = run("fit", "default_raw", "default_risk", "-p", str(root))
+    assert result.returncode == 1
+    assert "default_raw: binomial (logit link)" in result.stdout
+    assert f"wrote {root / 'fitted' / 'default_raw.yaml'}" in result.stdout
+    assert result.stderr.splitlines()[-1].startswith("error: specs/default_risk.yaml: ")
+    assert "more than max_dropped 0" in result.stderr
