@@ -439,6 +439,8 @@ def main(args: list[str] | None = None) -> None:
         status = app(args=args, prog_name="featpipe", standalone_mode=False)
     except FeatpipeError as error:
         err.print(f"error: {error}", markup=False)
+        if os.environ.get("FEATPIPE_DEBUG"):  # with what the engine's driver said, cause by cause
+            traceback.print_exc()
         sys.exit(1)
     except typer.Exit as done:
         sys.exit(done.exit_code)

@@ -179,6 +179,16 @@ def test_compute_with_the_server_stopped(postgres_project):
     assert not (postgres_project / "build").exists()
 
 
+def test_the_drivers_own_error_is_shown_under_featpipe_debug(postgres_project):
+    """One line by default; with FEATPIPE_DEBUG=1 also the traceback down to psycopg's own exception."""
+    dsn = f"host=127.0.0.1 port={free_port()} user=postgres dbname=postgres"
+    result = run_featpipe("compute", "-p", str(postgres_project), env={"FEATPIPE_TEST_DSN": dsn, "FEATPIPE_DEBUG": "1"})
+    assert result.returncode == 1
+    assert result.stderr.splitlines()[0].startswith("error: postgres: ")
+    assert "psycopg.OperationalError" in result.stderr
+    assert "The above exception was the direct cause of the following exception" in result.stderr
+
+
 def test_compute_with_a_wrong_password(postgres_project, postgres_engine):
     """The test server refuses the password: one line naming the user and what to check; no table in the schema."""
     from psycopg.conninfo import make_conninfo

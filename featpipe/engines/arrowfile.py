@@ -45,7 +45,7 @@ def open_arrow_file(path: Path, engine: str, batch_rows: int = 65_536) -> ArrowF
             raw_schema = reader.schema
             raw = iter(reader)
     except (pa.ArrowException, OSError) as error:
-        raise EngineError(f"{engine}: cannot read {path}: {_first_line(error)}") from None
+        raise EngineError(f"{engine}: cannot read {path}: {_first_line(error)}") from error
     schema = pa.schema([pa.field(f.name, _plain_type(f.type)) for f in raw_schema])
     return ArrowFile(path, schema, _decoded(raw, schema, path, engine))
 
@@ -87,7 +87,7 @@ def _decoded(raw, schema: pa.Schema, path: Path, engine: str) -> Iterator[pa.Rec
                 batch = pa.record_batch(columns, schema=schema)
             yield batch
     except (pa.ArrowException, OSError) as error:
-        raise EngineError(f"{engine}: cannot read {path}: {_first_line(error)}") from None
+        raise EngineError(f"{engine}: cannot read {path}: {_first_line(error)}") from error
 
 
 def _first_line(error: BaseException) -> str:

@@ -36,8 +36,8 @@ class DuckDBEngine:
                 raise EngineError(
                     f"duckdb: the database {self.path} is in use by another process; "
                     "close the other featpipe or DuckDB session and try again"
-                ) from None
-            raise EngineError(f"duckdb: cannot open {self.path}: {error}") from None
+                ) from error
+            raise EngineError(f"duckdb: cannot open {self.path}: {error}") from error
 
     def render(self, statement: exp.Expression) -> str:
         return statement.sql(dialect=self.dialect, identify=True)
@@ -47,7 +47,7 @@ class DuckDBEngine:
             return self.connection.execute(self.render(statement))
         except duckdb.Error as error:
             first_line = str(error).strip().splitlines()[0]
-            raise EngineError(f"duckdb: {first_line}") from None
+            raise EngineError(f"duckdb: {first_line}") from error
 
     def fetch(self, query: exp.Expression) -> list[tuple]:
         return self._run(query).fetchall()
@@ -62,7 +62,7 @@ class DuckDBEngine:
             reader = self.connection.sql(self.render(query)).to_arrow_reader(batch_rows)
         except duckdb.Error as error:
             first_line = str(error).strip().splitlines()[0]
-            raise EngineError(f"duckdb: {first_line}") from None
+            raise EngineError(f"duckdb: {first_line}") from error
         yield from reader
 
     def execute(self, statement: exp.Expression) -> None:
@@ -92,7 +92,7 @@ class DuckDBEngine:
         try:
             self.create_table(name, exp.select(exp.Star()).from_(source), check)
         except EngineError as error:  # DuckDB's CSV errors give the line but not the file
-            raise EngineError(f"duckdb: cannot load {path}: {str(error).removeprefix('duckdb: ')}") from None
+            raise EngineError(f"duckdb: cannot load {path}: {str(error).removeprefix('duckdb: ')}") from error
 
     def describe(self, name: str) -> dict[str, exp.DataType] | None:
         query = (

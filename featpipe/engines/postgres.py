@@ -69,7 +69,7 @@ class PostgresEngine:
         try:
             self.connection = psycopg.connect(self.dsn, autocommit=True)
         except psycopg.Error as error:
-            raise _connection_error(error, self.dsn) from None
+            raise _connection_error(error, self.dsn) from error
 
     def render(self, statement: exp.Expression) -> str:
         return fenced(statement).sql(dialect=self.dialect, identify=True)
@@ -80,7 +80,7 @@ class PostgresEngine:
         try:
             yield
         except psycopg.Error as error:
-            raise _statement_error(error, self.dsn) from None
+            raise _statement_error(error, self.dsn) from error
 
     def _run(self, cursor, statement: exp.Expression) -> None:
         cursor.execute(self.render(statement))

@@ -109,7 +109,7 @@ class SparkEngine:
         try:
             yield
         except (PySparkException, Py4JError) as error:
-            raise _spark_error(error) from None
+            raise _spark_error(error) from error
 
     def _frame(self, statement: exp.Expression):
         return self.session.sql(self.render(statement))
@@ -161,7 +161,7 @@ class SparkEngine:
         try:
             self._build_then_swap(name, build, check)
         except EngineError as error:  # Spark's reader errors do not name the file
-            raise EngineError(f"spark: cannot load {path}: {str(error).removeprefix('spark: ')}") from None
+            raise EngineError(f"spark: cannot load {path}: {str(error).removeprefix('spark: ')}") from error
 
     def _build_then_swap(self, name: str, build: Callable[[str], None], check: Check | None) -> None:
         building = statements.building_name(name)
@@ -242,10 +242,10 @@ def _start_session(config: EngineConfig):
         raise EngineError(
             f"spark: Spark Connect needs more packages ({_first_line(error)}); "
             "install them with pip install 'pyspark[connect]'"
-        ) from None
+        ) from error
     except (PySparkException, Py4JError, OSError) as error:
         hint = "is the server running?" if config.url else "check that Java 17 or newer is installed (JAVA_HOME or java on PATH)"
-        raise EngineError(f"spark: cannot start {where}: {_first_line(error)}; {hint}") from None
+        raise EngineError(f"spark: cannot start {where}: {_first_line(error)}; {hint}") from error
     if not config.url:
         session.sparkContext.setLogLevel("FATAL")  # failures reach the user as EngineErrors, not JVM logs
     return session
@@ -263,7 +263,7 @@ def check_connect_server(url: str) -> None:
         raise EngineError(
             f"spark: no Spark Connect server answers at {address.hostname}:{port} ({error.strerror or error}); "
             "is the server running?"
-        ) from None
+        ) from error
 
 
 def check_metastore_free(metastore: Path) -> None:
