@@ -12,6 +12,7 @@ import pyarrow as pa
 from sqlglot import exp
 
 from ..errors import EngineError
+from ..sqlgen.common import render
 from . import statements
 from .base import Check
 from .datafiles import check_data_file
@@ -40,7 +41,7 @@ class DuckDBEngine:
             raise EngineError(f"duckdb: cannot open {self.path}: {error}") from error
 
     def render(self, statement: exp.Expression) -> str:
-        return statement.sql(dialect=self.dialect, identify=True)
+        return render(statement, self.dialect)
 
     def _run(self, statement: exp.Expression):
         try:

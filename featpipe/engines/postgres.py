@@ -21,6 +21,7 @@ from sqlglot import exp
 
 from ..errors import EngineError
 from ..project import EngineConfig
+from ..sqlgen.common import render
 from . import statements
 from .arrowfile import open_arrow_file, sql_type
 from .base import Check
@@ -72,7 +73,7 @@ class PostgresEngine:
             raise _connection_error(error, self.dsn) from error
 
     def render(self, statement: exp.Expression) -> str:
-        return fenced(statement).sql(dialect=self.dialect, identify=True)
+        return render(statement, self.dialect)
 
     @contextlib.contextmanager
     def _translated(self):
@@ -190,25 +191,6 @@ class PostgresEngine:
 
     def close(self) -> None:
         self.connection.close()
-
-
-def fenced(statement: exp.Expression) -> exp.Expression:
-    """A copy of `statement` with OFFSET 0 on every derived table and WITH query, so each layer is planned apart.
-
-    PostgreSQL pulls a simple subquery (and a WITH query used once) up into the query around it and
-    copies the subquery's expressions into every place its columns are used, without sharing common
-    subexpressions. featpipe's layered queries use each layer's columns many times (the X'WX sums read
-    every working weight p(p+1)/2 times), so flattened they recompute the same expressions again and
-    again: the statistics query of the 11-term demo model took 7.5 s on 3,435 rows flattened (most of
-    it JIT-compiling the copies) and 32 ms fenced. OFFSET 0 stops the pull-up and changes no result.
-    """
-    statement = statement.copy()
-    for node in list(statement.find_all(exp.Subquery, exp.CTE)):
-        derived = isinstance(node, exp.CTE) or isinstance(node.parent, (exp.From, exp.Join))
-        body = node.this
-        if derived and isinstance(body, exp.Select) and not body.args.get("limit") and not body.args.get("offset"):
-            body.offset(0, copy=False)
-    return statement
 
 
 def _float_numeric(cursor) -> None:

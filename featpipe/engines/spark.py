@@ -24,10 +24,9 @@ from pathlib import Path
 import pandas as pd
 import pyarrow as pa
 from sqlglot import exp
-from sqlglot.dialects.spark import Spark
-from sqlglot.generators.spark import SparkGenerator
 
 from ..errors import EngineError
+from ..sqlgen.common import render
 from ..project import EngineConfig
 from . import statements
 from .base import Check
@@ -51,18 +50,6 @@ try:  # the spark extra is optional; the error says how to install it
 except ImportError:  # pragma: no cover - depends on the installation
     SparkSession = None
 
-
-class ExactSpark(Spark):
-    """Spark SQL in which PERCENTILE_CONT stays exact.
-
-    sqlglot renders PERCENTILE_CONT(q) WITHIN GROUP (ORDER BY x) for Spark as PERCENTILE_APPROX(x, q),
-    which is neither exact nor interpolated (Spark 4 gives 1.0 for the 0.25 quantile of 1, 2, 4, 10,
-    where PERCENTILE_CONT gives 1.75), so report ranges differed from the other engines. Spark runs
-    the standard WITHIN GROUP form itself (since 3.3), exactly.
-    """
-
-    class Generator(SparkGenerator):
-        TRANSFORMS = {node: render for node, render in SparkGenerator.TRANSFORMS.items() if node is not exp.WithinGroup}
 
 try:  # PySpark 4 logs every failed query with its JVM stack trace; the EngineError already says it
     from pyspark.logger import PySparkLogger
@@ -101,7 +88,7 @@ class SparkEngine:
             self.session.catalog.currentDatabase()  # opens the metastore now, so a locked one fails here
 
     def render(self, statement: exp.Expression) -> str:
-        return statement.sql(dialect=ExactSpark, identify=True)
+        return render(statement, self.dialect)
 
     @contextlib.contextmanager
     def _translated(self):
