@@ -178,7 +178,7 @@ def _unique_names(terms: list[RawTerm], columns_by_input, diagnostics) -> list[R
         if clash:
             diagnostics.append(Diagnostic(term.file, term.line, term.col, f"term name '{term.name}' {clash}; choose another name"))
             continue
-        if term.name in columns_by_input.get(term.input, {}):
+        if term.name.lower() in {column.lower() for column in columns_by_input.get(term.input, {})}:
             diagnostics.append(Diagnostic(term.file, term.line, term.col,
                 f"term name '{term.name}' is already a column of input '{term.input}'; choose another name"))
             continue
@@ -263,7 +263,8 @@ def _closure(name: str, uses: dict[str, set[str]]) -> set[str]:
 
 def column_term(project: Project, input_name: str, column: str) -> Term:
     """An input column listed directly as a model term."""
-    tree = canonical_tree(exp.column(column))
+    reference = exp.column(exp.to_identifier(column, quoted=True))  # as declared, whatever its case
+    tree = canonical_tree(reference)
     sql = canonical_sql(tree)
     declared = exp.DataType.build(project.inputs[input_name].columns[column], dialect=TERM_DIALECT)
     line, col = (project.document.key_positions.get(("inputs", input_name, "columns", column), (1, 1))
@@ -272,7 +273,7 @@ def column_term(project: Project, input_name: str, column: str) -> Term:
         name=column, input=input_name, file=PROJECT_FILE, line=line, col=col, doc="",
         kind="boolean" if declared.is_type(exp.DataType.Type.BOOLEAN) else "numeric",
         sql=sql, fingerprint=fingerprint_of_sql(sql), uses=(), built_from=(), columns=(column,),
-        expression=exp.column(column), inlined=tree,
+        expression=reference, inlined=tree,
     )
 
 

@@ -23,6 +23,10 @@ from sqlglot import exp
 from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
 
 CANONICAL_DIALECT = "duckdb"
+# Unquoted names are lower-cased and quoted ones kept as written (PostgreSQL's rule; DuckDB's own would
+# lower-case quoted names too): the resolver writes every column as its quoted declared name, so a
+# column declared `GNPDEFL` stays "GNPDEFL" for the engines where case matters.
+NAME_CASE_DIALECT = "postgres"
 
 # Binding strength of operators, weakest first; nodes absent here (columns, literals, functions,
 # CASE) are delimited and never need parentheses.
@@ -51,7 +55,7 @@ def _precedence(node: exp.Expression) -> int | None:
 
 def canonical_tree(expression: exp.Expression) -> exp.Expression:
     """A copy with identifiers normalized, comments dropped and exactly the parentheses the tree needs."""
-    tree = normalize_identifiers(expression.copy(), dialect=CANONICAL_DIALECT)
+    tree = normalize_identifiers(expression.copy(), dialect=NAME_CASE_DIALECT)
     for node in reversed(list(tree.walk())):
         node.comments = None
         if isinstance(node, exp.Literal) and node.is_number:

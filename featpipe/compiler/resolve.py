@@ -1,7 +1,11 @@
 """Resolve every name a term uses to an input column or another term of the same input.
 
-A column qualified by the term's own input (`leases.p` in a file reading FROM leases) is that input's
-column: the qualifier is dropped, so later passes see one spelling. Any other qualifier is refused.
+A name matches a declared column whatever its case (`gnpdefl`, `Gnpdefl` and `"GNPDEFL"` all read the
+column declared `GNPDEFL`): term files are DuckDB SQL, where identifiers are case-insensitive, quoted or
+not. A column qualified by the term's own input
+(`leases.p` in a file reading FROM leases) is that input's column; any other qualifier is refused.
+Every resolved column is rewritten as the quoted declared name, so later passes and the generated SQL
+see one spelling.
 
 Example:
     >>> import sqlglot
@@ -28,7 +32,8 @@ def resolve_names(
 ) -> tuple[list[RawTerm], dict[str, set[str]], dict[str, list[Diagnostic]]]:
     """The terms with their own input's qualifier dropped; for each term, the other terms it uses
     directly, and its problems (unknown names get a "did you mean")."""
-    terms = [replace(term, expression=_without_own_qualifier(term)) for term in terms]
+    terms = [replace(term, expression=_with_declared_columns(term, columns_by_input.get(term.input, {})))
+             for term in terms]
     by_name = {term.name: term for term in terms}
     uses: dict[str, set[str]] = {}
     problems: dict[str, list[Diagnostic]] = {}
@@ -60,10 +65,19 @@ def resolve_names(
     return terms, uses, {name: found for name, found in problems.items() if found}
 
 
-def _without_own_qualifier(term: RawTerm) -> exp.Expression:
-    """A copy of the expression in which `input.column` reads `column` (positions kept for messages)."""
+def _with_declared_columns(term: RawTerm, columns: dict[str, str]) -> exp.Expression:
+    """A copy of the expression in which each column reference (unqualified or qualified by the term's
+    own input) is the quoted declared name; other names are left for the checks (positions kept)."""
+    by_lower_case = {name.lower(): name for name in columns}
     tree = term.expression.copy()
     for reference in tree.find_all(exp.Column):
-        if reference.table == term.input:
-            reference.set("table", None)
+        if reference.table not in ("", term.input):
+            continue
+        written = reference.this
+        declared = by_lower_case.get(written.name.lower())
+        if declared is not None:
+            identifier = exp.to_identifier(declared, quoted=True)
+            identifier.meta.update(written.meta)
+            reference.set("this", identifier)
+        reference.set("table", None)
     return tree

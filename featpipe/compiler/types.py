@@ -26,6 +26,11 @@ TEXT_FUNCTIONS = (exp.Length, exp.Lower, exp.Upper, exp.Trim)  # engines have th
 TERM_TABLE = "term_input"
 
 
+def _shown(node: exp.Expression) -> str:
+    """How a message names an operand: a column by its name as declared, anything else as SQL."""
+    return node.name if isinstance(node, exp.Column) else node.sql(dialect=TERM_DIALECT)
+
+
 def _is_text(data_type: exp.DataType | None) -> bool:
     return data_type is not None and data_type.is_type(*exp.DataType.TEXT_TYPES)
 
@@ -48,13 +53,13 @@ def term_type(expression: exp.Expression, schema: dict[str, str]) -> tuple[str |
             for operand in node.iter_expressions():
                 if _is_text(operand.type):
                     original = _original(expression, operand)
-                    label = original.sql(dialect=TERM_DIALECT)
+                    label = _shown(original)
                     problems.append((original,
                                      f"arithmetic on text: '{label}' is {operand.type.sql()}; "
                                      "compare it to a value (e.g. CASE WHEN x = 'a' THEN 1 ELSE 0 END) or CAST it"))
         if isinstance(node, TEXT_FUNCTIONS) and _is_number(node.this.type):
             original = _original(expression, node.this)
-            label = (original if isinstance(original, exp.Column) else node.this).sql(dialect=TERM_DIALECT)
+            label = _shown(original if isinstance(original, exp.Column) else node.this)
             message = f"{node.sql_name()} takes text, but '{label}' is {node.this.type.sql()}; use the number itself, or CAST it to VARCHAR"
             problems.append((original, message))
     if problems:
