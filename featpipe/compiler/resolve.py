@@ -13,7 +13,7 @@ Example:
     >>> ratio = RawTerm("ratio", "leases", "t.sql", 1, 1, "", sqlglot.parse_one("leases.p / r"))
     >>> terms, uses, problems = resolve_names([ratio], {"leases": {"p": "DOUBLE", "r": "DOUBLE"}}, {"t.sql": "p / r"})
     >>> terms[0].expression.sql(), uses, problems
-    ('p / r', {'ratio': set()}, {})
+    ('"p" / "r"', {'ratio': set()}, {})
 """
 
 from __future__ import annotations
