@@ -35,7 +35,7 @@ from ..compiler.allowlist import check_allowed
 from ..compiler.canonical import canonical_sql, fingerprint_of_sql
 from ..compiler.types import term_type
 from ..errors import FeatpipeError
-from ..project.load import EXPECTATIONS, LINKS, _valid_type
+from ..project.load import EXPECTATIONS, LINKS, is_sql_type
 from ..project.names import INTERCEPT, NAME_PATTERN, NAME_RULE
 from ..sqlgen.score import FITTED_DIALECT
 
@@ -105,7 +105,7 @@ TEXT = _scalar("must be text", lambda value: isinstance(value, str))
 FLAG = _scalar("must be true or false", lambda value: isinstance(value, bool))
 FINGERPRINT = _scalar(f"must be {FINGERPRINT_LENGTH} lowercase hexadecimal digits",
                       lambda value: isinstance(value, str) and re.fullmatch(f"[0-9a-f]{{{FINGERPRINT_LENGTH}}}", value) is not None)
-SQL_TYPE = _scalar("must be a SQL type such as DOUBLE or VARCHAR", lambda value: isinstance(value, str) and _valid_type(value))
+SQL_TYPE = _scalar("must be a SQL type such as DOUBLE or VARCHAR", lambda value: isinstance(value, str) and is_sql_type(value))
 
 
 def one_of(*allowed) -> Kind:

@@ -244,7 +244,7 @@ def _inputs(document, data, root: Path, diagnostics) -> dict[str, InputSpec]:
                 diagnostics.append(document.at(path + ("columns", column), f"column name {column!r} {NAME_RULE}", key=True))
         columns = {str(column): str(kind) for column, kind in columns.items()}
         for column, kind in columns.items():
-            if not _valid_type(kind):
+            if not is_sql_type(kind):
                 diagnostics.append(document.at(path + ("columns", column), f"{kind!r} is not a SQL type (for example BIGINT, DOUBLE, VARCHAR, BOOLEAN)"))
         key = spec.get("key")
         if not key:
@@ -279,7 +279,7 @@ def _is_name(value) -> bool:
 TYPE_FORM = re.compile(r"[A-Za-z][A-Za-z0-9_]*(?: [A-Za-z][A-Za-z0-9_]*)*(?: ?\( *[0-9]+ *(?:, *[0-9]+ *)?\))?")
 
 
-def _valid_type(kind: str) -> bool:
+def is_sql_type(kind: str) -> bool:
     """A plain SQL type DuckDB knows; anything more (`VARCHAR); DROP ...`) is refused, not half-parsed."""
     if not TYPE_FORM.fullmatch(kind):
         return False
