@@ -79,7 +79,7 @@ def check(
 
     loaded = None
     try:
-        loaded = load_project(project)
+        loaded = load_project(project, partial=True)
         report = api.check_report(loaded)
     except FeatpipeError as error:
         if not error.diagnostics:

@@ -196,3 +196,20 @@ def test_fit_prints_each_model_as_it_is_written_before_a_later_model_fails(tmp_p
     assert f"wrote {root / 'fitted' / 'default_raw.yaml'}" in result.stdout
     assert result.stderr.splitlines()[-1].startswith("error: specs/default_risk.yaml: ")
     assert "more than max_dropped 0" in result.stderr
+
+
+def test_check_reports_a_specs_own_errors_and_the_compilers_in_one_run(tmp_path):
+    """An unknown key in a spec does not hide the term file's errors or the spec's unknown term."""
+    root = write_project(tmp_path / "shop", {
+        "specs/returns.yaml": "input: orders\ntarget: returned\nfamily: binomial\ntreshold: 0.3\nterms: [item_prise]\n",
+        "terms/extra.sql": "SELECT amount + region AS odd FROM orders",
+    })
+    result = run("check", "-p", str(root))
+    assert result.returncode == 1
+    assert result.stderr.splitlines() == [
+        "specs/returns.yaml:4:1: unknown key 'treshold'; did you mean 'threshold'?",
+        "specs/returns.yaml:5:9: unknown term 'item_prise'; did you mean 'item_price'?",
+        "terms/extra.sql:1:17: arithmetic on text: 'region' is TEXT; compare it to a value "
+        "(e.g. CASE WHEN x = 'a' THEN 1 ELSE 0 END) or CAST it",
+        "3 errors; nothing was run",
+    ]

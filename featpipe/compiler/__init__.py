@@ -120,8 +120,9 @@ class CompiledProject:
 
 
 def compile_project(project: Project) -> CompiledProject:
-    """Run every pass; raise FeatpipeError with all problems of the project at once."""
-    diagnostics: list[Diagnostic] = []
+    """Run every pass; raise FeatpipeError with all problems of the project at once (those found while
+    loading it included)."""
+    diagnostics: list[Diagnostic] = list(project.problems)
     texts = {source.display: source.text for source in project.term_files}
     columns_by_input = {name: spec.columns for name, spec in project.inputs.items()}
     raw_terms = _parse_files(project, diagnostics)

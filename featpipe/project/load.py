@@ -102,6 +102,7 @@ class Project:
     term_files: tuple[TermFile, ...]
     models: dict[str, ModelSpec]
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
+    problems: tuple[Diagnostic, ...] = ()  # errors in specs or term files, kept for `check` (see load_project)
 
     @property
     def build_dir(self) -> Path:
@@ -124,8 +125,13 @@ def find_project_root(start: Path | None = None) -> Path:
     )
 
 
-def load_project(path: Path | str | None = None) -> Project:
-    """Read a project folder (or the nearest one above `path`); all problems are raised at once."""
+def load_project(path: Path | str | None = None, *, partial: bool = False) -> Project:
+    """Read a project folder (or the nearest one above `path`); all problems are raised at once.
+
+    With `partial` (for `check`), errors in specs and term files are kept in `problems` instead, with
+    the specs that could be read, so the compiler reports its own errors of the same run beside them
+    and raises them all; errors in featpipe.yaml are raised at once either way.
+    """
     root = find_project_root(Path(path) if path is not None else None)
     diagnostics: list[Diagnostic] = []
     document = read_yaml(root / PROJECT_FILE, PROJECT_FILE)
@@ -153,8 +159,10 @@ def load_project(path: Path | str | None = None) -> Project:
             continue
         if model is not None:
             models[model.name] = model
-    raise_if_errors(diagnostics)
-    return Project(root, name, engine, inputs, tuple(term_files), models, document)
+    errors = [d for d in diagnostics if d.severity == "error"]
+    if not partial or any(d.file == PROJECT_FILE for d in errors):
+        raise_if_errors(diagnostics)
+    return Project(root, name, engine, inputs, tuple(term_files), models, document, tuple(errors))
 
 
 def _mapping(document: YamlDocument, path: tuple, diagnostics: list[Diagnostic]) -> dict:
