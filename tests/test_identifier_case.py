@@ -88,3 +88,12 @@ def test_a_term_may_not_take_a_columns_name_in_any_case(tmp_path, written, messa
     with pytest.raises(FeatpipeError) as caught:
         api.check(load_project(root))
     assert [str(d) for d in caught.value.diagnostics] == [message]
+
+
+def test_an_offset_reads_upper_case_columns_too(tmp_path):
+    root = longley_project(tmp_path / "longley")
+    spec = root / "specs" / "employment.yaml"
+    spec.write_text(SPEC.replace("terms: [deflator, gnp_total, unemployed, armed_forces, POP, YEAR]",
+                                 "terms: [deflator, gnp_total]\noffset: LN(pop)"))
+    model = api.check(load_project(root)).models["employment"]
+    assert model.offset_sql == 'LN("POP")'

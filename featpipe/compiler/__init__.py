@@ -42,7 +42,7 @@ from .inline import (
 from .layout import DesignLayout
 from .leakage import target_paths
 from .parse import TERM_DIALECT, RawTerm, nesting_depth, node_position, parse_term_file
-from .resolve import resolve_names
+from .resolve import resolve_names, with_declared_columns
 from .types import term_type
 
 
@@ -349,7 +349,7 @@ def _compile_offset(spec: ModelSpec, columns: dict[str, str], diagnostics) -> ex
     except (ParseError, TokenError) as failure:
         diagnostics.append(Diagnostic(spec.display, line, col, f"offset is not a SQL expression: {str(failure).splitlines()[0]}"))
         return None
-    tree = normalize_identifiers(tree, dialect=TERM_DIALECT)
+    tree = with_declared_columns(normalize_identifiers(tree, dialect=TERM_DIALECT), spec.input, columns)
     problems = [Diagnostic(spec.display, line, col, f"offset: {d.message}") for d in check_allowed(tree, spec.display)]
     for reference in tree.find_all(exp.Column):
         if reference.name not in columns:

@@ -32,7 +32,7 @@ def resolve_names(
 ) -> tuple[list[RawTerm], dict[str, set[str]], dict[str, list[Diagnostic]]]:
     """The terms with their own input's qualifier dropped; for each term, the other terms it uses
     directly, and its problems (unknown names get a "did you mean")."""
-    terms = [replace(term, expression=_with_declared_columns(term, columns_by_input.get(term.input, {})))
+    terms = [replace(term, expression=with_declared_columns(term.expression, term.input, columns_by_input.get(term.input, {})))
              for term in terms]
     by_name = {term.name: term for term in terms}
     uses: dict[str, set[str]] = {}
@@ -65,13 +65,14 @@ def resolve_names(
     return terms, uses, {name: found for name, found in problems.items() if found}
 
 
-def _with_declared_columns(term: RawTerm, columns: dict[str, str]) -> exp.Expression:
-    """A copy of the expression in which each column reference (unqualified or qualified by the term's
-    own input) is the quoted declared name; other names are left for the checks (positions kept)."""
+def with_declared_columns(expression: exp.Expression, input_name: str, columns: dict[str, str]) -> exp.Expression:
+    """A copy of `expression` in which each column reference (unqualified or qualified by its own input)
+    is the quoted declared name; other names are left for the checks (positions kept). The spec's
+    offset goes through it too."""
     by_lower_case = {name.lower(): name for name in columns}
-    tree = term.expression.copy()
+    tree = expression.copy()
     for reference in tree.find_all(exp.Column):
-        if reference.table not in ("", term.input):
+        if reference.table not in ("", input_name):
             continue
         written = reference.this
         declared = by_lower_case.get(written.name.lower())
