@@ -32,7 +32,8 @@ READER = "{} reads outside the row (files, settings or the environment): a term 
 AGGREGATE = "{} is an aggregate: aggregates summarize many rows; a term is computed from one row. Compute it upstream as an input column"
 FUNCTIONS = ("ABS, CEIL, COALESCE, EXP, FLOOR, GREATEST, LEAST, LENGTH, LN, LOG(base, x), LOG10, LOWER, NULLIF, "
              "POWER, ROUND, SIGN, SQRT, TRIM, UPPER")
-UNKNOWN = "{} is not on featpipe's list of portable deterministic functions; use " + FUNCTIONS + ", CASE or CAST"
+UNKNOWN = ("{} is not on featpipe's list of portable deterministic functions; use " + FUNCTIONS
+           + ", the date functions DATE_DIFF('day', start, end), YEAR, MONTH, DAY, ISODOW, CASE or CAST")
 OTHER = ("{} is not allowed in a term: featpipe accepts only portable deterministic scalar SQL (columns, literals, "
          "arithmetic, comparisons, AND/OR/NOT, IS NULL, BETWEEN, IN (...), CASE, CAST and the functions " + FUNCTIONS + ")")
 
@@ -75,7 +76,8 @@ REJECTED = [
     ("trunc(x)", ["4:3: " + UNKNOWN.format("TRUNC")]),
     ("FOO(RANDOM())", ["4:3: " + UNKNOWN.format("FOO"), "4:7: " + RANDOM.format("RANDOM()")]),
     ("CAST(x AS DATE)",
-     ["4:8: CAST to DATE is not allowed in a term: cast to DOUBLE, TINYINT, SMALLINT, INTEGER, BIGINT, DECIMAL(p, s), BOOLEAN or VARCHAR"]),
+     ["4:8: CAST to DATE is allowed only for a literal, DATE 'YYYY-MM-DD' (engines read other text as dates differently); "
+      "declare a date column as DATE in featpipe.yaml"]),
     ("CAST(x AS REAL)", ["4:8: CAST to REAL is a 4-byte float in DuckDB and PostgreSQL but 8 bytes in SQLite; write CAST(x AS DOUBLE)"]),
     ("x IN (1, y)", ["4:3: IN takes a list of literal values here, e.g. x IN (1, 2, 3); compare with other columns using = and OR"]),
     ("x IS TRUE", ["4:3: x IS TRUE is not allowed: IS is allowed only as IS NULL or IS NOT NULL; for x IS TRUE write COALESCE(x, FALSE)"]),

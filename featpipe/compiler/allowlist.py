@@ -23,6 +23,7 @@ import math
 from sqlglot import exp
 
 from ..errors import Diagnostic
+from .dates import DATE_FUNCTIONS, LISTED, date_problem, is_date_literal, literal_problem
 
 # Nodes allowed as they are; their children are checked in turn.
 _ALLOWED = (
@@ -31,7 +32,7 @@ _ALLOWED = (
     exp.EQ, exp.NEQ, exp.GT, exp.GTE, exp.LT, exp.LTE, exp.And, exp.Or, exp.Not, exp.Between,
     exp.Case, exp.If, exp.Coalesce, exp.Nullif,
     exp.Abs, exp.Sign, exp.Ln, exp.Exp, exp.Sqrt, exp.Pow, exp.Least, exp.Greatest, exp.Floor, exp.Ceil,
-    exp.Lower, exp.Upper, exp.Trim, exp.Length,
+    exp.Lower, exp.Upper, exp.Trim, exp.Length, *DATE_FUNCTIONS,
 )
 _FUNCTIONS = ("ABS, CEIL, COALESCE, EXP, FLOOR, GREATEST, LEAST, LENGTH, LN, LOG(base, x), LOG10, LOWER, NULLIF, "
               "POWER, ROUND, SIGN, SQRT, TRIM, UPPER")
@@ -84,7 +85,8 @@ CLOCK = "{name} depends on when it runs: training and scoring would differ; stor
 READER = "{name} reads outside the row (files, settings or the environment): a term may use only the columns of its own row"
 ONE_ARGUMENT_LOG = "LOG(x) with one argument is ambiguous: log10 in DuckDB/PostgreSQL, natural log in Spark; write LN(x) or LOG10(x)"
 INTEGER_DIVISION = "// is integer division only in DuckDB; write a / b, or FLOOR(a / b) for a whole number"
-UNKNOWN_FUNCTION = "{name} is not on featpipe's list of portable deterministic functions; use " + _FUNCTIONS + ", CASE or CAST"
+UNKNOWN_FUNCTION = ("{name} is not on featpipe's list of portable deterministic functions; use " + _FUNCTIONS
+                    + ", the date functions " + LISTED + ", CASE or CAST")
 CAST = "CAST to {name} is not allowed in a term: cast to DOUBLE, TINYINT, SMALLINT, INTEGER, BIGINT, DECIMAL(p, s), BOOLEAN or VARCHAR"
 FOUR_BYTE_CAST = "CAST to {name} is a 4-byte float in DuckDB and PostgreSQL but 8 bytes in SQLite; write CAST(x AS DOUBLE)"
 IN_LIST = "IN takes a list of literal values here, e.g. x IN (1, 2, 3); compare with other columns using = and OR"
@@ -145,6 +147,8 @@ def _problem(node: exp.Expression) -> tuple[str | None, list[exp.Expression]]:
         return STAR, []
     if isinstance(node, exp.Literal) and node.is_number:
         return _number_problem(node), children
+    if isinstance(node, (*DATE_FUNCTIONS, exp.Extract, exp.DayOfWeek)):  # the unit or part is a keyword, not a value
+        return date_problem(node), [child for child in children if not isinstance(child, exp.Var)]
     if isinstance(node, _ALLOWED):
         if isinstance(node, (exp.Floor, exp.Ceil)) and (node.args.get("decimals") or node.args.get("to")):
             return OTHER.format(name=_show(node)), children
@@ -167,7 +171,7 @@ def _problem(node: exp.Expression) -> tuple[str | None, list[exp.Expression]]:
     # Arguments of a rejected scalar function or of // are ordinary expressions worth checking too;
     # inside anything else rejected (a subquery, an aggregate, a window, a statement) they are not.
     passes_on = isinstance(node, (exp.Func, exp.IntDiv)) and not isinstance(node, (exp.AggFunc, exp.Window, exp.Exists))
-    return _rejected(node), (children if passes_on else [])
+    return _rejected(node), ([child for child in children if not isinstance(child, exp.Var)] if passes_on else [])
 
 
 def _rejected(node: exp.Expression) -> str:
@@ -211,6 +215,8 @@ def _cast_problem(node: exp.Cast) -> str | None:
     target = node.to
     if any(node.args.get(key) for key in ("format", "default", "action")):
         return OTHER.format(name=_show(node))
+    if target.is_type(exp.DataType.Type.DATE) and isinstance(node, exp.Cast):
+        return None if is_date_literal(node) else literal_problem(node)
     if target.is_type(*_FOUR_BYTE_FLOATS):
         return FOUR_BYTE_CAST.format(name=target.sql(dialect="duckdb"))
     portable = (
