@@ -25,6 +25,7 @@ from sqlglot.dialects.sqlite import SQLite
 from featpipe.engines import statements
 from featpipe.engines.arrowfile import open_arrow_file, sql_type
 from featpipe.engines.base import Check
+from featpipe.sqlgen.dates import for_dialect
 from featpipe.errors import EngineError
 
 MATH_FUNCTIONS = ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
@@ -70,7 +71,7 @@ class SQLiteEngine:
         return tuple(name for name in MATH_FUNCTIONS if name not in present)
 
     def render(self, statement: exp.Expression) -> str:
-        return statement.sql(dialect=BacktickSQLite, identify=True)
+        return for_dialect(statement, "sqlite").sql(dialect=BacktickSQLite, identify=True)
 
     def _run(self, statement: exp.Expression, parameters=()) -> sqlite3.Cursor:
         try:

@@ -9,6 +9,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..errors import FeatpipeError
+from .dates import for_dialect
 from .dialects import DIALECTS
 
 
@@ -38,7 +39,8 @@ def alias(expression: exp.Expression, name: str) -> exp.Alias:
 def render(statement: exp.Expression, dialect: str, pretty: bool = True) -> str:
     """`statement` as featpipe's engines run it and `featpipe sql` prints it for `dialect`: one renderer
     for both, so an exported query is exactly what the adapter ran (PostgreSQL's planner fences and
-    Spark's exact percentiles included)."""
+    Spark's exact percentiles included); date parts are written as each engine computes them."""
+    statement = for_dialect(statement, dialect)
     if dialect == "postgres":
         statement = fenced(statement)
     return statement.sql(dialect=_exact_spark() if dialect == "spark" else dialect, identify=True, pretty=pretty)

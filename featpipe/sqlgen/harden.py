@@ -49,6 +49,7 @@ from collections.abc import Mapping
 
 from sqlglot import exp
 
+from ..compiler.dates import DATE_FUNCTIONS, as_part_function
 from .common import double, number
 
 NUMBER, TRUTH, VALUE = "number", "truth", "value"  # how the parent uses a node's value
@@ -140,6 +141,9 @@ class _Hardening:
         if isinstance(node, (exp.Lower, exp.Upper, exp.Trim, exp.Length)):
             text = self.rebuild(node, VALUE)
             return double(text) if context == NUMBER else text
+        if isinstance(node, (*DATE_FUNCTIONS, exp.Extract)):  # a whole number; sqlgen/dates.py renders it per engine
+            whole = self.rebuild(as_part_function(node), VALUE)
+            return double(whole) if context == NUMBER else whole
         return node.copy()
 
     def number(self, node: exp.Expression) -> exp.Expression:
@@ -259,6 +263,8 @@ class _Hardening:
 
     def cast(self, node: exp.Cast, context: str) -> exp.Expression:
         target, operand = node.to, node.this
+        if target.is_type(exp.DataType.Type.DATE):  # DATE 'YYYY-MM-DD', the only date cast a term may hold
+            return node.copy()
         if target.is_type(*exp.DataType.TEXT_TYPES):
             text = self.to_text(node)
             return double(text) if context == NUMBER else text
