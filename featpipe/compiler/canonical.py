@@ -1,5 +1,6 @@
 """Canonical SQL and fingerprints: formatting, comments, case, quoting, redundant parentheses and
-the spelling of a number do not change them; any change of meaning does.
+the spelling of a number or of a date part (EXTRACT(YEAR FROM d) is YEAR(d)) do not change them; any
+change of meaning does.
 
 Numbers are written by value (`0.30` as 0.3, `1e3` and `1000.0` as 1000): every number in generated
 SQL is cast to DOUBLE before arithmetic (sqlgen/harden.py), so the spelling never changes a result.
@@ -21,6 +22,8 @@ from decimal import Decimal
 
 from sqlglot import exp
 from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
+
+from .dates import as_part_function
 
 CANONICAL_DIALECT = "duckdb"
 # Unquoted names are lower-cased and quoted ones kept as written (PostgreSQL's rule; DuckDB's own would
@@ -58,6 +61,10 @@ def canonical_tree(expression: exp.Expression) -> exp.Expression:
     tree = normalize_identifiers(expression.copy(), dialect=NAME_CASE_DIALECT)
     for node in reversed(list(tree.walk())):
         node.comments = None
+        if isinstance(node, exp.Extract):  # EXTRACT(YEAR FROM d) is YEAR(d)
+            spelled = as_part_function(node)
+            tree = spelled if node is tree else tree
+            node.replace(spelled)
         if isinstance(node, exp.Literal) and node.is_number:
             node.set("this", _by_value(node.this))
         if isinstance(node, exp.Paren) and node is not tree:
