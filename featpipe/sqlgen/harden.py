@@ -27,6 +27,8 @@ raise an error, it gives NULL (EXP saturates instead):
   both are NULL out of the type's range; the result is a whole-number DOUBLE;
 - CAST to BOOLEAN of a number becomes `x <> 0` (PostgreSQL cannot cast DOUBLE to BOOLEAN);
 - a boolean used as a number becomes `CASE WHEN c THEN 1.0 WHEN NOT c THEN 0.0 END` (NULL stays NULL);
+- DATE_DIFF('day', a, b) and the date parts are whole numbers (EXTRACT(YEAR FROM d) becomes YEAR(d));
+  sqlgen/dates.py writes them per engine when rendering; a DATE 'YYYY-MM-DD' literal is kept as it is;
 - IF becomes CASE. Identifiers and their quoting are kept as given.
 
 Not covered: overflow beyond +-1.8e308 in +, -, *, / and POWER (DuckDB gives inf, PostgreSQL raises),
