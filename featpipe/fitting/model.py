@@ -85,9 +85,9 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         link=glm.link,
         offset=model.offset_sql,
         weights=spec.weights,
-        holdout={"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
+        holdout=spec.holdout.record(),
         threshold=spec.threshold,
-        penalty={"l2": spec.penalty.l2, "l1": spec.penalty.l1},
+        penalty=spec.penalty.record(),
         columns=_read_columns(compiled, model),
         rows=rows,
         fit={
