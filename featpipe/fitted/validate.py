@@ -199,6 +199,12 @@ METRICS = record({}, {
     "rmse": OPTIONAL_NUMBER, "mean_observed": OPTIONAL_NUMBER, "mean_predicted": OPTIONAL_NUMBER,
     "calibration": listing(CALIBRATION),
 })
+CROSSVAL = record(
+    {"folds": COUNT, "salt": TEXT, "passes": COUNT,
+     "per_fold": listing(record({"fold": COUNT, "train": COUNT, "converged": FLAG, "metrics": METRICS})),
+     "mean": mapping(NAME, NUMBER), "sd": mapping(NAME, NUMBER)},
+    {"l2": record({"grid": listing(NUMBER), "deviance": listing(NUMBER), "chosen": NUMBER})},
+)
 # compiler.fit_dependencies as written; files fitted before a dependency was recorded lack it.
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "offset": optional(TEXT), "weights": optional(NAME),
@@ -212,7 +218,7 @@ FITTED = record(
      "link": one_of(*LINKS.values()), "offset": optional(TEXT), "weights": optional(NAME), "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
-    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "warnings": listing(TEXT), "format": FORMAT},
+    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "warnings": listing(TEXT), "format": FORMAT},
 )
 
 
