@@ -1,0 +1,203 @@
+"""Splits and evaluation: the out-of-time holdout, `featpipe evaluate` on labelled tables, k-fold
+cross-validation and `penalty: {l2: cv}`.
+
+References outside the project: the rows held out are recomputed from the CSV file with Python's csv
+and datetime; the folds with Python's hashlib (MD5, RFC 1321); every metric with scikit-learn on the
+same rows; the fold refits "the slow way" with statsmodels' GLM (IRLS) and scikit-learn's
+LogisticRegression, one fit per fold on the rows outside it. Data are invented (seeded numpy).
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime
+import hashlib
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+import yaml
+from conftest import run_featpipe, write_project
+from sklearn.linear_model import LogisticRegression
+from sklearn.metrics import brier_score_loss, log_loss, roc_auc_score
+
+from featpipe import api
+from featpipe.fitted import read_fitted
+from featpipe.fitted.evaluations import read_evaluation
+from featpipe.fitted.report import write_report
+from featpipe.fitting.crossval import L2_GRID
+from featpipe.project import load_project
+
+COLUMNS = "{loan_id: BIGINT, signed_on: DATE, month_index: BIGINT, income: DOUBLE, debt: DOUBLE, region: VARCHAR, defaulted: BIGINT}"
+PROJECT = f"""\
+name: loans
+engine: {{kind: duckdb, path: build/loans.duckdb}}
+inputs:
+  loans:
+    key: loan_id
+    load: data/loans.csv
+    columns: {COLUMNS}
+  loans_2026:
+    key: loan_id
+    load: data/loans_2026.csv
+    columns: {COLUMNS}
+"""
+TERMS = "SELECT debt / NULLIF(income, 0) AS debt_ratio, income / 1000 AS income_k FROM loans\n"
+SPEC = """\
+input: loans
+target: defaulted
+family: binomial
+terms: [debt_ratio, income_k]
+"""
+OUT_OF_TIME = SPEC + "holdout: {column: signed_on, from: 2025-10-01}\n"
+TOLERANCE = 1e-8
+
+
+def loans_csv(seed: int, rows: int, first_key: int, start: datetime.date, days: int) -> str:
+    """Invented loans: default more likely with a larger debt-to-income ratio."""
+    rng = np.random.default_rng(seed)
+    lines = ["loan_id,signed_on,month_index,income,debt,region,defaulted"]
+    for index in range(rows):
+        signed = start + datetime.timedelta(days=int(rng.integers(0, days)))
+        income = round(float(rng.lognormal(8, 0.4)), 2)
+        debt = round(float(rng.uniform(0, 5000)), 2)
+        chance = 1 / (1 + math.exp(-(-1 + 1.5 * debt / income - 0.1 * income / 1000)))
+        lines.append(f"{first_key + index},{signed},{signed.month},{income},{debt},{'ns'[index % 2]},{int(rng.random() < chance)}")
+    return "\n".join(lines) + "\n"
+
+
+def loans_project(root: Path, spec: str = OUT_OF_TIME) -> Path:
+    return write_project(root, {
+        "featpipe.yaml": PROJECT, "terms/basket.sql": None, "specs/returns.yaml": None, "data/orders.csv": None,
+        "data/loans.csv": loans_csv(7, 600, 1000, datetime.date(2025, 1, 1), 365),
+        "data/loans_2026.csv": loans_csv(8, 300, 5000, datetime.date(2026, 1, 1), 120),
+        "terms/loans.sql": TERMS, "specs/risk.yaml": spec,
+    })
+
+
+def csv_rows(path: Path) -> list[dict]:
+    with path.open(newline="") as rows:
+        return list(csv.DictReader(rows))
+
+
+def features(rows: list[dict]) -> tuple[np.ndarray, np.ndarray]:
+    """The model's terms computed in Python from the CSV rows, and the target."""
+    x = np.array([[float(r["debt"]) / float(r["income"]), float(r["income"]) / 1000] for r in rows])
+    return x, np.array([float(r["defaulted"]) for r in rows])
+
+
+def predicted(fitted_file: Path, x: np.ndarray) -> np.ndarray:
+    coefficients = read_fitted(fitted_file).coefficients
+    eta = coefficients["(intercept)"] + x @ np.array([coefficients["debt_ratio"], coefficients["income_k"]])
+    return 1 / (1 + np.exp(-eta))
+
+
+# --- out-of-time holdout ---------------------------------------------------------------------------------
+
+
+def test_out_of_time_holdout_holds_out_the_rows_on_or_after_the_date(tmp_path):
+    root = loans_project(tmp_path / "loans")
+    api.fit(load_project(root))
+    fitted = read_fitted(root / "fitted/risk.yaml")
+    rows = csv_rows(root / "data/loans.csv")
+    # Python's datetime on the CSV file: rows signed on or after 2025-10-01 are held out.
+    late = [r for r in rows if datetime.date.fromisoformat(r["signed_on"]) >= datetime.date(2025, 10, 1)]
+    assert (fitted.rows["train"], fitted.rows["holdout"]) == (len(rows) - len(late), len(late))
+    assert fitted.holdout == {"column": "signed_on", "from": "2025-10-01", "salt": "v1"}
+    x, y = features(late)
+    # scikit-learn's AUC on the same held-out rows, scored with the fitted coefficients
+    assert fitted.metrics["auc"] == pytest.approx(roc_auc_score(y, predicted(root / "fitted/risk.yaml", x)), abs=1e-10)
+
+
+def test_out_of_time_holdout_by_a_number_column(tmp_path):
+    root = loans_project(tmp_path / "loans", SPEC + "holdout: {column: month_index, from: 10}\n")
+    api.fit(load_project(root))
+    late = [r for r in csv_rows(root / "data/loans.csv") if int(r["month_index"]) >= 10]
+    assert read_fitted(root / "fitted/risk.yaml").rows["holdout"] == len(late)
+
+
+@pytest.mark.parametrize("holdout, message", [
+    ("{column: signed_at, from: 2025-10-01}", "specs/risk.yaml:5:19: holdout column 'signed_at' is not a column of input 'loans'; did you mean 'signed_on'?"),
+    ("{column: region, from: 2025-10-01}", "specs/risk.yaml:5:19: holdout column 'region' is VARCHAR; an out-of-time holdout needs a date, timestamp or numeric column"),
+    ("{column: signed_on, from: 10}", "specs/risk.yaml:5:36: holdout from must be a date like 2025-07-01 for the DATE column 'signed_on', not 10"),
+    ("{column: month_index, from: 2025-10-01}", "specs/risk.yaml:5:38: holdout from must be a number for the BIGINT column 'month_index', not datetime.date(2025, 10, 1)"),
+    ("{column: signed_on, from: 2025-10-01, fraction: 0.3}", "specs/risk.yaml:5:48: holdout takes either fraction (a random share of rows) or column and from (out of time), not both; remove one"),
+])
+def test_check_refuses_a_wrong_out_of_time_holdout(tmp_path, holdout, message):
+    root = loans_project(tmp_path / "loans", SPEC + f"holdout: {holdout}\n")
+    result = run_featpipe("check", "-p", str(root))
+    assert result.returncode == 1, result.stdout
+    assert message in result.stderr
+    assert "Traceback" not in result.stderr
+
+
+def test_changing_the_out_of_time_boundary_makes_the_fit_stale(tmp_path):
+    root = loans_project(tmp_path / "loans")
+    api.fit(load_project(root))
+    (root / "specs/risk.yaml").write_text(OUT_OF_TIME.replace("2025-10-01", "2025-11-01"))
+    result = run_featpipe("check", "-p", str(root))
+    assert "fitted/risk.yaml is stale: holdout from changed from 2025-10-01 to 2025-11-01" in result.stdout + result.stderr
+
+
+# --- featpipe evaluate -------------------------------------------------------------------------------------
+
+
+def test_evaluate_measures_a_labelled_table_whole_and_by_month(tmp_path):
+    root = loans_project(tmp_path / "loans")
+    api.fit(load_project(root))
+    result = run_featpipe("evaluate", "risk", "--table", "loans_2026", "--by", "month_of(signed_on)", "-p", str(root))
+    assert result.returncode == 0, result.stderr
+    path = root / "fitted/risk.evaluations/loans_2026.yaml"
+    evaluation = read_evaluation(path)
+    rows = csv_rows(root / "data/loans_2026.csv")
+    # scikit-learn on the same rows, scored in Python with the fitted coefficients
+    batches = {"all": rows}
+    for r in sorted(rows, key=lambda r: r["signed_on"]):
+        batches.setdefault(r["signed_on"][:7], []).append(r)
+    measured = {"all": evaluation.metrics} | {item["period"]: item["metrics"] for item in evaluation.periods}
+    assert list(measured) == list(batches)
+    for label, batch in batches.items():
+        x, y = features(batch)
+        p = predicted(root / "fitted/risk.yaml", x)
+        metrics = measured[label]
+        assert metrics["rows"] == len(batch) and metrics["events"] == int(y.sum())
+        assert metrics["auc"] == pytest.approx(roc_auc_score(y, p), abs=1e-10)
+        assert metrics["log_loss"] == pytest.approx(log_loss(y, p), abs=1e-10)
+        assert metrics["brier"] == pytest.approx(brier_score_loss(y, p), abs=1e-10)
+    assert "2026-03" in result.stdout and "observed / predicted" in result.stdout
+
+
+def test_evaluation_file_is_deterministic_and_validated_when_read(tmp_path):
+    root = loans_project(tmp_path / "loans")
+    api.fit(load_project(root))
+    path = root / "fitted/risk.evaluations/loans_2026.yaml"
+    api.evaluate(load_project(root), "risk", "loans_2026", "month_index")
+    first = path.read_bytes()
+    api.evaluate(load_project(root), "risk", "loans_2026", "month_index")
+    assert path.read_bytes() == first
+    data = yaml.safe_load(first)
+    assert [item["period"] for item in data["periods"]] == ["1", "2", "3", "4"]
+    data["periods"][1]["metrics"]["auc"] = "high"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    with pytest.raises(api.FeatpipeError, match=r"risk.evaluations/loans_2026.yaml: periods\[1\].metrics.auc must be a finite number"):
+        read_evaluation(path)
+
+
+def test_evaluate_refuses_a_stale_fit_and_tables_it_cannot_measure(tmp_path):
+    root = loans_project(tmp_path / "loans")
+    api.fit(load_project(root))
+    refused = run_featpipe("evaluate", "risk", "--table", "new_loans", "-p", str(root))
+    assert refused.returncode == 1 and "--table new_loans: not an input of featpipe.yaml" in refused.stderr
+    refused = run_featpipe("evaluate", "risk", "--table", "loans_2026", "--by", "month_of(income)", "-p", str(root))
+    assert refused.returncode == 1 and "month_of needs a date or timestamp column, and 'income' is DOUBLE" in refused.stderr
+    unlabelled = COLUMNS.replace(", defaulted: BIGINT", "").join(PROJECT.rsplit(COLUMNS, 1))  # loans_2026 without the target
+    (root / "featpipe.yaml").write_text(unlabelled)
+    refused = run_featpipe("evaluate", "risk", "--table", "loans_2026", "-p", str(root))
+    assert refused.returncode == 1 and "input 'loans_2026' cannot be evaluated with model 'risk': 'defaulted' is missing" in refused.stderr
+    (root / "featpipe.yaml").write_text(PROJECT)
+    (root / "terms/loans.sql").write_text(TERMS.replace("income / 1000", "income / 100"))
+    refused = run_featpipe("evaluate", "risk", "--table", "loans_2026", "-p", str(root))
+    assert refused.returncode == 1 and "fitted/risk.yaml is stale: term 'income_k' changed meaning" in refused.stderr
+    assert not (root / "fitted/risk.evaluations").exists()
