@@ -201,3 +201,87 @@ def test_evaluate_refuses_a_stale_fit_and_tables_it_cannot_measure(tmp_path):
     refused = run_featpipe("evaluate", "risk", "--table", "loans_2026", "-p", str(root))
     assert refused.returncode == 1 and "fitted/risk.yaml is stale: term 'income_k' changed meaning" in refused.stderr
     assert not (root / "fitted/risk.evaluations").exists()
+
+
+# --- k-fold cross-validation ---------------------------------------------------------------------------------
+
+FOLDED = SPEC + "folds: 5\n"
+
+
+def md5_digits(text: str) -> str:
+    return hashlib.md5(text.encode()).hexdigest()[:8]
+
+
+def training_folds(root: Path, folds: int, fraction: float = 0.3) -> tuple[list[dict], np.ndarray]:
+    """The training rows (hash split, fraction 0.3, salt v1) and each one's fold, recomputed with hashlib:
+    held out when the first 8 hex digits of MD5('v1:' key) fall below fraction * 16^8; fold f when the
+    digits of MD5('v1:folds:' key) fall in the f-th of `folds` equal ranges."""
+    rows = [r for r in csv_rows(root / "data/loans.csv") if int(md5_digits(f"v1:{r['loan_id']}"), 16) >= round(fraction * 16**8)]
+    fold = np.array([sum(int(md5_digits(f"v1:folds:{r['loan_id']}"), 16) >= round(i / folds * 16**8) for i in range(1, folds))
+                     for r in rows])
+    return rows, fold
+
+
+def test_cross_validation_gives_the_metrics_of_fold_refits_done_the_slow_way(tmp_path):
+    root = loans_project(tmp_path / "loans", FOLDED)
+    api.fit(load_project(root))
+    crossval = read_fitted(root / "fitted/risk.yaml").crossval
+    rows, fold = training_folds(root, 5)
+    x, y = features(rows)
+    expected = []
+    for index in range(5):
+        inside, outside = fold == index, fold != index
+        # statsmodels' GLM (IRLS) fitted on the other folds' rows, measured with scikit-learn on this fold's
+        refit = sm.GLM(y[outside], sm.add_constant(x[outside]), family=sm.families.Binomial()).fit(tol=1e-12)
+        p = refit.predict(sm.add_constant(x[inside]))
+        measured = crossval["per_fold"][index]
+        assert (measured["fold"], measured["train"], measured["metrics"]["rows"]) == (index + 1, int(outside.sum()), int(inside.sum()))
+        figures = {"auc": roc_auc_score(y[inside], p), "log_loss": log_loss(y[inside], p), "brier": brier_score_loss(y[inside], p)}
+        for name, value in figures.items():
+            assert measured["metrics"][name] == pytest.approx(value, abs=TOLERANCE), (index, name)
+        expected.append(figures)
+    for name in ("auc", "log_loss", "brier"):  # numpy: mean and sample sd over the folds
+        values = np.array([figures[name] for figures in expected])
+        assert crossval["mean"][name] == pytest.approx(values.mean(), abs=TOLERANCE)
+        assert crossval["sd"][name] == pytest.approx(values.std(ddof=1), abs=TOLERANCE)
+    assert crossval["passes"] < 5 * 5  # all folds fitted together: fewer passes than five separate fits take
+    result = run_featpipe("check", "-p", str(root))
+    assert result.returncode == 0 and "stale" not in result.stdout
+    (root / "specs/risk.yaml").write_text(SPEC + "folds: 4\n")
+    result = run_featpipe("check", "-p", str(root))
+    assert "fitted/risk.yaml is stale: folds changed from 5 to 4" in result.stdout
+
+
+def test_penalty_l2_cv_picks_the_strength_with_the_smallest_cross_validated_deviance(tmp_path):
+    root = loans_project(tmp_path / "loans", SPEC + "folds: 3\npenalty: {l2: cv}\n")
+    api.fit(load_project(root))
+    fitted = read_fitted(root / "fitted/risk.yaml")
+    choice = fitted.crossval["l2"]
+    rows, fold = training_folds(root, 3)
+    x, y = features(rows)
+    standardized = (x - x.mean(axis=0)) / x.std(axis=0)  # by the training rows' mean and population sd
+    deviances = []
+    for l2 in L2_GRID:
+        total = 0.0
+        for index in range(3):
+            inside, outside = fold == index, fold != index
+            # scikit-learn minimizes C * sum of log losses + |b|^2 / 2: the same minimum as
+            # deviance / (2 N) + l2 / 2 |b|^2 when C = 1 / (l2 N), N the rows it is fitted on
+            model = LogisticRegression(C=1 / (l2 * outside.sum()), tol=1e-12, max_iter=100_000)
+            model.fit(standardized[outside], y[outside])
+            total += 2 * log_loss(y[inside], model.predict_proba(standardized[inside])[:, 1], normalize=False)
+        deviances.append(total)
+    assert choice["grid"] == list(L2_GRID)
+    assert choice["deviance"] == pytest.approx(deviances, rel=1e-6)
+    assert choice["chosen"] == L2_GRID[int(np.argmin(deviances))]
+    assert fitted.penalty == {"l2": "cv", "l1": 0.0} and fitted.fit["penalized"]
+
+
+@pytest.mark.parametrize("settings, message", [
+    ("folds: 1\n", "specs/risk.yaml:5:8: folds must be a whole number from 2 to 20 (or 0 for none), not 1"),
+    ("folds: 0\npenalty: {l2: cv}\n", "specs/risk.yaml:5:8: penalty l2: cv chooses the strength by cross-validation; set folds to 2 or more"),
+])
+def test_check_refuses_folds_it_cannot_use(tmp_path, settings, message):
+    root = loans_project(tmp_path / "loans", SPEC + settings)
+    result = run_featpipe("check", "-p", str(root))
+    assert result.returncode == 1 and message in result.stderr

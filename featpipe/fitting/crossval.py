@@ -22,6 +22,7 @@ import numpy as np
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
 from ..errors import FeatpipeError
+from ..fitted import as_written
 from ..glm.families import get_family
 from ..glm.folds import FoldSource, fit_folds
 from ..glm.penalty import ScaledPenalty
@@ -32,7 +33,9 @@ from ..sqlgen.crossval import fold_flag, fold_number, fold_sizes_query, fold_tab
 from ..sqlgen.statistics import profile_query, read_profile
 from .metrics import holdout_metrics
 
-L2_GRID = tuple(10.0 ** (exponent / 2) for exponent in range(2, -9, -1))  # 10 down to 1e-4, half decades (common practice)
+# 10 down to 1e-4 in half decades (common practice), at the fitted file's precision so the strength
+# written is the strength used.
+L2_GRID = tuple(as_written(10.0 ** (exponent / 2)) for exponent in range(2, -9, -1))
 
 
 def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> tuple[Penalty, dict | None]:
