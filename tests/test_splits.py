@@ -285,3 +285,20 @@ def test_check_refuses_folds_it_cannot_use(tmp_path, settings, message):
     root = loans_project(tmp_path / "loans", SPEC + settings)
     result = run_featpipe("check", "-p", str(root))
     assert result.returncode == 1 and message in result.stderr
+
+
+def test_the_report_shows_the_split_the_folds_and_the_evaluations_beside_the_holdout(tmp_path):
+    root = loans_project(tmp_path / "loans", OUT_OF_TIME + "folds: 3\n")
+    project = load_project(root)
+    api.fit(project)
+    api.evaluate(project, "risk", "loans_2026", "month_of(signed_on)")
+    page = write_report(project, "risk").read_text()
+    fitted = read_fitted(root / "fitted/risk.yaml")
+    evaluation = read_evaluation(root / "fitted/risk.evaluations/loans_2026.yaml")
+    assert "<td>held out (out of time)</td><td class=\"num\">signed_on on or after 2025-10-01</td>" in page
+    table = page[page.index('<table id="validation">'):]
+    table = table[: table.index("</table>")]
+    for label, metrics in [("holdout", fitted.metrics), ("cross-validation fold 3 of 3", fitted.crossval["per_fold"][2]["metrics"]),
+                           ("table loans_2026", evaluation.metrics),
+                           ("table loans_2026, month_of(signed_on) 2026-02", evaluation.periods[1]["metrics"])]:
+        assert f"<tr><td>{label}</td><td class=\"num\">{metrics['rows']}</td><td class=\"num\">{metrics['auc']:.4f}</td>" in table
