@@ -235,6 +235,11 @@ def _print_fit_summary(fitted: FittedModel) -> None:
     if holdout.get("rows"):
         shown = {k: v for k, v in holdout.items() if isinstance(v, (int, float)) and not isinstance(v, bool)}
         out.print("holdout: " + ", ".join(f"{k} {_number(v)}" for k, v in shown.items()))
+    crossval = fitted.crossval
+    if crossval:
+        spread = ", ".join(f"{k} {_number(v)} ± {_number(crossval['sd'][k], 2)}" for k, v in crossval["mean"].items())
+        chosen = f"; l2 {crossval['l2']['chosen']:g} chosen on a grid" if "l2" in crossval else ""
+        out.print(f"cross-validation ({crossval['folds']} folds, mean ± sd): {spread}{chosen}")
     for warning in fitted.warnings:
         out.print(f"[yellow]warning:[/yellow] {warning}")
 

@@ -302,3 +302,57 @@ def test_the_report_shows_the_split_the_folds_and_the_evaluations_beside_the_hol
                            ("table loans_2026", evaluation.metrics),
                            ("table loans_2026, month_of(signed_on) 2026-02", evaluation.periods[1]["metrics"])]:
         assert f"<tr><td>{label}</td><td class=\"num\">{metrics['rows']}</td><td class=\"num\">{metrics['auc']:.4f}</td>" in table
+
+
+# --- the same on PostgreSQL and Spark -------------------------------------------------------------------------
+
+
+def engine_block(kind: str, request) -> str:
+    """The project's engine block for `kind`, on a schema or database of its own (the fixtures start the engines)."""
+    if kind == "postgres":
+        import psycopg
+        from psycopg.conninfo import make_conninfo
+
+        dsn = request.getfixturevalue("postgres_dsn")
+        with psycopg.connect(dsn, autocommit=True) as admin:
+            admin.execute("DROP SCHEMA IF EXISTS featpipe_splits CASCADE")
+            admin.execute("CREATE SCHEMA featpipe_splits")
+        request.getfixturevalue("monkeypatch").setenv("FEATPIPE_TEST_DSN", make_conninfo(dsn, options="-c search_path=featpipe_splits"))
+        return "{kind: postgres, dsn: '${FEATPIPE_TEST_DSN}'}"
+    request.getfixturevalue("spark_session")
+    return "{kind: spark, path: build/spark, database: featpipe_splits}"
+
+
+@pytest.mark.parametrize("kind", ["postgres", pytest.param("spark", marks=pytest.mark.spark)])
+def test_splits_folds_and_evaluations_are_the_same_on_every_engine(tmp_path, request, kind):
+    spec = OUT_OF_TIME + "folds: 3\n"
+    reference = loans_project(tmp_path / "duckdb", spec)
+    api.fit(load_project(reference))
+    api.evaluate(load_project(reference), "risk", "loans_2026", "month_of(signed_on)")
+    root = loans_project(tmp_path / kind, spec)
+    (root / "featpipe.yaml").write_text(PROJECT.replace("{kind: duckdb, path: build/loans.duckdb}", engine_block(kind, request)))
+    api.fit(load_project(root))
+    api.evaluate(load_project(root), "risk", "loans_2026", "month_of(signed_on)")
+    # DuckDB's run, which the tests above check against scikit-learn and statsmodels, is the reference.
+    for relative in ("fitted/risk.yaml", "fitted/risk.evaluations/loans_2026.yaml"):
+        mine, theirs = yaml.safe_load((root / relative).read_text()), yaml.safe_load((reference / relative).read_text())
+        if relative == "fitted/risk.yaml":
+            mine, theirs = mine["crossval"] | {"rows": mine["rows"]}, theirs["crossval"] | {"rows": theirs["rows"]}
+        else:
+            mine.pop("fitted"), theirs.pop("fitted")
+        assert_close(mine, theirs, relative)
+
+
+def assert_close(mine, theirs, where: str) -> None:
+    if isinstance(mine, dict):
+        assert list(mine) == list(theirs), where
+        for key in mine:
+            assert_close(mine[key], theirs[key], f"{where}.{key}")
+    elif isinstance(mine, list):
+        assert len(mine) == len(theirs), where
+        for index, (a, b) in enumerate(zip(mine, theirs)):
+            assert_close(a, b, f"{where}[{index}]")
+    elif isinstance(mine, float):
+        assert mine == pytest.approx(theirs, rel=TOLERANCE, abs=1e-12), where
+    else:
+        assert mine == theirs, where
