@@ -25,6 +25,8 @@ from .engines.compute import (
     say,
 )
 from .errors import Diagnostic, FeatpipeError
+from .fitted.evaluations import Evaluation
+from .fitting.evaluate import evaluate as evaluate_table
 from .fitting.model import fit_model
 from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
 from .fitted.report import report_path, write_reports
@@ -32,7 +34,7 @@ from .project import Project, load_project
 from .sqlgen.common import DIALECTS, check_dialect, render
 from .sqlgen.design import design_query, terms_query
 
-__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "compute", "fit", "refresh", "render_sql"]
+__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "compute", "fit", "refresh", "render_sql", "evaluate"]
 
 
 def check(project: Project) -> CompiledProject:
@@ -148,6 +150,13 @@ def refresh(project: Project, progress: Progress | None = None, fitted: Fitted |
         outdated = [o.model for o in outcomes if o.changed or not report_path(project, o.model).is_file()]
         write_reports(project, outdated, engine=engine, progress=progress)
         return outcomes
+
+
+def evaluate(project: Project, model: str, table: str, by: str | None = None,
+             progress: Progress | None = None) -> tuple[Evaluation, Path]:
+    """Measure a fitted model on a labelled table (per period with `by`: a column or month_of(column))
+    and write fitted/MODEL.evaluations/TABLE.yaml; refuses a stale fit."""
+    return evaluate_table(project, model, table, by, progress)
 
 
 def render_sql(project: Project, model: str, part: str = "design", dialect: str = "duckdb", table: str | None = None) -> str:

@@ -235,6 +235,11 @@ def _print_fit_summary(fitted: FittedModel) -> None:
     if holdout.get("rows"):
         shown = {k: v for k, v in holdout.items() if isinstance(v, (int, float)) and not isinstance(v, bool)}
         out.print("holdout: " + ", ".join(f"{k} {_number(v)}" for k, v in shown.items()))
+    crossval = fitted.crossval
+    if crossval:
+        spread = ", ".join(f"{k} {_number(v)} ± {_number(crossval['sd'][k], 2)}" for k, v in crossval["mean"].items())
+        chosen = f"; l2 {crossval['l2']['chosen']:g} chosen on a grid" if "l2" in crossval else ""
+        out.print(f"cross-validation ({crossval['folds']} folds, mean ± sd): {spread}{chosen}")
     for warning in fitted.warnings:
         out.print(f"[yellow]warning:[/yellow] {warning}")
 
@@ -394,6 +399,44 @@ def drift_table(report) -> Table:
             f"{share(row.null_share)} ({share(row.training_null_share)})", share(row.below_min_share), share(row.above_max_share),
             end_section=row.rank == len(report.terms),
         )
+    return table
+
+
+@app.command()
+def evaluate(
+    model: Annotated[str, typer.Argument(help="Model name (fitted/NAME.yaml).")],
+    table: Annotated[str, typer.Option("--table", "-t", help="A labelled table: an input of featpipe.yaml with the target column.")],
+    by: Annotated[Optional[str], typer.Option("--by", help="Batch by a column's values or by month_of(COLUMN): one row per period.")] = None,
+    project: ProjectOption = None,
+    json_output: JsonOption = False,
+) -> None:
+    """Measure a fitted model on a labelled table with the holdout metrics; write fitted/MODEL.evaluations/TABLE.yaml."""
+    from . import api
+    from .project import load_project
+
+    evaluation, path = api.evaluate(load_project(project), model, table, by, progress=None if json_output else _progress)
+    if json_output:
+        _print_json({"path": str(path), "evaluation": asdict(evaluation)})
+        return
+    out.print(evaluation_table(evaluation))
+    out.print(f"wrote {path}")
+
+
+def evaluation_table(evaluation) -> Table:
+    """One line for the whole table, then one per period: the stability table."""
+    from rich.table import Table
+
+    from .fitted.evaluations import stability_row
+
+    table = Table(title=f"{evaluation.model} on {evaluation.table}, {evaluation.table_rows} rows"
+                  + (f", by {evaluation.by}" if evaluation.by else ""))
+    for heading in ("period", "rows", "AUC", "mean observed", "mean predicted", "observed / predicted"):
+        table.add_column(heading, justify="left" if heading == "period" else "right")
+    batches = [("all", evaluation.metrics)] + [(item["period"], item["metrics"]) for item in evaluation.periods]
+    for index, (label, metrics) in enumerate(batches):
+        row = stability_row(metrics)
+        table.add_row(label, str(row["rows"]), _number(row["auc"]), _number(row["mean_observed"]),
+                      _number(row["mean_predicted"]), _number(row["observed_to_predicted"], 3), end_section=index == 0)
     return table
 
 

@@ -100,8 +100,9 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         "family": spec.family,
         "offset": offset_sql,
         "weights": spec.weights,
-        "holdout": {"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
-        "penalty": {"l2": spec.penalty.l2, "l1": spec.penalty.l1},
+        "holdout": spec.holdout.record(),
+        "penalty": spec.penalty.record(),
+        **({"folds": spec.folds} if spec.folds else {}),  # only when set, so fits without folds keep their fingerprint
         "threshold": spec.threshold,
         "max_dropped": spec.max_dropped,
         "expect": dict(sorted(spec.expect.items())),

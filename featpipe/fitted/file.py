@@ -75,6 +75,7 @@ class FittedModel:
     terms: tuple[FittedTerm, ...]  # the intercept first
     linear_predictor: Profile | None = None
     metrics: dict = field(default_factory=dict)
+    crossval: dict = field(default_factory=dict)  # k-fold cross-validation (featpipe.fitting.crossval); empty without folds
     warnings: tuple[str, ...] = ()
     depends_on: dict = field(default_factory=dict)  # compiler.fit_dependencies at the fit, to name what changed since
     format: int = FORMAT_VERSION
@@ -96,7 +97,10 @@ class FittedModel:
 
 
 def to_yaml(fitted: FittedModel) -> str:
-    return yaml.safe_dump(_plain(asdict(fitted)), sort_keys=False, allow_unicode=True, width=100)
+    data = asdict(fitted)
+    if not data["crossval"]:
+        del data["crossval"]  # a fit without folds writes the file it always did
+    return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 
 SIGNIFICANT_DIGITS = 12

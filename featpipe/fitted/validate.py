@@ -21,6 +21,7 @@ Each refusal is one line naming the file and the key path, e.g.
 
 from __future__ import annotations
 
+import datetime
 import math
 import re
 from collections.abc import Callable
@@ -35,7 +36,7 @@ from ..compiler.allowlist import check_allowed
 from ..compiler.canonical import canonical_sql, fingerprint_of_sql
 from ..compiler.types import term_type
 from ..errors import FeatpipeError
-from ..project.load import EXPECTATIONS, LINKS, is_sql_type
+from ..project.load import CROSS_VALIDATED, EXPECTATIONS, LINKS, is_sql_type
 from ..project.names import INTERCEPT, NAME_PATTERN, NAME_RULE
 from ..sqlgen.score import FITTED_DIALECT
 
@@ -91,6 +92,13 @@ def _is_finite(value) -> bool:
     try:
         return _is_number(value) and math.isfinite(value)
     except OverflowError:
+        return False
+
+
+def _is_iso_date(value) -> bool:
+    try:
+        return isinstance(value, str) and datetime.date.fromisoformat(value).isoformat() == value
+    except ValueError:
         return False
 
 
@@ -160,8 +168,11 @@ def record(required: dict[str, Kind], optional_keys: dict[str, Kind] | None = No
 
 OPTIONAL_NUMBER = optional(NUMBER)
 FAMILY = one_of(*LINKS)
-HOLDOUT = record({"fraction": NUMBER, "salt": TEXT})
-PENALTY = record({"l2": NUMBER, "l1": NUMBER})
+HOLDOUT = record({"salt": TEXT}, {"fraction": NUMBER, "column": NAME,
+                                   "from": _scalar("must be a date like 2025-07-01 or a finite number",
+                                                   lambda value: _is_iso_date(value) or _is_finite(value))})
+PENALTY = record({"l2": _scalar("must be a finite number or cv", lambda value: _is_finite(value) or value == CROSS_VALIDATED),
+                  "l1": NUMBER})
 PROFILE = record({
     "count": COUNT, "nulls": COUNT, "mean": OPTIONAL_NUMBER, "sd": OPTIONAL_NUMBER, "min": OPTIONAL_NUMBER,
     "max": OPTIONAL_NUMBER, "median": OPTIONAL_NUMBER, "edges": listing(NUMBER), "shares": listing(NUMBER),
@@ -188,10 +199,16 @@ METRICS = record({}, {
     "rmse": OPTIONAL_NUMBER, "mean_observed": OPTIONAL_NUMBER, "mean_predicted": OPTIONAL_NUMBER,
     "calibration": listing(CALIBRATION),
 })
+CROSSVAL = record(
+    {"folds": COUNT, "salt": TEXT, "passes": COUNT,
+     "per_fold": listing(record({"fold": COUNT, "train": COUNT, "converged": FLAG, "metrics": METRICS})),
+     "mean": mapping(NAME, NUMBER), "sd": mapping(NAME, NUMBER)},
+    {"l2": record({"grid": listing(NUMBER), "deviance": listing(NUMBER), "chosen": NUMBER})},
+)
 # compiler.fit_dependencies as written; files fitted before a dependency was recorded lack it.
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "offset": optional(TEXT), "weights": optional(NAME),
-    "holdout": HOLDOUT, "penalty": PENALTY, "threshold": NUMBER, "max_dropped": NUMBER,
+    "holdout": HOLDOUT, "penalty": PENALTY, "folds": COUNT, "threshold": NUMBER, "max_dropped": NUMBER,
     "expect": mapping(NAME, one_of(*EXPECTATIONS)), "step": mapping(NAME, NUMBER), "notes": mapping(NAME, TEXT),
 })
 FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads
@@ -201,7 +218,7 @@ FITTED = record(
      "link": one_of(*LINKS.values()), "offset": optional(TEXT), "weights": optional(NAME), "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
-    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "warnings": listing(TEXT), "format": FORMAT},
+    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "warnings": listing(TEXT), "format": FORMAT},
 )
 
 

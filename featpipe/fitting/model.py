@@ -20,6 +20,7 @@ from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
+from .crossval import chosen_penalty, cross_validation
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -61,7 +62,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
-    glm = Glm(spec.family, spec.penalty).fit(engine, layout)
+    penalty, l2_choice = chosen_penalty(engine, layout, spec)
+    glm = Glm(spec.family, penalty).fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
@@ -85,9 +87,9 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         link=glm.link,
         offset=model.offset_sql,
         weights=spec.weights,
-        holdout={"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
+        holdout=spec.holdout.record(),
         threshold=spec.threshold,
-        penalty={"l2": spec.penalty.l2, "l1": spec.penalty.l1},
+        penalty=spec.penalty.record(),
         columns=_read_columns(compiled, model),
         rows=rows,
         fit={
@@ -105,6 +107,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
+        crossval=cross_validation(engine, layout, spec, penalty, l2_choice) if spec.folds else {},
         warnings=tuple(glm.warnings),
         depends_on=model.dependencies,
     )

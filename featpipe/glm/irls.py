@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -82,15 +82,18 @@ def run_irls(
     """Fit every start to convergence (or `max_iter` passes); one result per start, in order.
 
     `first` holds the statistics of the starts when a pass already computed them. Raises
-    `AliasedTerms` when a fit's X'WX is singular at its start and `allow_aliasing` is off.
+    `AliasedTerms` when a fit's X'WX is singular at its start and `allow_aliasing` is off. Each
+    request of a fit is its start with the current coefficients, so a start of a Request subclass
+    (a cross-validation fold's) keeps telling the source whose fit it is.
     """
     fits = [_Fit(start.terms, np.asarray(start.beta, dtype=float)) for start in starts]
     penalties = {id(fit): penalty.for_terms(fit.terms) for fit in fits}
+    origins = {id(fit): start for fit, start in zip(fits, starts, strict=True)}
     while active := [fit for fit in fits if not fit.done]:
         if first is not None:
             evaluated, first = first, None
         else:
-            evaluated = source.evaluate([Request(fit.terms, fit.beta) for fit in active])
+            evaluated = source.evaluate([replace(origins[id(fit)], beta=fit.beta) for fit in active])
         for fit, statistics in zip(active, evaluated, strict=True):
             fit.iterations += 1
             _advance(fit, statistics, penalties[id(fit)], total_weight, tol, allow_aliasing)

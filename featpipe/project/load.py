@@ -6,6 +6,7 @@ file and the line. SQL inside the files is only carried along: the compiler pars
 
 from __future__ import annotations
 
+import datetime
 import difflib
 import os
 import re
@@ -51,20 +52,51 @@ class TermFile:
     text: str
 
 
+CROSS_VALIDATED = "cv"  # `penalty: {l2: cv}`: the l2 strength is chosen by cross-validated deviance
+DEFAULT_FOLDS = 5  # folds for `l2: cv` when the spec sets none (common practice)
+
+
 @dataclass(frozen=True)
 class Penalty:
     l2: float = 0.0
     l1: float = 0.0
+    cross_validated: bool = False  # l2 is chosen at fit time on a grid (l2 itself is then 0 here)
 
     @property
     def active(self) -> bool:
-        return self.l1 > 0 or self.l2 > 0
+        return self.l1 > 0 or self.l2 > 0 or self.cross_validated
+
+    def record(self) -> dict:
+        """The penalty as the spec states it, for the fit's dependencies and the fitted file."""
+        return {"l2": CROSS_VALIDATED if self.cross_validated else self.l2, "l1": self.l1}
 
 
 @dataclass(frozen=True)
 class Holdout:
+    """The rows a fit holds out: a share `fraction` chosen by a salted hash of the key or, out of
+    time, every row whose `column` is on or after `start` (an ISO date text or a number). The salt
+    also assigns cross-validation folds."""
+
     fraction: float = 0.3
     salt: str = "v1"
+    column: str | None = None
+    start: str | float | None = None
+
+    @property
+    def out_of_time(self) -> bool:
+        return self.column is not None
+
+    def record(self) -> dict:
+        """The holdout as the fitted file records it (`from` for `start`, as the spec writes it)."""
+        if self.out_of_time:
+            return {"column": self.column, "from": self.start, "salt": self.salt}
+        return {"fraction": self.fraction, "salt": self.salt}
+
+    @classmethod
+    def from_record(cls, record: dict) -> Holdout:
+        if "column" in record:
+            return cls(0.0, record["salt"], record["column"], record["from"])
+        return cls(record["fraction"], record["salt"])
 
 
 @dataclass(frozen=True)
@@ -79,6 +111,7 @@ class ModelSpec:
     weights: str | None = None
     penalty: Penalty = Penalty()
     holdout: Holdout = Holdout()
+    folds: int = 0  # k-fold cross-validation on the training rows; 0: none
     threshold: float = 0.5
     expect: dict[str, str] = field(default_factory=dict)
     step: dict[str, float] = field(default_factory=dict)
@@ -299,8 +332,9 @@ def is_sql_type(kind: str) -> bool:
 
 MODEL_KEYS = {
     "input", "target", "family", "offset", "weights", "terms", "penalty",
-    "holdout", "threshold", "expect", "step", "notes", "max_dropped",
+    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped",
 }
+MAX_FOLDS = 20
 
 
 def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) -> ModelSpec | None:
@@ -358,9 +392,11 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     penalty = Penalty()
     if isinstance(penalty_data, dict):
         _unknown_keys(document, ("penalty",), penalty_data, {"l1", "l2"}, diagnostics)
+        cross_validated = penalty_data.get("l2") == CROSS_VALIDATED
         penalty = Penalty(
-            l2=_number(document, ("penalty", "l2"), penalty_data.get("l2", 0.0), diagnostics, minimum=0.0),
+            l2=0.0 if cross_validated else _number(document, ("penalty", "l2"), penalty_data.get("l2", 0.0), diagnostics, minimum=0.0),
             l1=_number(document, ("penalty", "l1"), penalty_data.get("l1", 0.0), diagnostics, minimum=0.0),
+            cross_validated=cross_validated,
         )
     else:
         diagnostics.append(document.at(("penalty",), "penalty must be a mapping like {l2: 0.1, l1: 0.0}"))
@@ -368,13 +404,23 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     holdout_data = data.get("holdout") or {}
     holdout = Holdout()
     if isinstance(holdout_data, dict):
-        _unknown_keys(document, ("holdout",), holdout_data, {"fraction", "salt"}, diagnostics)
-        fraction = _number(document, ("holdout", "fraction"), holdout_data.get("fraction", 0.3), diagnostics, minimum=0.0)
-        if not 0.0 <= fraction < 1.0:
-            diagnostics.append(document.at(("holdout", "fraction"), "holdout fraction must be at least 0 and below 1"))
-        holdout = Holdout(fraction, str(holdout_data.get("salt", "v1")))
+        _unknown_keys(document, ("holdout",), holdout_data, {"fraction", "salt", "column", "from"}, diagnostics)
+        if "column" in holdout_data or "from" in holdout_data:
+            holdout = _out_of_time(document, holdout_data, columns, input_name, diagnostics)
+        else:
+            fraction = _number(document, ("holdout", "fraction"), holdout_data.get("fraction", 0.3), diagnostics, minimum=0.0)
+            if not 0.0 <= fraction < 1.0:
+                diagnostics.append(document.at(("holdout", "fraction"), "holdout fraction must be at least 0 and below 1"))
+            holdout = Holdout(fraction, str(holdout_data.get("salt", "v1")))
     else:
         diagnostics.append(document.at(("holdout",), "holdout must be a mapping like {fraction: 0.3, salt: v1}"))
+
+    folds = data.get("folds", DEFAULT_FOLDS if penalty.cross_validated else 0)
+    if isinstance(folds, bool) or not isinstance(folds, int) or not (folds == 0 or 2 <= folds <= MAX_FOLDS):
+        diagnostics.append(document.at(("folds",), f"folds must be a whole number from 2 to {MAX_FOLDS} (or 0 for none), not {folds!r}"))
+        folds = 0
+    elif penalty.cross_validated and folds == 0:
+        diagnostics.append(document.at(("folds",), "penalty l2: cv chooses the strength by cross-validation; set folds to 2 or more"))
 
     threshold = _number(document, ("threshold",), data.get("threshold", 0.5), diagnostics)
     if not 0.0 < threshold < 1.0:
@@ -398,9 +444,50 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         return None
     return ModelSpec(
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
-        offset=offset, weights=weights, penalty=penalty, holdout=holdout, threshold=threshold,
+        offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
         expect=expect, step=step, notes=notes, max_dropped=max_dropped, document=document,
     )
+
+
+def _out_of_time(document, data: dict, columns: dict[str, str], input_name: str, diagnostics) -> Holdout:
+    """`holdout: {column: c, from: v}`: rows with c on or after v are held out; c a date or number column."""
+    if "fraction" in data:
+        diagnostics.append(document.at(("holdout", "fraction"), "holdout takes either fraction (a random share of rows) "
+                                       "or column and from (out of time), not both; remove one", key=True))
+    name, start = data.get("column"), data.get("from")
+    if not isinstance(name, str) or start is None:
+        diagnostics.append(document.at(("holdout",), "an out-of-time holdout needs both column and from, "
+                                       "e.g. {column: signed_on, from: 2025-07-01}"))
+        return Holdout()
+    salt = str(data.get("salt", "v1"))
+    if not columns:
+        return Holdout(0.0, salt, name, None)
+    if name not in columns:
+        hint = difflib.get_close_matches(name, list(columns), n=1)
+        diagnostics.append(document.at(("holdout", "column"), f"holdout column '{name}' is not a column of input '{input_name}'"
+                                       + (f"; did you mean '{hint[0]}'?" if hint else "")))
+        return Holdout()
+    declared = exp.DataType.build(columns[name], dialect="duckdb")
+    if declared.is_type(*exp.DataType.TEMPORAL_TYPES):
+        if isinstance(start, str):
+            try:
+                start = datetime.date.fromisoformat(start)
+            except ValueError:
+                pass
+        if not isinstance(start, datetime.date) or isinstance(start, datetime.datetime):
+            diagnostics.append(document.at(("holdout", "from"), f"holdout from must be a date like 2025-07-01 for the "
+                                           f"{columns[name]} column '{name}', not {start!r}"))
+            return Holdout()
+        return Holdout(0.0, salt, name, start.isoformat())
+    if declared.is_type(*exp.DataType.NUMERIC_TYPES):
+        if isinstance(start, bool) or not isinstance(start, (int, float)):
+            diagnostics.append(document.at(("holdout", "from"), f"holdout from must be a number for the "
+                                           f"{columns[name]} column '{name}', not {start!r}"))
+            return Holdout()
+        return Holdout(0.0, salt, name, float(start))
+    diagnostics.append(document.at(("holdout", "column"), f"holdout column '{name}' is {columns[name]}; an out-of-time "
+                                   "holdout needs a date, timestamp or numeric column"))
+    return Holdout()
 
 
 def _term_map(document, key: str, data: dict, terms: list[str], diagnostics) -> dict:

@@ -12,7 +12,7 @@ from sqlglot import exp
 from ..compiler import CompiledModel, Term
 from ..project import Holdout, InputSpec
 from ..project.names import table_reference
-from .common import alias, column, double
+from .common import alias, column, double, number
 from .harden import as_number, harden
 
 HASH_DIGITS = 8  # hex digits of MD5 used for the split: 16**8 buckets
@@ -23,15 +23,28 @@ def holdout_threshold(fraction: float) -> str:
     return format(int(round(fraction * 16**HASH_DIGITS)), f"0{HASH_DIGITS}x")
 
 
-def holdout_flag(key: str, holdout: Holdout) -> exp.Expression:
-    """TRUE for held-out rows: the first hex digits of MD5(salt ':' key) compared as text.
+def hash_digits(key: str, salt: str) -> exp.Expression:
+    """The first hex digits of MD5(salt ':' key): a row's place in a split, the same on every engine.
 
     Every engine computes MD5 of the same text identically and compares lowercase hex strings of
-    equal length the same way, so the split is the same everywhere.
+    equal length the same way, so a split by comparing these digits is the same everywhere.
     """
-    keyed = exp.DPipe(this=exp.Literal.string(f"{holdout.salt}:"), expression=exp.cast(column(key), "VARCHAR"), safe=True)
-    digits = exp.Substring(this=exp.MD5(this=keyed), start=exp.Literal.number(1), length=exp.Literal.number(HASH_DIGITS))
-    return exp.LT(this=digits, expression=exp.Literal.string(holdout_threshold(holdout.fraction)))
+    keyed = exp.DPipe(this=exp.Literal.string(f"{salt}:"), expression=exp.cast(column(key), "VARCHAR"), safe=True)
+    return exp.Substring(this=exp.MD5(this=keyed), start=exp.Literal.number(1), length=exp.Literal.number(HASH_DIGITS))
+
+
+def holdout_flag(key: str, holdout: Holdout) -> exp.Expression:
+    """TRUE for held-out rows: hash digits below the fraction's threshold or, out of time, the period
+    column on or after `holdout.start`. A row without a period value is held out too: it cannot be
+    placed in time, so it is never trained on."""
+    if holdout.out_of_time:
+        if isinstance(holdout.start, str):
+            start = exp.cast(exp.Literal.string(holdout.start), exp.DataType.build("DATE"))
+            period = column(holdout.column)
+        else:
+            start, period = number(holdout.start), double(column(holdout.column))
+        return exp.Coalesce(this=exp.GTE(this=period, expression=start), expressions=[exp.true()])
+    return exp.LT(this=hash_digits(key, holdout.salt), expression=exp.Literal.string(holdout_threshold(holdout.fraction)))
 
 
 def term_value(term: Term, source: InputSpec) -> exp.Expression:

@@ -197,8 +197,12 @@ def statistics_query(
     *,
     eta_limit: float | None,
     boundary_eta: float,
+    group: exp.Expression | None = None,
 ) -> exp.Select:
     """One pass computing, for each model: deviance, boundary rows, score (q), X'WX upper triangle.
+
+    With `group` (an expression over the design table, e.g. a row's cross-validation fold) there is one
+    row per group value, the value first, then the same sums over that group's rows.
 
     q = 1 + number of the model's terms; see `upper_pairs` for the triangle's order. Terms are
     standardized as (x - centers[t]) * (1 / scales[t]). The linear predictor is clamped to
@@ -215,6 +219,9 @@ def statistics_query(
     if layout.weight:
         level.append(alias(_value(layout.weight), "_w"))
     carried = ["_y", "_w"] if layout.weight else ["_y"]
+    if group is not None:
+        level.append(alias(group, "_group"))
+        carried.append("_group")
     level += [
         alias(_mul(exp.Paren(this=exp.Sub(this=_value(t), expression=number(centers[t]))), number(1.0 / scales[t])), x[t])
         for t in terms
@@ -256,7 +263,8 @@ def statistics_query(
             alias(deviance, f"_D{index}"),
             alias(boundary, f"_B{index}"),
         ]
-    query = _wrap(query, [column(x[t]) for t in terms] + per_row, "_working")
+    grouping = [column("_group")] if group is not None else []
+    query = _wrap(query, grouping + [column(x[t]) for t in terms] + per_row, "_working")
 
     # Level 4: the sums.
     sums: list[exp.Expression] = []
@@ -268,7 +276,8 @@ def statistics_query(
         for i, j in upper_pairs(len(design)):
             factors = [weight] + [c for c in (design[i], design[j]) if c is not None]
             sums.append(_sum(_mul(*factors)))
-    return exp.select(*sums).from_(query.subquery("_statistics"))
+    totals = exp.select(*grouping, *sums).from_(query.subquery("_statistics"))
+    return totals.group_by(column("_group")) if group is not None else totals
 
 
 def _wrap(inner: exp.Select, projections: list[exp.Expression], name: str) -> exp.Select:

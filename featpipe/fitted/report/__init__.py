@@ -21,6 +21,7 @@ from ...engines.compute import Progress, connect, prepare_inputs
 from ...project import Project
 from .. import FittedModel, file_hash
 from ..current import refuse_if_stale
+from ..evaluations import read_evaluations
 from ..scoring import load_fitted
 from .compare import check_comparable, likelihood_ratio
 
@@ -95,6 +96,7 @@ def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedM
         engine=engine.name,
         warnings=warnings,
         other_warnings=other_warnings,
+        evaluations=read_evaluations(project.fitted_path(fitted.model)),
     )
     return render_report(data, sources, test)
 

@@ -52,7 +52,7 @@ def rows_query(fitted: FittedModel, source: InputSpec, columns: Sequence[str]) -
     observed = target_value(fitted.target, source.columns[fitted.target])
     for reference in observed.find_all(exp.Column):
         reference.set("table", exp.to_identifier(INPUT, quoted=True))
-    flag = holdout_flag(key, Holdout(**fitted.holdout))
+    flag = holdout_flag(key, Holdout.from_record(fitted.holdout))
     for reference in flag.find_all(exp.Column):
         reference.set("table", exp.to_identifier(INPUT, quoted=True))
     return (

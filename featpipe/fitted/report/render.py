@@ -17,6 +17,7 @@ from pygments.formatters import HtmlFormatter
 from pygments.lexers import SqlLexer
 
 from .. import FittedModel
+from ..evaluations import Evaluation, stability_row
 from ..notes import figure
 from . import plots, readings
 from .compare import LikelihoodRatio
@@ -89,6 +90,7 @@ class Sources:
     engine: str
     warnings: tuple[str, ...]
     other_warnings: tuple[str, ...] = ()
+    evaluations: tuple[Evaluation, ...] = ()  # fitted/MODEL.evaluations/*.yaml
 
 
 def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | None) -> str:
@@ -102,6 +104,7 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
         "summary": readings.summary(fitted, data.figures, sources.warnings),
         "rows": _rows(fitted),
         "metrics": _metrics(fitted),
+        "validation": _validation(fitted, sources),
         "offset_html": Markup(highlight(fitted.offset, SqlLexer(), formatter)) if fitted.offset else None,
         "comparison": _comparison(fitted, other, test) if other else None,
         "coefficients": _coefficients(fitted),
@@ -141,7 +144,30 @@ def _rows(fitted: FittedModel) -> list[tuple[str, str]]:
     shown = [("input rows", metric_text(rows["input"])), ("complete rows", metric_text(rows["complete"])),
              ("training rows", metric_text(rows["train"])), ("held-out rows", metric_text(rows["holdout"]))]
     shown += [(f"dropped: {reason}", metric_text(count)) for reason, count in rows.get("dropped", {}).items()]
+    holdout = fitted.holdout
+    if "column" in holdout:
+        shown.append(("held out (out of time)", f"{holdout['column']} on or after {holdout['from']}"))
+    else:
+        shown.append(("held out (hash of the key)", f"{holdout['fraction']:.0%}"))
     return shown
+
+
+def _validation(fitted: FittedModel, sources: Sources) -> list[tuple[str, ...]]:
+    """The stability table: the holdout, the cross-validation folds and each labelled table evaluated (by
+    period when evaluated so); rows, AUC (binomial), mean observed, mean predicted and their ratio."""
+    batches = [("holdout", fitted.metrics)] if fitted.metrics.get("rows") else []
+    batches += [(f"cross-validation fold {item['fold']} of {fitted.crossval['folds']}", item["metrics"])
+                for item in fitted.crossval.get("per_fold", ())]
+    for evaluation in sources.evaluations:
+        earlier = "" if evaluation.fitted == sources.fitted_hash else " (of an earlier fit)"
+        batches.append((f"table {evaluation.table}{earlier}", evaluation.metrics))
+        batches += [(f"table {evaluation.table}, {evaluation.by} {item['period']}", item["metrics"]) for item in evaluation.periods]
+    rows = []
+    for label, metrics in batches:
+        row = stability_row(metrics)
+        rows.append((label, metric_text(row["rows"]), metric_text(row["auc"]), metric_text(row["mean_observed"]),
+                     metric_text(row["mean_predicted"]), metric_text(row["observed_to_predicted"])))
+    return rows
 
 
 def _metric_names(family: str):

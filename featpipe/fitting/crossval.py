@@ -1,0 +1,128 @@
+"""k-fold cross-validation of a spec on its training rows, and `penalty: {l2: cv}`.
+
+The folds are hash-assigned in SQL (featpipe.sqlgen.crossval) and fitted in lockstep from grouped
+sufficient statistics (featpipe.glm.folds). Each fold's model is then measured on its own rows with the
+holdout metric function itself, so a fold reports what a holdout reports; the record keeps every
+fold's metrics, their mean and their spread (sample sd over folds).
+
+For `l2: cv` the folds are fitted for each strength of a log grid, strongest first (each run starts
+from the previous run's coefficients), and the strength with the smallest cross-validated deviance
+(the prior-weighted deviance of each fold's rows under the model fitted without them, summed) is
+chosen; ties go to the stronger penalty.
+"""
+
+from __future__ import annotations
+
+import math
+import statistics
+from dataclasses import replace
+
+import numpy as np
+
+from ..compiler.layout import DesignLayout
+from ..engines.base import Engine
+from ..errors import FeatpipeError
+from ..fitted import as_written
+from ..glm.families import get_family
+from ..glm.folds import FoldSource, fit_folds
+from ..glm.penalty import ScaledPenalty
+from ..glm.sources import Scaling
+from ..project import ModelSpec, Penalty
+from ..project.names import INTERCEPT
+from ..sqlgen.crossval import fold_flag, fold_number, fold_sizes_query, fold_table_query
+from ..sqlgen.statistics import profile_query, read_profile
+from .metrics import holdout_metrics
+
+# 10 down to 1e-4 in half decades (common practice), at the fitted file's precision so the strength
+# written is the strength used.
+L2_GRID = tuple(as_written(10.0 ** (exponent / 2)) for exponent in range(2, -9, -1))
+
+
+def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> tuple[Penalty, dict | None]:
+    """The spec's penalty, with l2 chosen on L2_GRID by cross-validated deviance when the spec says `l2: cv`;
+    and the record of that choice (grid, deviance per strength, the choice), None otherwise."""
+    if not spec.penalty.cross_validated:
+        return spec.penalty, None
+    folds = _Folds(engine, layout, spec)
+    deviances, starts = [], None
+    for l2 in L2_GRID:
+        fits = folds.fit(Penalty(l2=l2, l1=spec.penalty.l1), starts)
+        deviances.append(sum(fits.held_out_deviance))
+        starts = [result.beta for result in fits.results]
+    best = min(range(len(L2_GRID)), key=lambda index: (deviances[index], index))
+    return (Penalty(l2=L2_GRID[best], l1=spec.penalty.l1),
+            {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]})
+
+
+def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, penalty: Penalty, choice: dict | None) -> dict:
+    """The fitted file's `crossval` record: per fold its training rows and metrics, their mean and sd."""
+    folds = _Folds(engine, layout, spec)
+    fits = folds.fit(penalty, None)
+    per_fold = []
+    scratch = f"crossval_{spec.name}"
+    engine.create_table(scratch, fold_table_query(layout, folds.fold, spec.folds))
+    try:
+        for index, result in enumerate(fits.results):
+            coefficients = folds.original(result.beta)
+            measured = replace(layout, table=scratch, holdout=fold_flag(index))
+            metrics = holdout_metrics(engine, measured, spec.family, coefficients, spec.threshold)
+            per_fold.append({"fold": index + 1, "train": folds.training_rows - folds.rows[index], "converged": bool(result.converged),
+                             "metrics": metrics})
+    finally:
+        engine.drop_table(scratch)
+    record = {"folds": spec.folds, "salt": spec.holdout.salt, "passes": fits.passes, "per_fold": per_fold,
+              "mean": {}, "sd": {}}
+    for name, value in per_fold[0]["metrics"].items():
+        values = [item["metrics"].get(name) for item in per_fold]
+        if name in ("rows", "events") or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in values):
+            continue
+        record["mean"][name] = statistics.fmean(values)
+        record["sd"][name] = statistics.stdev(values)
+    if choice is not None:
+        record["l2"] = choice
+    return record
+
+
+class _Folds:
+    """The folds of one spec's training rows: their sizes, the working scaling and the fold fitter."""
+
+    def __init__(self, engine: Engine, layout: DesignLayout, spec: ModelSpec):
+        self.engine, self.layout, self.family = engine, layout, get_family(spec.family)
+        self.fold = fold_number(layout.key, spec.holdout.salt, spec.folds)
+        sizes = {int(fold): (int(rows), float(weight)) for fold, rows, weight in engine.fetch(fold_sizes_query(layout, self.fold))}
+        empty = [fold + 1 for fold in range(spec.folds) if sizes.get(fold, (0, 0.0))[0] == 0]
+        if empty:
+            raise FeatpipeError(f"{spec.display}: cross-validation fold {empty[0]} of {spec.folds} has no training rows; "
+                                "use fewer folds")
+        self.rows = [sizes[fold][0] for fold in range(spec.folds)]
+        self.weights = {fold: sizes[fold][1] for fold in range(spec.folds)}
+        self.training_rows = sum(self.rows)
+        self.scaling, self.start = self._scaling_and_start()
+
+    def _scaling_and_start(self) -> tuple[Scaling, np.ndarray]:
+        """Terms centered and scaled by their training mean and population sd (so the penalty needs no
+        factors), and the intercept-only start at the training mean of the target."""
+        zeros = {term: 0.0 for term in self.layout.terms}
+        rough = read_profile(self.engine.fetch(profile_query(self.layout, zeros))[0], self.layout, zeros)
+        shifts = {term.name: term.mean if math.isfinite(term.mean) else 0.0 for term in rough.terms}
+        profile = read_profile(self.engine.fetch(profile_query(self.layout, shifts))[0], self.layout, shifts)
+        rows = profile.rows
+        sds = np.array([term.sd * math.sqrt((rows - 1) / rows) for term in profile.terms])
+        scaling = Scaling(np.array([term.mean for term in profile.terms]), np.where(sds > 0, sds, 1.0))
+        mean = profile.weighted_target_sum / profile.weight_sum
+        if self.family.name != "gaussian":
+            mean = max(mean, 0.5 / (rows + 1))
+        if self.family.name == "binomial":
+            mean = min(mean, 1 - 0.5 / (rows + 1))
+        offset = profile.weighted_offset_sum / profile.weight_sum
+        return scaling, np.r_[self.family.link_of_mean(mean) - offset, np.zeros(len(self.layout.terms))]
+
+    def fit(self, penalty: Penalty, starts: list[np.ndarray] | None):
+        source = FoldSource(self.engine, self.layout, self.family, self.scaling, self.fold, self.weights)
+        scaled = ScaledPenalty(penalty.l2, penalty.l1)
+        return fit_folds(source, starts or [self.start] * len(self.rows), scaled, sum(self.weights.values()))
+
+    def original(self, beta: np.ndarray) -> dict[str, float]:
+        """Standardized coefficients as the model's own: {INTERCEPT: ..., term: ...}."""
+        values = self.scaling.to_original() @ beta
+        return dict(zip((INTERCEPT, *self.layout.terms), (float(value) for value in values), strict=True))
