@@ -121,6 +121,7 @@ def _invented_scores(tmp_path: Path, rows: int = 8000) -> tuple[Path, pd.DataFra
         "data/orders.csv": None, "terms/basket.sql": None, "specs/returns.yaml": None,
         "specs/raw.yaml": "input: applications\ntarget: defaulted\nfamily: binomial\nterms: [debt, income, utilisation, account_age]\n",
     })
+    (root / "data").mkdir()
     frame.to_csv(root / "data" / "applications.csv", index=False)
     rounded = frame.debt / frame.income
     frame["true_log_odds"] = -1.0 + 3.0 * (rounded - 0.6) + 1.5 * frame.utilisation * (frame.account_age > 7.0)
@@ -276,6 +277,7 @@ def test_constant_collinear_and_mostly_null_candidates_are_dropped_with_a_count(
         "data/orders.csv": None, "terms/basket.sql": None, "specs/returns.yaml": None,
         "specs/m.yaml": "input: cases\ntarget: y\nfamily: binomial\nterms: [a]\n",
     })
+    (root / "data").mkdir()
     pd.DataFrame({"id": range(1, rows + 1), "a": a, "flag": flag, "twice": twice, "sparse": sparse, "y": y}).to_csv(
         root / "data" / "cases.csv", index=False)
     project = load_project(root)
