@@ -99,11 +99,11 @@ def _invented_scores(tmp_path: Path, rows: int = 8000) -> tuple[Path, pd.DataFra
     """Invented applications whose true log-odds use a ratio (debt to income) and an interaction that holds
     only above a threshold (utilisation counts only for accounts older than 7 years); neither is a raw input."""
     rng = np.random.default_rng(20240917)
-    debt = rng.lognormal(1.0, 0.5, rows)
-    income = rng.lognormal(1.5, 0.4, rows)
+    debt = rng.uniform(0.5, 5.0, rows)
+    income = rng.uniform(0.5, 5.0, rows)
     utilisation = rng.normal(0.0, 1.0, rows)
     account_age = rng.uniform(0.0, 10.0, rows)
-    log_odds = -1.0 + 3.0 * (debt / income - 0.6) + 1.5 * utilisation * (account_age > 7.0)
+    log_odds = -2.0 + debt / income + 1.2 * utilisation * (account_age > 7.0)
     defaulted = (rng.random(rows) < 1 / (1 + np.exp(-log_odds))).astype(int)
     frame = pd.DataFrame({"app_id": np.arange(1, rows + 1), "debt": debt.round(4), "income": income.round(4),
                           "utilisation": utilisation.round(4), "account_age": account_age.round(3), "defaulted": defaulted})
@@ -124,7 +124,7 @@ def _invented_scores(tmp_path: Path, rows: int = 8000) -> tuple[Path, pd.DataFra
     (root / "data").mkdir()
     frame.to_csv(root / "data" / "applications.csv", index=False)
     rounded = frame.debt / frame.income
-    frame["true_log_odds"] = -1.0 + 3.0 * (rounded - 0.6) + 1.5 * frame.utilisation * (frame.account_age > 7.0)
+    frame["true_log_odds"] = -2.0 + rounded + 1.2 * frame.utilisation * (frame.account_age > 7.0)
     return root, frame
 
 
