@@ -24,17 +24,21 @@ from .engines.compute import (
     design_signature,
     say,
 )
+from .atomic import write_text_atomic
 from .errors import Diagnostic, FeatpipeError
 from .fitted.evaluations import Evaluation
 from .fitting.evaluate import evaluate as evaluate_table
 from .fitting.model import fit_model
+from .fitting.suggest import SuggestReport, proposed_file_text
 from .fitted import FittedModel, read_fitted, stale_fits, staleness, write_fitted
+from .fitted.current import refuse_if_stale
 from .fitted.report import report_path, write_reports
 from .project import Project, load_project
 from .sqlgen.common import DIALECTS, check_dialect, render
 from .sqlgen.design import design_query, terms_query
 
-__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "compute", "fit", "refresh", "render_sql", "evaluate"]
+__all__ = ["DIALECTS", "load_project", "check", "check_report", "connect", "compute", "fit", "refresh", "render_sql", "evaluate",
+           "suggest", "write_proposed"]
 
 
 def check(project: Project) -> CompiledProject:
@@ -173,3 +177,34 @@ def render_sql(project: Project, model: str, part: str = "design", dialect: str 
         raise FeatpipeError(f"unknown part '{part}'; use terms or design")
     return render(statement, dialect) + ";\n"
 
+
+
+def suggest(project: Project, model: str, *, top: int = 10, max_candidates: int = 500, min_rows: int = 30,
+            progress: Progress | None = None) -> SuggestReport:
+    """Candidate terms for a fitted model, ranked by score tests at its current fit (refused when stale)."""
+    from .fitting.suggest import suggest as test_candidates
+
+    compiled = check(project)
+    (chosen,) = select_models(compiled, [model])
+    path = project.fitted_path(model)
+    if not path.is_file():
+        raise FeatpipeError(f"fitted/{model}.yaml does not exist; run `featpipe fit -p {project.root} {model}` first")
+    fitted = read_fitted(path)
+    refuse_if_stale(project, fitted)
+    with connect(project) as engine:
+        build_designs(engine, project, [chosen], only_stale=True, progress=progress)
+        say(progress, f"testing candidate terms for {model} in {engine.name}")
+        return test_candidates(engine, compiled, chosen, fitted, top=top, max_candidates=max_candidates, min_rows=min_rows)
+
+
+def write_proposed(project: Project, report: SuggestReport, into: Path, force: bool = False) -> Path:
+    """Write the top suggestions as a term file (a relative path is under the project folder), atomically;
+    an existing file is replaced only with `force`."""
+    path = into if into.is_absolute() else project.root / into
+    if path.suffix != ".sql":
+        raise FeatpipeError(f"--into {into}: a term file ends in .sql, e.g. terms/proposed_{report.model}.sql")
+    if path.exists() and not force:
+        raise FeatpipeError(f"{path} already exists; pass --force to replace it, or choose another --into file")
+    spec_display = project.models[report.model].display
+    write_text_atomic(path, proposed_file_text(report, spec_display))
+    return path

@@ -470,6 +470,60 @@ def diff(
         raise typer.Exit(1)
 
 
+@app.command()
+def suggest(
+    model: Annotated[str, typer.Argument(help="A fitted model (fitted/MODEL.yaml) whose terms to extend.")],
+    project: ProjectOption = None,
+    top: Annotated[int, typer.Option("--top", min=1, help="How many candidates to show (and to write with --into).")] = 10,
+    max_candidates: Annotated[int, typer.Option("--max-candidates", min=1, help="Test at most this many candidates.")] = 500,
+    min_rows: Annotated[int, typer.Option("--min-rows", min=1, help="Training rows a text level needs to become an indicator.")] = 30,
+    into: Annotated[Optional[Path], typer.Option("--into", help="Write the top candidates as a term file, e.g. terms/proposed_MODEL.sql.")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace the --into file if it exists.")] = False,
+    json_output: JsonOption = False,
+) -> None:
+    """Candidate terms the model is missing, ranked by score tests at its current fit, computed in the engine."""
+    from . import api
+    from .fitting.suggest import CAUTION
+    from .project import load_project
+
+    loaded = load_project(project)
+    if into is not None and not force:  # refuse before the work, not after it
+        target = into if into.is_absolute() else loaded.root / into
+        if target.exists():
+            raise FeatpipeError(f"{target} already exists; pass --force to replace it, or choose another --into file")
+    report = api.suggest(loaded, model, top=top, max_candidates=max_candidates, min_rows=min_rows,
+                         progress=None if json_output else _progress)
+    written = api.write_proposed(loaded, report, into, force) if into is not None else None
+    if json_output:
+        _print_json({**report.as_dict(), "written": None if written is None else str(written)})
+        return
+    out.print(suggest_table(report))
+    dropped = ", ".join(f"{reason} {count}" for reason, count in report.dropped.items()) or "none"
+    out.print(f"{report.generated} candidates generated, {report.considered} considered (--max-candidates), "
+              f"{report.tested} tested; dropped: {dropped}; {report.scans} scans of the {report.training_rows} training rows",
+              markup=False)
+    for suggestion in report.shown:
+        out.print(f"{suggestion.rank}. {suggestion.line(report.tested)}", markup=False)
+    out.print(f"caution: {CAUTION}", markup=False)
+    if written is not None:
+        out.print(f"wrote {written}", markup=False)
+
+
+def suggest_table(report) -> Table:
+    """The top candidates with their score tests."""
+    from rich.table import Table
+    from rich.text import Text
+
+    table = Table(title=f"{report.model}: candidate terms by score test at the current fit ({report.family}, "
+                        f"{report.training_rows} training rows)")
+    for heading in ("rank", "term", "SQL", "statistic", "p (Holm)", "one-step estimate", "deviance gain", "NULL"):
+        table.add_column(heading, justify="left" if heading in ("term", "SQL") else "right")
+    for s in report.shown:
+        table.add_row(str(s.rank), Text(s.name), Text(s.sql), f"{s.statistic:.4g}", _number(s.p_holm, 2), f"{s.estimate:.4g}",
+                      f"{s.deviance_gain:.4g}", f"{s.null_share:.1%}")
+    return table
+
+
 def main(args: list[str] | None = None) -> None:
     """Console entry point: map user errors to exit 1 and bugs to exit 2, never a bare traceback.
 

@@ -1,0 +1,185 @@
+"""The queries of `featpipe suggest`, all over a model's training rows computed from its input table.
+
+The training rows are the design table's (not held out, no NULL in target, offset, weight or any
+model term), computed by the design query itself with more columns beside it, so the candidates and
+the current model read the very same rows. Only sums and a few order statistics leave the engine:
+
+- `column_summary_query`: one scan; per numeric column its count, sum, min, max and nine deciles
+  (exact, PERCENTILE_DISC: the inverted empirical CDF, as the fitted profiles use);
+- `level_counts_query`: one scan; the text levels with at least `min_rows` training rows, all text
+  columns at once through GROUPING SETS (each result row has one column set, the others NULL);
+- `candidate_means_query`: the mean of each candidate over the first `rows` training rows (a LIMIT, not
+  a scan): the shift that keeps the score sums free of cancellation;
+- `score_sums_query`: one scan per chunk of candidates; the current model's linear predictor from
+  its fitted coefficients (as scoring computes it), its fitted mean, working weight and residual, and
+  as SUMs: the model's score and X'WX (first chunk only) and per candidate the sums its score test needs.
+
+Portability (sqlgen/harden.py): terms and candidates are hardened DOUBLE expressions, the linear
+predictor is clamped before EXP, every literal is an exact DOUBLE.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+from sqlglot import exp
+
+from ..compiler import CompiledModel
+from ..project import InputSpec
+from .common import alias, column, double, number, training_rows
+from .design import design_query
+from .metrics import linear_predictor, prediction
+from .statistics import upper_pairs
+
+DECILE_LEVELS = tuple(k / 10 for k in range(1, 10))
+RESIDUAL, WORKING, ERROR = "_residual", "_working", "_error"
+
+
+def training_input(model: CompiledModel, source: InputSpec, extra: Mapping[str, exp.Expression]) -> exp.Select:
+    """The design query's columns and `extra` (alias -> expression over the input) on the training rows."""
+    inner = design_query(model, source).select(*(alias(expression, name) for name, expression in extra.items()))
+    return exp.select(exp.Star()).from_(inner.subquery("_input")).where(training_rows(model.layout))
+
+
+def _in(index: int) -> str:
+    return f"_in{index}"
+
+
+def column_summary_query(model: CompiledModel, source: InputSpec, columns: Sequence[str]) -> exp.Select:
+    """COUNT(*), then per column: count, sum, min, max and the deciles at DECILE_LEVELS (read with
+    `read_column_summaries`)."""
+    rows = training_input(model, source, {_in(i): double(column(name)) for i, name in enumerate(columns)})
+    projections: list[exp.Expression] = [exp.Count(this=exp.Star())]
+    for index in range(len(columns)):
+        value = column(_in(index))
+        projections += [exp.Count(this=value.copy()), exp.Sum(this=value.copy()), exp.Min(this=value.copy()), exp.Max(this=value.copy())]
+        projections += [
+            exp.WithinGroup(this=exp.PercentileDisc(this=exp.Literal.number(level)),
+                            expression=exp.Order(expressions=[exp.Ordered(this=value.copy())]))
+            for level in DECILE_LEVELS
+        ]
+    return exp.select(*projections).from_(rows.subquery("_training"))
+
+
+SUMMARY_WIDTH = 4 + len(DECILE_LEVELS)
+
+
+def read_column_summaries(row: Sequence, columns: Sequence[str]):
+    """(training rows, per column (count, sum, min, max, deciles)) from the row of `column_summary_query`."""
+    rows = int(row[0] or 0)
+    found = {}
+    for index, name in enumerate(columns):
+        count, total, low, high, *deciles = row[1 + SUMMARY_WIDTH * index : 1 + SUMMARY_WIDTH * (index + 1)]
+        found[name] = (int(count or 0), None if total is None else float(total), None if low is None else float(low),
+                       None if high is None else float(high), tuple(sorted({float(d) for d in deciles if d is not None})))
+    return rows, found
+
+
+def level_counts_query(model: CompiledModel, source: InputSpec, columns: Sequence[str], min_rows: int) -> exp.Select:
+    """The (column values..., rows) of every text level with at least `min_rows` training rows."""
+    rows = training_input(model, source, {_in(i): column(name) for i, name in enumerate(columns)})
+    keys = [column(_in(i)) for i in range(len(columns))]
+    grouping = exp.GroupingSets(expressions=[exp.Tuple(expressions=[key.copy()]) for key in keys])
+    count = exp.Count(this=exp.Star())
+    return (exp.select(*keys, count).from_(rows.subquery("_training")).group_by(grouping)
+            .having(exp.GTE(this=count.copy(), expression=exp.Literal.number(min_rows))))
+
+
+def read_levels(rows: Sequence[tuple], columns: Sequence[str]) -> dict[str, list[str]]:
+    """Per column, its frequent levels sorted by rows (most first), then by value."""
+    found: dict[str, list[tuple[int, str]]] = {name: [] for name in columns}
+    for row in rows:
+        *values, count = row
+        for name, value in zip(columns, values, strict=True):
+            if value is not None:
+                found[name].append((-int(count), str(value)))
+    return {name: [value for _, value in sorted(levels)] for name, levels in found.items() if levels}
+
+
+def candidate_means_query(model: CompiledModel, source: InputSpec, candidates: Mapping[str, exp.Expression], rows: int) -> exp.Select:
+    """AVG of each candidate over the first `rows` training rows (NULL when it has no value there)."""
+    sample = training_input(model, source, candidates).limit(rows)
+    return exp.select(*(exp.Avg(this=column(name)) for name in candidates)).from_(sample.subquery("_sample"))
+
+
+def score_sums_query(
+    model: CompiledModel,
+    source: InputSpec,
+    family: str,
+    coefficients: Mapping[str, float],
+    centers: Mapping[str, float],
+    candidates: Mapping[str, exp.Expression],
+    shifts: Mapping[str, float],
+    *,
+    with_model: bool,
+) -> exp.Select:
+    """One scan of the training rows under the current fit (mu from `coefficients`, by name with the intercept).
+
+    With prior weight w, working weight W = w V(mu), residual R = w (y - mu), model columns x (the
+    intercept, then each term minus its center) and each candidate shifted, z = value - shift:
+
+    - with_model: COUNT(*), SUM(w (y - mu)^2), the score SUM(R x_j) and X'WX SUM(W x_i x_j) (`upper_pairs` order);
+    - per candidate: COUNT(z) (its rows with a value), SUM(R z), SUM(W z^2), SUM(W z x_j) for each model column.
+
+    A candidate's NULL rows add nothing to its sums: they enter its test at the shift.
+    """
+    layout = model.layout
+    shifted = {name: exp.Sub(this=expression, expression=number(shifts[name])) for name, expression in candidates.items()}
+    rows = training_input(model, source, shifted)
+    terms = [f"_x{i}" for i in range(len(layout.terms))]
+    candidate_names = list(candidates)
+    eta = linear_predictor(layout, coefficients)
+    weight = double(column(layout.weight)) if layout.weight else None
+    level1 = [alias(double(column(layout.target)), "_y"), alias(eta, "_eta")]
+    level1 += [alias(exp.Sub(this=column(term), expression=number(centers[term])), x) for term, x in zip(layout.terms, terms, strict=True)]
+    level1 += [column(name) for name in candidate_names]
+    if weight is not None:
+        level1.append(alias(weight, "_w"))
+    linear = exp.select(*level1).from_(rows.subquery("_rows"))
+    carried = ["_y", *terms, *candidate_names, *(["_w"] if weight is not None else [])]
+    fitted = exp.select(*(column(name) for name in carried), alias(prediction(family, column("_eta")), "_mu")).from_(
+        linear.subquery("_linear"))
+
+    mu = column("_mu")
+    variance = {"binomial": exp.Mul(this=mu.copy(), expression=exp.Paren(this=exp.Sub(this=number(1.0), expression=mu.copy()))),
+                "poisson": mu.copy(), "gaussian": number(1.0)}[family]
+    error = exp.Sub(this=column("_y"), expression=exp.Paren(this=mu.copy()))
+    level2 = [column(x) for x in terms] + [column(name) for name in candidate_names]
+    level2 += [alias(_weighted(variance, weight is not None), WORKING), alias(_weighted(exp.Paren(this=error), weight is not None), RESIDUAL),
+               alias(error.copy(), ERROR)]
+    working = exp.select(*level2).from_(fitted.subquery("_fitted"))
+
+    W, R = column(WORKING), column(RESIDUAL)
+    design = [None, *(column(x) for x in terms)]  # None: the intercept
+    sums: list[exp.Expression] = []
+    if with_model:
+        sums += [exp.Count(this=exp.Star()), exp.Sum(this=_times(R, column(ERROR)))]
+        sums += [exp.Sum(this=_times(R, c)) for c in design]
+        sums += [exp.Sum(this=_times(W, design[i], design[j])) for i, j in upper_pairs(len(design))]
+    for name in candidate_names:
+        z = column(name)
+        sums += [exp.Count(this=z.copy()), exp.Sum(this=_times(R, z)), exp.Sum(this=_times(W, z, z))]
+        sums += [exp.Sum(this=_times(W, z, c)) for c in design]
+    return exp.select(*sums).from_(working.subquery("_working"))
+
+
+def model_sums_width(terms: int) -> int:
+    """How many values the model's part of `score_sums_query` returns."""
+    return 2 + (terms + 1) + len(upper_pairs(terms + 1))
+
+
+def candidate_sums_width(terms: int) -> int:
+    """How many values each candidate adds to `score_sums_query`."""
+    return 3 + (terms + 1)
+
+
+def _weighted(value: exp.Expression, weighted: bool) -> exp.Expression:
+    return exp.Mul(this=column("_w"), expression=value) if weighted else value
+
+
+def _times(*factors: exp.Expression | None) -> exp.Expression:
+    present = [factor.copy() for factor in factors if factor is not None]
+    product = present[0]
+    for factor in present[1:]:
+        product = exp.Mul(this=product, expression=factor)
+    return product
