@@ -302,8 +302,11 @@ def explain(
         if term is None:
             out.print(f"model {use['model']}: not fitted yet")
             continue
-        interval = "" if term["ci_low"] is None else f" (95% interval {term['ci_low']:.4g} to {term['ci_high']:.4g})"
-        out.print(f"model {use['model']}: estimate {term['estimate']:.4g}{interval}, p {_number(term['p_value'], 2)}")
+        if term["p_value"] is None:
+            inference = ", no interval or p-value (a penalized fit)"
+        else:
+            inference = f" (95% interval {term['ci_low']:.4g} to {term['ci_high']:.4g}), p {_number(term['p_value'], 2)}"
+        out.print(f"model {use['model']}: estimate {term['estimate']:.4g}{inference}")
         for note in term["notes"]:
             out.print(f"  - {note}")
         for reason in use["stale"]:

@@ -32,6 +32,7 @@ class Effect:
     value: float
     low: float | None
     high: float | None
+    basis: str = "step"  # where the step comes from: "step" (the spec), "sd" (one training sd), "indicator" (1 rather than 0)
 
 
 @dataclass(frozen=True)

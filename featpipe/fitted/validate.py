@@ -166,7 +166,8 @@ PROFILE = record({
     "count": COUNT, "nulls": COUNT, "mean": OPTIONAL_NUMBER, "sd": OPTIONAL_NUMBER, "min": OPTIONAL_NUMBER,
     "max": OPTIONAL_NUMBER, "median": OPTIONAL_NUMBER, "edges": listing(NUMBER), "shares": listing(NUMBER),
 })
-EFFECT = record({"kind": TEXT, "step": NUMBER, "value": RATIO, "low": optional(RATIO), "high": optional(RATIO)})
+EFFECT = record({"kind": TEXT, "step": NUMBER, "value": RATIO, "low": optional(RATIO), "high": optional(RATIO)},
+                {"basis": one_of("step", "sd", "indicator")})
 TERM = record(
     {"name": TERM_NAME, "estimate": NUMBER, "std_error": OPTIONAL_NUMBER, "statistic": OPTIONAL_NUMBER,
      "p_value": OPTIONAL_NUMBER, "ci_low": OPTIONAL_NUMBER, "ci_high": OPTIONAL_NUMBER},
@@ -179,6 +180,7 @@ ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout":
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
     "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG,
+    "effective_df": NUMBER, "conventions": mapping(NAME, TEXT),
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
 METRICS = record({}, {

@@ -282,7 +282,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         warnings.append("the intercept-only model did not converge: the null deviance is approximate")
     if penalty.active:
         warnings.append(problems.penalized_inference(penalty.l2, penalty.l1))
-    parameters = size if penalty.l1 == 0 else 1 + int(np.count_nonzero(model.beta[1:]))
+    parameters = penalty.effective_df(statistics.xtwx, model.beta, profile.weight_sum) if penalty.active else size
     llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, solution.constant)
     aic, bic = information_criteria(llf, parameters, profile.rows)
     return GlmResult(
@@ -299,6 +299,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
             aic=float(aic),
             bic=float(bic),
             dispersion=float(dispersion),
+            effective_df=float(parameters),
         ),
         rows=TrainingRows(n=profile.rows, weight_sum=profile.weight_sum, df_residual=df_residual, term_profiles=profile.terms),
         convergence=Convergence(
