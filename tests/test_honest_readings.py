@@ -177,6 +177,6 @@ def test_the_fitted_file_states_its_conventions(tmp_path):
     project = policy_project(tmp_path / "p", SPEC)
     api.fit(project)
     conventions = read_fitted(project.fitted_path("claims")).fit["conventions"]
-    assert set(conventions) == {"aic", "bic", "log_likelihood", "p_values", "vif", "step"}
+    assert set(conventions) == {"aic", "bic", "log_likelihood", "p_values", "pearson_dispersion", "vif", "step"}
     assert "unlike R" in conventions["aic"] or "R's glm counts it" in conventions["aic"]
     assert "log-likelihood form" in conventions["bic"] and "normal distribution" in conventions["p_values"]

@@ -20,6 +20,8 @@ def conventions(*, statistic: str, penalized: bool) -> dict[str, str]:
         "bic": f"-2 log-likelihood + k ln(n), n the training rows, k {counted} (the log-likelihood form)",
         "log_likelihood": "the full log-likelihood as R's logLik gives it; gaussian at the maximum-likelihood scale",
         "p_values": p_values,
+        "pearson_dispersion": ("Pearson chi2 / (n - p); above 1.5 (a common screen) poisson counts or binomial successes "
+                               "out of several trials are overdispersed; a 0/1 target cannot show overdispersion"),
         "vif": ("in the IRLS-weighted metric at the fitted coefficients, as the coefficient covariance gives it: the "
                 "factor by which collinearity multiplies an estimate's variance; 5 and 10 are the usual screens"),
         "step": ("effects are per the spec's step, or per one training standard deviation of the term when none is "

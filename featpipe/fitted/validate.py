@@ -180,7 +180,7 @@ ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout":
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
     "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG,
-    "effective_df": NUMBER, "conventions": mapping(NAME, TEXT),
+    "effective_df": NUMBER, "conventions": mapping(NAME, TEXT), "pearson_chi2": NUMBER, "pearson_dispersion": NUMBER,
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
 METRICS = record({}, {

@@ -59,6 +59,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     """Fit one model whose design table is current in `engine`."""
     # numpy and scipy load when a model is fitted, not with the API (`featpipe check` never fits).
     from ..glm import Glm
+    from ..glm.dispersion import pearson_ratio
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
@@ -103,6 +104,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "statistic": glm.statistic_name,
             "penalized": spec.penalty.active,
             "effective_df": float(glm.goodness_of_fit.effective_df),
+            "pearson_chi2": float(glm.goodness_of_fit.pearson_chi2),
+            "pearson_dispersion": float(pearson_ratio(glm.goodness_of_fit.pearson_chi2, glm.rows.df_residual)),
             "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active),
         },
         terms=tuple(fitted_terms),

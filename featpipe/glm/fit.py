@@ -44,6 +44,7 @@ from ..sqlgen.statistics import (
     target_counts_query,
 )
 from . import problems
+from .dispersion import overdispersion_warning, pearson_ratio
 from .families import Family, Poisson, get_family
 from .inference import Wald, information_criteria, log_likelihood, wald
 from .irls import AliasedTerms, IrlsResult, run_irls
@@ -282,6 +283,10 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         warnings.append("the intercept-only model did not converge: the null deviance is approximate")
     if penalty.active:
         warnings.append(problems.penalized_inference(penalty.l2, penalty.l1))
+    pearson = pearson_ratio(statistics.pearson, df_residual)
+    overdispersed = overdispersion_warning(family.name, pearson, binary=profile.not_binary == 0)
+    if overdispersed:
+        warnings.append(overdispersed)
     parameters = penalty.effective_df(statistics.xtwx, model.beta, profile.weight_sum) if penalty.active else size
     llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, solution.constant)
     aic, bic = information_criteria(llf, parameters, profile.rows)
@@ -300,6 +305,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
             bic=float(bic),
             dispersion=float(dispersion),
             effective_df=float(parameters),
+            pearson_chi2=float(statistics.pearson),
         ),
         rows=TrainingRows(n=profile.rows, weight_sum=profile.weight_sum, df_residual=df_residual, term_profiles=profile.terms),
         convergence=Convergence(

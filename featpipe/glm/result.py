@@ -46,6 +46,7 @@ class GoodnessOfFit:
     bic: float  # -2 llf + k ln n
     dispersion: float  # Pearson chi2 / (n - p) for gaussian, 1 otherwise
     effective_df: float  # trace of the hat matrix: the coefficients without a penalty, fewer with one
+    pearson_chi2: float  # sum of w (y - mu)^2 / V(mu)
 
 
 @dataclass(frozen=True)
