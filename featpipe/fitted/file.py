@@ -66,7 +66,7 @@ class FittedModel:
     family: str
     link: str
     offset: str | None
-    weights: str | None
+    weights: str | dict | None  # the column (a variance weight) or {column: c, kind: frequency}
     holdout: dict
     threshold: float
     penalty: dict
@@ -83,6 +83,10 @@ class FittedModel:
     @property
     def coefficients(self) -> dict[str, float]:
         return {term.name: term.estimate for term in self.terms}
+
+    @property
+    def weight_column(self) -> str | None:
+        return self.weights["column"] if isinstance(self.weights, dict) else self.weights
 
     @property
     def model_terms(self) -> tuple[FittedTerm, ...]:

@@ -63,7 +63,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
-    glm = Glm(spec.family, spec.penalty).fit(engine, layout)
+    glm = Glm(spec.family, spec.penalty, frequency_weights=spec.weight_kind == "frequency").fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
@@ -86,7 +86,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         family=spec.family,
         link=glm.link,
         offset=model.offset_sql,
-        weights=spec.weights,
+        weights=model.dependencies["weights"],
         holdout={"fraction": spec.holdout.fraction, "salt": spec.holdout.salt},
         threshold=spec.threshold,
         penalty={"l2": spec.penalty.l2, "l1": spec.penalty.l1},
@@ -104,6 +104,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "statistic": glm.statistic_name,
             "penalized": spec.penalty.active,
             "effective_df": float(glm.goodness_of_fit.effective_df),
+            "observations": float(glm.rows.n),
             "pearson_chi2": float(glm.goodness_of_fit.pearson_chi2),
             "pearson_dispersion": float(pearson_ratio(glm.goodness_of_fit.pearson_chi2, glm.rows.df_residual)),
             "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active),

@@ -63,6 +63,7 @@ from .sources import (
     engine_batches,
     in_memory_batches,
 )
+from .weights import as_repeated_rows
 
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
@@ -78,6 +79,7 @@ class Glm:
     the first training rows read up front; they set the working scaling and, when the table has more
     rows, the warm start. A table sorted by a term gives a poorer warm start (more passes), not a
     different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
+    `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     """
 
     family: str
@@ -88,6 +90,7 @@ class Glm:
     source: str = "auto"
     sample_rows: int = SAMPLE_ROWS
     batch_rows: int = BATCH_ROWS
+    frequency_weights: bool = False
 
     def __post_init__(self) -> None:
         get_family(self.family)  # raises on an unknown family
@@ -158,6 +161,8 @@ class Glm:
             first, profile, constant = problem.statistics.evaluate_with_profile(starts, problem.data.terms)
         else:
             profile, constant = problem.known
+        if self.frequency_weights:
+            profile = as_repeated_rows(profile)
         warnings = problems.check_training_rows(profile, problem.family, problem.data)
         penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
         try:
