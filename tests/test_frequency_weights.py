@@ -113,3 +113,36 @@ def test_an_unknown_weight_kind_is_refused_with_its_line(tmp_path):
     assert result.returncode == 1 and "Traceback" not in result.stderr + result.stdout
     assert "specs/default.yaml:6:" in result.stdout + result.stderr
     assert "weights kind must be frequency (a row stands for that many identical rows) or variance" in result.stdout + result.stderr
+
+
+def test_holdout_metrics_count_the_rows_the_weights_stand_for(tmp_path):
+    from sklearn.metrics import accuracy_score, brier_score_loss, log_loss, roc_auc_score
+
+    from featpipe.engines.statements import select_all
+    from featpipe.sqlgen.common import holdout_rows
+
+    cells_project(tmp_path / "p", "{column: n, kind: frequency}")
+    spec = tmp_path / "p/specs/default.yaml"
+    spec.write_text(spec.read_text().replace("fraction: 0.0", "fraction: 0.4"))
+    project = load_project(tmp_path / "p")
+    api.fit(project)
+    fitted = read_fitted(project.fitted_path("default"))
+    layout = api.check(project).models["default"].layout
+    with api.connect(project) as engine:
+        held = engine.fetch_frame(select_all(layout.table).where(holdout_rows(layout)))
+    eta = fitted.coefficients["(intercept)"] + held["x1"] * fitted.coefficients["x1"] + held["x2"] * fitted.coefficients["x2"]
+    p, y, n = 1 / (1 + np.exp(-eta)), held["y"], held[layout.weight]
+    # Reference: scikit-learn metrics with the counts as sample weights (the rows repeated).
+    metrics = fitted.metrics
+    assert metrics["rows"] == n.sum() and metrics["events"] == (n * y).sum()
+    assert metrics["auc"] == pytest.approx(roc_auc_score(y, p, sample_weight=n), rel=1e-12)
+    assert metrics["log_loss"] == pytest.approx(log_loss(y, p, sample_weight=n), rel=1e-9)
+    assert metrics["brier"] == pytest.approx(brier_score_loss(y, p, sample_weight=n), rel=1e-9)
+    assert metrics["accuracy"] == pytest.approx(accuracy_score(y, p >= 0.5, sample_weight=n), rel=1e-12)
+    assert sum(decile["rows"] for decile in metrics["calibration"]) == n.sum()
+
+
+def test_frequency_weights_that_do_not_add_up_to_whole_rows_are_refused():
+    x, y, counts = grouped("poisson")
+    with pytest.raises(Exception, match="frequency weights count identical rows, but they add up to"):
+        Glm("poisson", frequency_weights=True).fit_arrays(x, y, weights=counts + 0.25)

@@ -70,7 +70,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         engine, layout,
         {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold)
+    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency")
     intercept, *slopes = glm.coefficients
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     fitted_terms += [

@@ -162,7 +162,7 @@ class Glm:
         else:
             profile, constant = problem.known
         if self.frequency_weights:
-            profile = as_repeated_rows(profile)
+            profile = as_repeated_rows(profile, problem.data.where)
         warnings = problems.check_training_rows(profile, problem.family, problem.data)
         penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
         try:
