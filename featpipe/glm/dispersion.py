@@ -26,6 +26,6 @@ def overdispersion_warning(family: str, ratio: float, binary: bool) -> str | Non
         return None
     return (f"Pearson chi2 / df is {ratio:.2f}, above {OVERDISPERSED:g} (a common screen): the "
             f"{'counts' if family == 'poisson' else 'successes'} vary more than the {family} family allows "
-            "(overdispersion), so the standard errors are too small and the p-values too optimistic; fit with "
-            f"family: quasi{family} (standard errors scaled by the Pearson dispersion) or errors: robust, or add "
-            "the terms that explain the extra variation")
+            "(overdispersion), so the standard errors are too small and the p-values too optimistic; read each "
+            f"standard error as about {math.sqrt(ratio):.2f} times larger (the quasi-{family} correction, the square "
+            "root of the ratio), or add the terms that explain the extra variation")
