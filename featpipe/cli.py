@@ -230,7 +230,8 @@ def _print_fit_summary(fitted: FittedModel) -> None:
     out.print(coefficient_table(fitted))
     fit = fitted.fit
     out.print(f"deviance {fit['deviance']:.4f} (null {fit['null_deviance']:.4f}), AIC {fit['aic']:.2f}, "
-              f"BIC {fit['bic']:.2f}, {'converged' if fit['converged'] else 'NOT converged'} in {fit['iterations']} iterations")
+              f"BIC {fit['bic']:.2f}, {'converged' if fit['converged'] else 'NOT converged'} in {fit['iterations']} iterations"
+              + (f", Pearson chi2/df {fit['pearson_dispersion']:.3f}" if "pearson_dispersion" in fit else ""))
     holdout = fitted.metrics
     if holdout.get("rows"):
         shown = {k: v for k, v in holdout.items() if isinstance(v, (int, float)) and not isinstance(v, bool)}
@@ -307,8 +308,11 @@ def explain(
         if term is None:
             out.print(f"model {use['model']}: not fitted yet")
             continue
-        interval = "" if term["ci_low"] is None else f" (95% interval {term['ci_low']:.4g} to {term['ci_high']:.4g})"
-        out.print(f"model {use['model']}: estimate {term['estimate']:.4g}{interval}, p {_number(term['p_value'], 2)}")
+        if term["p_value"] is None:
+            inference = ", no interval or p-value (a penalized fit)"
+        else:
+            inference = f" (95% interval {term['ci_low']:.4g} to {term['ci_high']:.4g}), p {_number(term['p_value'], 2)}"
+        out.print(f"model {use['model']}: estimate {term['estimate']:.4g}{inference}")
         for note in term["notes"]:
             out.print(f"  - {note}")
         for reason in use["stale"]:

@@ -87,9 +87,11 @@ def test_collinearity_above_five_and_ten():
     # VIF thresholds 5 and 10 are common practice; at exactly 5 nothing is said.
     assert len(term_notes(**FIRM_AGE, vif=5.0)) == 1
     assert term_notes(**FIRM_AGE, vif=6.24)[1] == (
-        "VIF 6.2 is above 5: moderate collinearity with other terms widens the interval")
+        "weighted VIF 6.2 is above 5: collinearity with other terms multiplies the variance of the estimate by 6.2 and "
+        "widens the interval")
     assert term_notes(**FIRM_AGE, vif=14.0)[1] == (
-        "VIF 14.0 is above 10: strong collinearity with other terms makes the estimate unstable and its interval wide")
+        "weighted VIF 14.0 is above 10: collinearity with other terms multiplies the variance of the estimate by 14.0, "
+        "making it unstable and its interval wide")
 
 
 def test_terms_to_read_together():
@@ -101,11 +103,13 @@ def test_terms_to_read_together():
         "read together with a_term, b_term and c_term:")
 
 
+PENALIZED = ("fitted with a penalty, which shrinks the coefficients together rather than each toward zero (with "
+             "correlated terms an estimate may grow or change sign): there is no valid 95% interval or p-value")
+
+
 def test_penalty_caveat():
-    assert term_notes(**FIRM_AGE, penalized=True)[1] == (
-        "fitted with a penalty: the estimate is shrunk toward zero and its 95% interval is not a valid Wald interval")
     no_interval = {**FIRM_AGE, "ci_low": None, "ci_high": None}
-    assert term_notes(**no_interval, penalized=True)[1] == "fitted with a penalty: the estimate is shrunk toward zero"
+    assert term_notes(**no_interval, penalized=True)[1] == PENALIZED
 
 
 def test_all_notes_in_reading_order_with_the_human_note_first_and_unchanged():
@@ -117,9 +121,10 @@ def test_all_notes_in_reading_order_with_the_human_note_first_and_unchanged():
         "each 5 more years of firm age multiplies the odds of default by 0.71 (95% interval 0.64 to 1.11), "
         "other terms held fixed",  # exp(5 x 0.02) = exp(0.1) = 1.105171 by hand
         "expected negative: met",
-        "fitted with a penalty: the estimate is shrunk toward zero and its 95% interval is not a valid Wald interval",
+        PENALIZED,
         "the interval includes no effect (an odds ratio of 1), p = 0.21: the data do not show a clear effect of this term",
-        "VIF 11.5 is above 10: strong collinearity with other terms makes the estimate unstable and its interval wide",
+        "weighted VIF 11.5 is above 10: collinearity with other terms multiplies the variance of the estimate by 11.5, "
+        "making it unstable and its interval wide",
         "read together with young_firm: its effect cannot be held fixed while it changes",
     )
 
@@ -153,6 +158,7 @@ def test_model_reading():
     assert model_reading(family="gaussian", target="spend", terms=2, train_rows=10, metrics={"rows": 0},
                          converged=False, penalized=True) == (
         "Linear regression of spend on 2 terms, fitted on 10 training rows. The fit did not converge: do not use these "
-        "estimates. It was fitted with a penalty, so its intervals and p-values are not valid Wald inference. No rows "
+        "estimates. It was fitted with a penalty, which shrinks the coefficients together: it has no valid intervals or "
+        "p-values, and its AIC and BIC count the effective degrees of freedom. No rows "
         "were held out, so there are no holdout metrics."
     )

@@ -99,7 +99,8 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         "target": spec.target,
         "family": spec.family,
         "offset": offset_sql,
-        "weights": spec.weights,
+        # A bare column is a variance weight, as written before frequency weights existed.
+        "weights": {"column": spec.weights, "kind": spec.weight_kind} if spec.weight_kind == "frequency" else spec.weights,
         "holdout": spec.holdout.record(),
         "penalty": spec.penalty.record(),
         **({"folds": spec.folds} if spec.folds else {}),  # only when set, so fits without folds keep their fingerprint

@@ -32,6 +32,7 @@ class Effect:
     value: float
     low: float | None
     high: float | None
+    basis: str = "step"  # where the step comes from: "step" (the spec), "sd" (one training sd), "indicator" (1 rather than 0)
 
 
 @dataclass(frozen=True)
@@ -65,7 +66,7 @@ class FittedModel:
     family: str
     link: str
     offset: str | None
-    weights: str | None
+    weights: str | dict | None  # the column (a variance weight) or {column: c, kind: frequency}
     holdout: dict
     threshold: float
     penalty: dict
@@ -83,6 +84,10 @@ class FittedModel:
     @property
     def coefficients(self) -> dict[str, float]:
         return {term.name: term.estimate for term in self.terms}
+
+    @property
+    def weight_column(self) -> str | None:
+        return self.weights["column"] if isinstance(self.weights, dict) else self.weights
 
     @property
     def model_terms(self) -> tuple[FittedTerm, ...]:

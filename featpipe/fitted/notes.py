@@ -25,18 +25,33 @@ def words(name: str) -> str:
     return " ".join(part for part in name.split("_") if part)
 
 
-def effect(family: str, estimate: float, ci_low: float | None, ci_high: float | None, step: float = 1.0) -> Effect:
+def effect(family: str, estimate: float, ci_low: float | None, ci_high: float | None, step: float = 1.0,
+           basis: str = "step") -> Effect:
     """The effect of `step` more units of a term: exp(step * b) as an odds or rate ratio, or step * b.
 
     The interval is transformed the same way (ordered low to high); None bounds without an interval.
+    `basis` records where the step came from (see `effect_step`).
     """
     kind = _kind(family)
     scale = _difference if kind == "difference" else _ratio
     value = scale(step * estimate)
     if ci_low is None or ci_high is None:
-        return Effect(kind=kind, step=float(step), value=value, low=None, high=None)
+        return Effect(kind=kind, step=float(step), value=value, low=None, high=None, basis=basis)
     low, high = sorted((scale(step * ci_low), scale(step * ci_high)))
-    return Effect(kind=kind, step=float(step), value=value, low=low, high=high)
+    return Effect(kind=kind, step=float(step), value=value, low=low, high=high, basis=basis)
+
+
+def effect_step(kind: str, given: float | None, training_sd: float | None) -> tuple[float, str]:
+    """The step an effect is stated per, and its basis: an indicator is read as 1 rather than 0; otherwise
+    the spec's step, or, when none is given, one training standard deviation of the term, so a term on a
+    tiny or huge scale still gets an effect of readable size (1 when the sd is unknown)."""
+    if kind == "boolean":
+        return 1.0, "indicator"
+    if given is not None:
+        return float(given), "step"
+    if training_sd is not None and math.isfinite(training_sd) and training_sd > 0:
+        return float(training_sd), "sd"
+    return 1.0, "step"
 
 
 def _kind(family: str) -> str:
@@ -73,6 +88,7 @@ def term_notes(
     related: Iterable[str] = (),
     human_note: str | None = None,
     penalized: bool = False,
+    basis: str = "step",
 ) -> tuple[str, ...]:
     """The notes of one term, in reading order: the human note from the spec (unchanged), the effect in
     words, the expected sign, a penalty caveat, an interval that includes no effect, collinearity
@@ -80,16 +96,16 @@ def term_notes(
     that must be read with it.
 
     `kind` is "numeric" or "boolean" (an indicator is read as 1 rather than 0, ignoring `step`);
-    `unit_phrase` names `step` units, e.g. "years of firm age" for "each 5 more years of firm age".
+    `unit_phrase` names `step` units, e.g. "years of firm age" for "each 5 more years of firm age";
+    `basis` "sd" says the step is one training standard deviation (see `effect_step`).
     """
     notes = [human_note] if human_note else []
-    notes.append(_reading(name, family, target, effect(family, estimate, ci_low, ci_high, 1.0 if kind == "boolean" else step),
-                          kind, unit_phrase))
+    size = effect(family, estimate, ci_low, ci_high, 1.0 if kind == "boolean" else step, basis)
+    notes.append(_reading(name, family, target, size, kind, unit_phrase))
     if expect:
         notes.append(_expectation(expect, estimate))
     if penalized:
-        caveat = "fitted with a penalty: the estimate is shrunk toward zero"
-        notes.append(f"{caveat} and its 95% interval is not a valid Wald interval" if ci_low is not None else caveat)
+        notes.append(PENALIZED_TERM)
     if ci_low is not None and ci_high is not None and ci_low <= 0 <= ci_high:
         notes.append(_no_effect(family, p_value))
     if vif is not None and vif > VIF_MODERATE:
@@ -101,9 +117,16 @@ def term_notes(
     return tuple(notes)
 
 
+# A penalty shrinks the coefficients jointly: with correlated terms one estimate may grow or change sign.
+PENALIZED_TERM = ("fitted with a penalty, which shrinks the coefficients together rather than each toward zero "
+                  "(with correlated terms an estimate may grow or change sign): there is no valid 95% interval or p-value")
+
+
 def _reading(name: str, family: str, target: str, size: Effect, kind: str, unit_phrase: str | None) -> str:
     if kind == "boolean":
         subject = f"{words(name)} (1 rather than 0)"
+    elif size.basis == "sd":
+        subject = f"each increase of one training standard deviation ({_step(size.step)}) in {words(name)}"
     elif unit_phrase:
         subject = f"each {_step(size.step)} more {unit_phrase}"
     elif size.step == 1:
@@ -111,6 +134,9 @@ def _reading(name: str, family: str, target: str, size: Effect, kind: str, unit_
     else:
         subject = f"each increase of {_step(size.step)} in {words(name)}"
     signed = size.kind == "difference"
+    if not math.isfinite(size.value) or (not signed and size.value == 0):  # exp overflowed or underflowed
+        return (f"{subject} changes the prediction by more than a double can hold: the step is far too large for this "
+                "estimate; give a smaller step for this term in the spec")
     if family == "binomial":
         verb = f"multiplies the odds of {words(target)} by {figure(size.value)}"
     elif family == "poisson":
@@ -118,7 +144,7 @@ def _reading(name: str, family: str, target: str, size: Effect, kind: str, unit_
     else:
         verb = f"changes {words(target)} by {figure(size.value, signed)}"
     interval = ""
-    if size.low is not None and size.high is not None:
+    if size.low is not None and size.high is not None and math.isfinite(size.low) and math.isfinite(size.high):
         interval = f" (95% interval {figure(size.low, signed)} to {figure(size.high, signed)})"
     return f"{subject} {verb}{interval}, other terms held fixed"
 
@@ -136,10 +162,12 @@ def _no_effect(family: str, p_value: float | None) -> str:
 
 
 def _collinearity(vif: float) -> str:
+    # The VIF is taken at the fitted IRLS weights (as from the coefficient covariance), see `CONVENTIONS`.
     if vif > VIF_STRONG:
-        return (f"VIF {vif:.1f} is above {VIF_STRONG:g}: strong collinearity with other terms makes the estimate "
-                "unstable and its interval wide")
-    return f"VIF {vif:.1f} is above {VIF_MODERATE:g}: moderate collinearity with other terms widens the interval"
+        return (f"weighted VIF {vif:.1f} is above {VIF_STRONG:g}: collinearity with other terms multiplies the "
+                f"variance of the estimate by {vif:.1f}, making it unstable and its interval wide")
+    return (f"weighted VIF {vif:.1f} is above {VIF_MODERATE:g}: collinearity with other terms multiplies the variance "
+            f"of the estimate by {vif:.1f} and widens the interval")
 
 
 def _listing(names: list[str]) -> str:
@@ -186,7 +214,8 @@ def model_reading(
     if not converged:
         sentences.append("The fit did not converge: do not use these estimates.")
     if penalized:
-        sentences.append("It was fitted with a penalty, so its intervals and p-values are not valid Wald inference.")
+        sentences.append("It was fitted with a penalty, which shrinks the coefficients together: it has no valid "
+                         "intervals or p-values, and its AIC and BIC count the effective degrees of freedom.")
     rows = metrics.get("rows", 0)
     if not rows:
         sentences.append("No rows were held out, so there are no holdout metrics.")

@@ -128,6 +128,16 @@ def optional(kind: Kind) -> Kind:
     return check
 
 
+def either(first: Kind, second: Kind) -> Kind:
+    """A value of the first kind or, failing that, of the second (its refusal is the one reported)."""
+    def check(value, path: str) -> None:
+        try:
+            first(value, path)
+        except Refusal:
+            second(value, path)
+    return check
+
+
 def listing(kind: Kind) -> Kind:
     def check(value, path: str) -> None:
         if not isinstance(value, list):
@@ -167,6 +177,7 @@ def record(required: dict[str, Kind], optional_keys: dict[str, Kind] | None = No
 
 
 OPTIONAL_NUMBER = optional(NUMBER)
+WEIGHTS = optional(either(NAME, record({"column": NAME, "kind": one_of("frequency")})))
 FAMILY = one_of(*LINKS)
 HOLDOUT = record({"salt": TEXT}, {"fraction": NUMBER, "column": NAME,
                                    "from": _scalar("must be a date like 2025-07-01 or a finite number",
@@ -177,7 +188,8 @@ PROFILE = record({
     "count": COUNT, "nulls": COUNT, "mean": OPTIONAL_NUMBER, "sd": OPTIONAL_NUMBER, "min": OPTIONAL_NUMBER,
     "max": OPTIONAL_NUMBER, "median": OPTIONAL_NUMBER, "edges": listing(NUMBER), "shares": listing(NUMBER),
 })
-EFFECT = record({"kind": TEXT, "step": NUMBER, "value": RATIO, "low": optional(RATIO), "high": optional(RATIO)})
+EFFECT = record({"kind": TEXT, "step": NUMBER, "value": RATIO, "low": optional(RATIO), "high": optional(RATIO)},
+                {"basis": one_of("step", "sd", "indicator")})
 TERM = record(
     {"name": TERM_NAME, "estimate": NUMBER, "std_error": OPTIONAL_NUMBER, "statistic": OPTIONAL_NUMBER,
      "p_value": OPTIONAL_NUMBER, "ci_low": OPTIONAL_NUMBER, "ci_high": OPTIONAL_NUMBER},
@@ -190,6 +202,7 @@ ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout":
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
     "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG,
+    "effective_df": NUMBER, "observations": NUMBER, "conventions": mapping(NAME, TEXT), "pearson_chi2": NUMBER, "pearson_dispersion": NUMBER,
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
 METRICS = record({}, {
@@ -207,7 +220,7 @@ CROSSVAL = record(
 )
 # compiler.fit_dependencies as written; files fitted before a dependency was recorded lack it.
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
-    "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "offset": optional(TEXT), "weights": optional(NAME),
+    "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "offset": optional(TEXT), "weights": WEIGHTS,
     "holdout": HOLDOUT, "penalty": PENALTY, "folds": COUNT, "threshold": NUMBER, "max_dropped": NUMBER,
     "expect": mapping(NAME, one_of(*EXPECTATIONS)), "step": mapping(NAME, NUMBER), "notes": mapping(NAME, TEXT),
 })
@@ -215,7 +228,7 @@ FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads
 FORMAT = one_of(FORMAT_VERSION)
 FITTED = record(
     {"model": NAME, "fingerprint": FINGERPRINT, "input": NAME, "key": NAME, "target": NAME, "family": FAMILY,
-     "link": one_of(*LINKS.values()), "offset": optional(TEXT), "weights": optional(NAME), "holdout": HOLDOUT,
+     "link": one_of(*LINKS.values()), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
     {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "warnings": listing(TEXT), "format": FORMAT},

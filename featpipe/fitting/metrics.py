@@ -29,10 +29,12 @@ from ..sqlgen.profile import (
 
 
 def holdout_metrics(
-    engine: Engine, layout: DesignLayout, family: str, coefficients: Mapping[str, float], threshold: float
+    engine: Engine, layout: DesignLayout, family: str, coefficients: Mapping[str, float], threshold: float,
+    counted: bool = False,
 ) -> dict:
-    """Metrics of the model `coefficients` on the held-out complete rows, unweighted (prior weights are
-    a fitting device; a metric counts each held-out row once).
+    """Metrics of the model `coefficients` on the held-out complete rows, unweighted (variance weights are
+    a fitting device; a metric counts each held-out row once), or with `counted` (frequency weights) as
+    the rows the weights stand for: every count and sum is that of the rows repeated.
 
     binomial: rows, events, accuracy (predicted an event when the probability is >= `threshold`),
     baseline_accuracy (always predicting the holdout's majority class), precision, recall, auc
@@ -44,15 +46,15 @@ def holdout_metrics(
     with one class only) is None. With no held-out rows (holdout fraction 0) the result is {"rows": 0}.
     """
     if family == "binomial":
-        metrics = _binomial(engine.fetch(binomial_summary_query(layout, coefficients, threshold))[0])
+        metrics = _binomial(engine.fetch(binomial_summary_query(layout, coefficients, threshold, counted))[0])
     else:
-        metrics = _regression(engine.fetch(regression_summary_query(layout, family, coefficients))[0])
+        metrics = _regression(engine.fetch(regression_summary_query(layout, family, coefficients, counted))[0])
     if metrics["rows"] == 0:
         return {"rows": 0}
     metrics["calibration"] = [
         {"decile": int(decile), "rows": int(rows), "mean_predicted": float(predicted) / int(rows),
          "mean_observed": float(observed) / int(rows)}
-        for decile, rows, predicted, observed in engine.fetch(calibration_query(layout, family, coefficients))
+        for decile, rows, predicted, observed in engine.fetch(calibration_query(layout, family, coefficients, counted))
     ]
     return metrics
 
@@ -62,7 +64,7 @@ def _ratio(numerator: int, denominator: int) -> float | None:
 
 
 def _binomial(row: tuple) -> dict:
-    rows = int(row[0])
+    rows = int(row[0] or 0)  # a SUM over no rows is NULL
     if rows == 0:
         return {"rows": 0}
     events, predicted_events, true_positives, twice_rank_sum = (int(value) for value in row[1:5])
@@ -85,7 +87,7 @@ def _binomial(row: tuple) -> dict:
 
 
 def _regression(row: tuple) -> dict:
-    rows = int(row[0])
+    rows = int(row[0] or 0)  # a SUM over no rows is NULL
     if rows == 0:
         return {"rows": 0}
     observed_sum, predicted_sum, absolute_sum, squared_sum, deviance_sum = (float(value) for value in row[1:6])

@@ -14,7 +14,8 @@ from ..compiler import CompiledModel, CompiledProject, Term
 from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
-from ..fitted.notes import effect, term_notes
+from ..fitted.conventions import conventions
+from ..fitted.notes import effect, effect_step, term_notes
 from ..project import InputSpec
 from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
@@ -59,23 +60,24 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     """Fit one model whose design table is current in `engine`."""
     # numpy and scipy load when a model is fitted, not with the API (`featpipe check` never fits).
     from ..glm import Glm
+    from ..glm.dispersion import pearson_ratio
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
     penalty, l2_choice = chosen_penalty(engine, layout, spec)
-    glm = Glm(spec.family, penalty).fit(engine, layout)
+    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency").fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
         engine, layout,
         {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold)
+    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency")
     intercept, *slopes = glm.coefficients
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     fitted_terms += [
-        _fitted_term(coefficient, term, spec, model, profiles[term.name])
-        for coefficient, term in zip(slopes, model.terms, strict=True)
+        _fitted_term(coefficient, term, spec, model, profiles[term.name], training.sd)
+        for coefficient, term, training in zip(slopes, model.terms, glm.rows.term_profiles, strict=True)
     ]
     return FittedModel(
         model=spec.name,
@@ -86,7 +88,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         family=spec.family,
         link=glm.link,
         offset=model.offset_sql,
-        weights=spec.weights,
+        weights=model.dependencies["weights"],
         holdout=spec.holdout.record(),
         threshold=spec.threshold,
         penalty=spec.penalty.record(),
@@ -103,6 +105,11 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "dispersion": float(glm.goodness_of_fit.dispersion),
             "statistic": glm.statistic_name,
             "penalized": spec.penalty.active,
+            "effective_df": float(glm.goodness_of_fit.effective_df),
+            "observations": float(glm.rows.n),
+            "pearson_chi2": float(glm.goodness_of_fit.pearson_chi2),
+            "pearson_dispersion": float(pearson_ratio(glm.goodness_of_fit.pearson_chi2, glm.rows.df_residual)),
+            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active),
         },
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],
@@ -122,14 +129,14 @@ def _read_columns(compiled: CompiledProject, model: CompiledModel) -> dict[str, 
     return {name: declared[name] for name in sorted(read)}
 
 
-def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: CompiledModel, profile) -> FittedTerm:
+def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: CompiledModel, profile, training_sd=None) -> FittedTerm:
     estimate = coefficient.estimate
     # The fitted file names the Wald figures as the GLM result does; all None for a penalized fit.
     common = dict(estimate=estimate, **coefficient.inference_figures())
     low, high = common["ci_low"], common["ci_high"]
     if term is None:
         return FittedTerm(name=INTERCEPT, **common)
-    step = spec.step.get(term.name, 1.0)
+    step, basis = effect_step(term.kind, spec.step.get(term.name), training_sd)
     others = [t for t in model.terms if t.name != term.name]
     related = sorted(
         {t.name for t in others if set(t.columns) & set(term.columns)}
@@ -140,10 +147,10 @@ def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: Compi
     notes = term_notes(
         name=term.name, family=spec.family, target=spec.target, estimate=estimate, ci_low=low, ci_high=high,
         p_value=common["p_value"], step=step, kind=term.kind, expect=spec.expect.get(term.name), vif=vif, related=related,
-        human_note=spec.notes.get(term.name), penalized=spec.penalty.active,
+        human_note=spec.notes.get(term.name), penalized=spec.penalty.active, basis=basis,
     )
     return FittedTerm(
         name=term.name, **common, fingerprint=term.fingerprint, sql=term.sql, kind=term.kind, doc=term.doc,
         columns=term.columns, built_from=term.built_from,
-        effect=effect(spec.family, estimate, low, high, step), vif=vif, profile=profile, notes=notes,
+        effect=effect(spec.family, estimate, low, high, step, basis), vif=vif, profile=profile, notes=notes,
     )

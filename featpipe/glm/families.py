@@ -51,6 +51,13 @@ class Family(ABC):
     def unit_deviance(self, y: np.ndarray, eta: np.ndarray, mu: np.ndarray) -> np.ndarray:
         """Each row's deviance contribution before its prior weight."""
 
+    def pearson(self, y: np.ndarray, mu: np.ndarray) -> np.ndarray:
+        """Each row's Pearson chi2 (y - mu)^2 / V(mu) before its prior weight; 0 where V(mu) is 0 (the SQL
+        leaves those rows out of the sum)."""
+        variance = self.variance(mu)
+        safe = np.where(variance > 0, variance, 1.0)
+        return np.where(variance > 0, (y - mu) ** 2 / safe, 0.0)
+
     def boundary(self, eta: np.ndarray) -> np.ndarray:
         """Rows whose fitted value is within 1e-10 of the family's boundary."""
         return np.zeros(eta.shape, dtype=bool)

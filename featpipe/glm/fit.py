@@ -44,6 +44,7 @@ from ..sqlgen.statistics import (
     target_counts_query,
 )
 from . import problems
+from .dispersion import overdispersion_warning, pearson_ratio
 from .families import Family, Poisson, get_family
 from .inference import Wald, information_criteria, log_likelihood, wald
 from .irls import AliasedTerms, IrlsResult, run_irls
@@ -62,6 +63,7 @@ from .sources import (
     engine_batches,
     in_memory_batches,
 )
+from .weights import as_repeated_rows
 
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
@@ -77,6 +79,7 @@ class Glm:
     the first training rows read up front; they set the working scaling and, when the table has more
     rows, the warm start. A table sorted by a term gives a poorer warm start (more passes), not a
     different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
+    `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     """
 
     family: str
@@ -87,6 +90,7 @@ class Glm:
     source: str = "auto"
     sample_rows: int = SAMPLE_ROWS
     batch_rows: int = BATCH_ROWS
+    frequency_weights: bool = False
 
     def __post_init__(self) -> None:
         get_family(self.family)  # raises on an unknown family
@@ -157,6 +161,8 @@ class Glm:
             first, profile, constant = problem.statistics.evaluate_with_profile(starts, problem.data.terms)
         else:
             profile, constant = problem.known
+        if self.frequency_weights:
+            profile = as_repeated_rows(profile, problem.data.where)
         warnings = problems.check_training_rows(profile, problem.family, problem.data)
         penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
         try:
@@ -282,7 +288,11 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         warnings.append("the intercept-only model did not converge: the null deviance is approximate")
     if penalty.active:
         warnings.append(problems.penalized_inference(penalty.l2, penalty.l1))
-    parameters = size if penalty.l1 == 0 else 1 + int(np.count_nonzero(model.beta[1:]))
+    pearson = pearson_ratio(statistics.pearson, df_residual)
+    overdispersed = overdispersion_warning(family.name, pearson, binary=profile.not_binary == 0)
+    if overdispersed:
+        warnings.append(overdispersed)
+    parameters = penalty.effective_df(statistics.xtwx, model.beta, profile.weight_sum) if penalty.active else size
     llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, solution.constant)
     aic, bic = information_criteria(llf, parameters, profile.rows)
     return GlmResult(
@@ -299,6 +309,8 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
             aic=float(aic),
             bic=float(bic),
             dispersion=float(dispersion),
+            effective_df=float(parameters),
+            pearson_chi2=float(statistics.pearson),
         ),
         rows=TrainingRows(n=profile.rows, weight_sum=profile.weight_sum, df_residual=df_residual, term_profiles=profile.terms),
         convergence=Convergence(

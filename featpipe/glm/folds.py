@@ -59,7 +59,8 @@ class FoldSource:
         query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models,
                                  eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA, group=self.fold)
         sizes = [len(request.terms) + 1 for request in requests]
-        groups = {int(row[0]): _unpack(row[1:], sizes) for row in self.engine.fetch(query)}
+        # Each row: the fold, every model's sums, then every model's Pearson chi2 (not needed here).
+        groups = {int(row[0]): _unpack(row[1 : len(row) - len(requests)], sizes) for row in self.engine.fetch(query)}
         self.passes += 1
         training = []
         for index, request in enumerate(requests):

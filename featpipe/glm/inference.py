@@ -54,7 +54,7 @@ def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: f
     return -0.5 * deviance
 
 
-def information_criteria(llf: float, parameters: int, rows: int) -> tuple[float, float]:
+def information_criteria(llf: float, parameters: float, rows: float) -> tuple[float, float]:
     """AIC = -2 llf + 2 k (as statsmodels' GLM `aic`: k counts the coefficients, not the scale) and
     BIC = -2 llf + k ln n (statsmodels' `bic_llf`)."""
     return -2.0 * llf + 2.0 * parameters, -2.0 * llf + parameters * math.log(rows)

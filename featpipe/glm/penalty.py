@@ -81,6 +81,23 @@ class ScaledPenalty:
         model_change = -gradient @ delta + 0.5 * delta @ curvature @ delta + self.value(new) - self.value(beta)
         return new, max(-2.0 * total_weight * float(model_change), 0.0)
 
+    def effective_df(self, xtwx: np.ndarray, beta: np.ndarray, total_weight: float) -> float:
+        """The effective degrees of freedom of the fit at `beta`: the trace of its hat matrix,
+        tr((X'WX + P)^-1 X'WX) over the coefficients an l1 penalty leaves nonzero (all of them under l2
+        alone; the count of nonzero coefficients under l1 alone). Without a penalty, the coefficients.
+
+        A penalty shrinks the coefficients together, so the fit spends fewer degrees of freedom than it
+        has coefficients; AIC and BIC of a penalized fit count these instead.
+        """
+        kept = [0] + [j for j in range(1, len(beta)) if beta[j] != 0.0]
+        curvature = xtwx[np.ix_(kept, kept)] / total_weight
+        if not self.active:
+            return float(len(kept))
+        penalized = curvature.copy()
+        squares = self._factors(len(beta) - 1)[np.array(kept[1:], dtype=int) - 1] ** 2
+        penalized[1:, 1:] += np.diag(self.l2 * squares)
+        return float(np.trace(solve_spd(penalized, curvature)))
+
 
 def _coordinate_descent(curvature: np.ndarray, linear: np.ndarray, l2: np.ndarray, l1: np.ndarray, start: np.ndarray) -> np.ndarray:
     """Minimize b'Ab/2 - c'b + sum l2_j b_j^2 / 2 + sum l1_j |b_j| one coordinate at a time

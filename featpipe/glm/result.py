@@ -42,9 +42,11 @@ class GoodnessOfFit:
     deviance: float
     null_deviance: float  # intercept-only model with the same offset and weights
     log_likelihood: float
-    aic: float  # -2 llf + 2 k, k = coefficients (nonzero ones under an l1 penalty)
+    aic: float  # -2 llf + 2 k, k = coefficients (the effective degrees of freedom of a penalized fit)
     bic: float  # -2 llf + k ln n
     dispersion: float  # Pearson chi2 / (n - p) for gaussian, 1 otherwise
+    effective_df: float  # trace of the hat matrix: the coefficients without a penalty, fewer with one
+    pearson_chi2: float  # sum of w (y - mu)^2 / V(mu)
 
 
 @dataclass(frozen=True)

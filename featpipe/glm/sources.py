@@ -15,7 +15,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Protocol
 
 import numpy as np
@@ -76,6 +76,7 @@ class Statistics:
     boundary_rows: int  # fitted value within 1e-10 of 0 or 1 (binomial), below 1e-10 (poisson)
     score: np.ndarray  # sum of w (y - mu) x, shape (q,)
     xtwx: np.ndarray  # X'WX, shape (q, q)
+    pearson: float = math.nan  # Pearson chi2: sum of w (y - mu)^2 / V(mu)
 
 
 class StatisticsSource(Protocol):
@@ -103,7 +104,9 @@ class SqlAggregateSource:
                                  eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA)
         (row,) = self.engine.fetch(query)
         self.passes += 1
-        return _unpack(row, [len(request.terms) + 1 for request in requests])
+        pearson = [np.nan if value is None else float(value) for value in row[len(row) - len(requests):]]
+        unpacked = _unpack(row[: len(row) - len(requests)], [len(request.terms) + 1 for request in requests])
+        return [replace(statistics, pearson=chi2) for statistics, chi2 in zip(unpacked, pearson, strict=True)]
 
 
 def _unpack(row: Sequence, sizes: list[int]) -> list[Statistics]:
@@ -199,7 +202,7 @@ class _Totals:
     """Running sums of one model's statistics."""
 
     def __init__(self, size: int):
-        self.deviance, self.boundary = 0.0, 0
+        self.deviance, self.boundary, self.pearson = 0.0, 0, 0.0
         self.score = np.zeros(size)
         self.xtwx = np.zeros((size, size))
 
@@ -213,9 +216,12 @@ class _Totals:
         weight = family.variance(mu)
         residual = batch.y - mu
         unit = family.unit_deviance(batch.y, eta, mu)
+        pearson = family.pearson(batch.y, mu)
         if batch.weight is not None:
             weight, residual, unit = weight * batch.weight, residual * batch.weight, unit * batch.weight
+            pearson = pearson * batch.weight
         self.deviance += float(unit.sum())
+        self.pearson += float(pearson.sum())
         self.boundary += int(family.boundary(eta).sum())
         self.score[0] += residual.sum()
         self.xtwx[0, 0] += weight.sum()
@@ -227,7 +233,7 @@ class _Totals:
 
     def statistics(self) -> Statistics:
         upper = np.triu(self.xtwx)
-        return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T)
+        return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T, self.pearson)
 
 
 class _ProfileTotals:

@@ -25,6 +25,7 @@ LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}  # each 
 FAMILIES = tuple(LINKS)
 ENGINE_KINDS = ("duckdb", "postgres", "spark")
 EXPECTATIONS = ("positive", "negative")
+WEIGHT_KINDS = ("variance", "frequency")  # a bare `weights: column` is a variance weight
 
 
 @dataclass(frozen=True)
@@ -108,7 +109,7 @@ class ModelSpec:
     family: str
     terms: tuple[str, ...]
     offset: str | None = None
-    weights: str | None = None
+    weights: str | None = None  # the weight column
     penalty: Penalty = Penalty()
     holdout: Holdout = Holdout()
     folds: int = 0  # k-fold cross-validation on the training rows; 0: none
@@ -117,6 +118,7 @@ class ModelSpec:
     step: dict[str, float] = field(default_factory=dict)
     notes: dict[str, str] = field(default_factory=dict)
     max_dropped: float = 0.05  # largest share of rows that may be dropped for NULLs before a fit refuses
+    weight_kind: str = "variance"  # "frequency": a row stands for `weights` identical rows
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
 
     def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
@@ -369,10 +371,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     columns = inputs[input_name].columns if input_name in inputs else {}
     if target and columns and target not in columns:
         diagnostics.append(document.at(("target",), f"target '{target}' is not a column of input '{input_name}'"))
-    weights = data.get("weights")
-    if weights is not None and not isinstance(weights, str):
-        diagnostics.append(document.at(("weights",), f"weights must name one column, not {type(weights).__name__} {weights!r}"))
-        weights = None
+    weights, weight_kind = _weights(document, data.get("weights"), diagnostics)
     if weights is not None and columns and weights not in columns:
         diagnostics.append(document.at(("weights",), f"weights column '{weights}' is not a column of input '{input_name}'"))
     offset = data.get("offset")
@@ -445,7 +444,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     return ModelSpec(
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
         offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
-        expect=expect, step=step, notes=notes, max_dropped=max_dropped, document=document,
+        expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, document=document,
     )
 
 
@@ -488,6 +487,27 @@ def _out_of_time(document, data: dict, columns: dict[str, str], input_name: str,
     diagnostics.append(document.at(("holdout", "column"), f"holdout column '{name}' is {columns[name]}; an out-of-time "
                                    "holdout needs a date, timestamp or numeric column"))
     return Holdout()
+
+
+def _weights(document, value, diagnostics) -> tuple[str | None, str]:
+    """The weight column and its kind from `weights: column` (a variance weight) or
+    `weights: {column: c, kind: frequency|variance}`."""
+    if value is None or isinstance(value, str):
+        return value, "variance"
+    if not isinstance(value, dict):
+        diagnostics.append(document.at(("weights",), f"weights must name one column or be {{column: c, kind: frequency}}, "
+                                                     f"not {type(value).__name__} {value!r}"))
+        return None, "variance"
+    _unknown_keys(document, ("weights",), value, {"column", "kind"}, diagnostics)
+    column, kind = value.get("column"), value.get("kind", "variance")
+    if not isinstance(column, str):
+        diagnostics.append(document.at(("weights",), "weights needs 'column:', the column holding the weight"))
+        column = None
+    if kind not in WEIGHT_KINDS:
+        diagnostics.append(document.at(("weights", "kind"), f"weights kind must be frequency (a row stands for that many "
+                                                            f"identical rows) or variance (a precision weight), not {kind!r}"))
+        kind = "variance"
+    return column, kind
 
 
 def _term_map(document, key: str, data: dict, terms: list[str], diagnostics) -> dict:

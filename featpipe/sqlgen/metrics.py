@@ -26,7 +26,7 @@ ETA_LIMIT = 700.0
 DECILES = 10
 
 # Column names inside the generated queries; term names start with a letter, so these never clash.
-KEY, OBSERVED, ETA, PREDICTED = "_key", "_observed", "_eta", "_predicted"
+KEY, OBSERVED, ETA, PREDICTED, COUNTED = "_key", "_observed", "_eta", "_predicted", "_counted"
 TWICE_RANK, DECILE = "_twice_rank", "_decile"
 
 
@@ -79,21 +79,28 @@ def clamped(eta: exp.Expression) -> exp.Case:
     )
 
 
-def scored_holdout(layout: DesignLayout, family: str, coefficients: Mapping[str, float]) -> exp.Select:
-    """Key, observed target, linear predictor and prediction of every held-out row (a subquery)."""
-    rows = (
-        exp.select(
-            alias(column(layout.key), KEY),
-            alias(column(layout.target), OBSERVED),
-            alias(linear_predictor(layout, coefficients), ETA),
-        )
-        .from_(exp.to_table(layout.table))
-        .where(holdout_rows(layout))
-    )
-    return _over(rows, "_linear", column(KEY), column(OBSERVED), column(ETA), alias(prediction(family, column(ETA)), PREDICTED))
+def scored_holdout(layout: DesignLayout, family: str, coefficients: Mapping[str, float], counted: bool = False) -> exp.Select:
+    """Key, observed target, linear predictor and prediction of every held-out row (a subquery); with
+    `counted`, also the number of rows it stands for (its frequency weight) as _counted."""
+    projections = [
+        alias(column(layout.key), KEY),
+        alias(column(layout.target), OBSERVED),
+        alias(linear_predictor(layout, coefficients), ETA),
+    ]
+    if counted:
+        projections.append(alias(column(layout.weight), COUNTED))
+    rows = exp.select(*projections).from_(exp.to_table(layout.table)).where(holdout_rows(layout))
+    return _over(rows, "_linear", column(KEY), column(OBSERVED), column(ETA), alias(prediction(family, column(ETA)), PREDICTED),
+                 *([column(COUNTED)] if counted else []))
 
 
-def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, float], threshold: float) -> exp.Select:
+def _counted(value: exp.Expression, counted: bool) -> exp.Expression:
+    """A row's share of a sum: `value` itself, or times the rows it stands for."""
+    return exp.Mul(this=column(COUNTED), expression=exp.Paren(this=value)) if counted else value
+
+
+def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, float], threshold: float,
+                           counted: bool = False) -> exp.Select:
     """One row: rows, events, predicted events, true positives, twice the rank sum of the events,
     log-loss sum and squared-error (Brier) sum.
 
@@ -102,15 +109,26 @@ def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, floa
     (rows tied) - 1, is an integer, so the Mann-Whitney sum stays exact. The log loss of a row is
     max(eta, 0) - y * eta + LN(1 + EXP(-|eta|)), which equals -(y ln p + (1 - y) ln(1 - p)) but never
     takes the logarithm of 0 when p rounds to 0 or 1.
+
+    With `counted` (frequency weights) every figure is that of the rows repeated: sums are weighted and
+    twice a row's average rank among the repeated rows is 2 C - T + 1, C the weight of rows predicted
+    at most as high and T that of the rows tied with it (2 RANK() + tied - 1 when every weight is 1).
     """
     y, eta, p = column(OBSERVED), column(ETA), column(PREDICTED)
     by_prediction = exp.Order(expressions=[exp.Ordered(this=column(PREDICTED))])
-    rank = exp.Window(this=exp.Rank(), order=by_prediction)
-    tied = exp.Window(this=exp.Count(this=exp.Star()), partition_by=[column(PREDICTED)])
-    twice_rank = exp.Sub(this=exp.Add(this=exp.Mul(this=exp.Literal.number(2), expression=rank), expression=tied),
-                         expression=exp.Literal.number(1))
-    ranked = _over(scored_holdout(layout, "binomial", coefficients), "_scored",
-                   column(OBSERVED), column(ETA), column(PREDICTED), alias(twice_rank, TWICE_RANK))
+    if counted:
+        through = exp.Window(this=exp.Sum(this=column(COUNTED)), order=by_prediction)  # RANGE frame: ties included
+        tied = exp.Window(this=exp.Sum(this=column(COUNTED)), partition_by=[column(PREDICTED)])
+        twice_rank = exp.Add(this=exp.Sub(this=exp.Mul(this=exp.Literal.number(2), expression=through), expression=tied),
+                             expression=exp.Literal.number(1))
+    else:
+        rank = exp.Window(this=exp.Rank(), order=by_prediction)
+        tied = exp.Window(this=exp.Count(this=exp.Star()), partition_by=[column(PREDICTED)])
+        twice_rank = exp.Sub(this=exp.Add(this=exp.Mul(this=exp.Literal.number(2), expression=rank), expression=tied),
+                             expression=exp.Literal.number(1))
+    ranked = _over(scored_holdout(layout, "binomial", coefficients, counted), "_scored",
+                   column(OBSERVED), column(ETA), column(PREDICTED), alias(twice_rank, TWICE_RANK),
+                   *([column(COUNTED)] if counted else []))
 
     event = exp.EQ(this=y.copy(), expression=number(1.0))
     predicted_event = exp.GTE(this=p.copy(), expression=number(threshold))
@@ -119,18 +137,24 @@ def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, floa
     log_loss = exp.Add(this=exp.Sub(this=positive_part, expression=exp.Mul(this=y.copy(), expression=eta.copy())),
                        expression=softplus_rest)
     error = exp.Paren(this=exp.Sub(this=p.copy(), expression=y.copy()))
+
+    def count_if(condition: exp.Expression) -> exp.Expression:
+        return exp.Sum(this=_counted(exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)), counted))
+
     return exp.select(
-        alias(exp.Count(this=exp.Star()), ROWS),
-        alias(_count_if(event), "events"),
-        alias(_count_if(predicted_event), "predicted_events"),
-        alias(_count_if(exp.and_(predicted_event.copy(), event.copy())), "true_positives"),
-        alias(exp.Sum(this=exp.Case().when(event.copy(), column(TWICE_RANK)).else_(exp.Literal.number(0))), "twice_rank_sum"),
-        alias(exp.Sum(this=log_loss), "log_loss_sum"),
-        alias(exp.Sum(this=exp.Mul(this=error, expression=error.copy())), "squared_error_sum"),
+        alias(exp.Sum(this=column(COUNTED)) if counted else exp.Count(this=exp.Star()), ROWS),
+        alias(count_if(event), "events"),
+        alias(count_if(predicted_event), "predicted_events"),
+        alias(count_if(exp.and_(predicted_event.copy(), event.copy())), "true_positives"),
+        alias(exp.Sum(this=_counted(exp.Case().when(event.copy(), column(TWICE_RANK)).else_(exp.Literal.number(0)), counted)),
+              "twice_rank_sum"),
+        alias(exp.Sum(this=_counted(log_loss, counted)), "log_loss_sum"),
+        alias(exp.Sum(this=_counted(exp.Mul(this=error, expression=error.copy()), counted)), "squared_error_sum"),
     ).from_(ranked.subquery("_ranked"))
 
 
-def regression_summary_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float]) -> exp.Select:
+def regression_summary_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float],
+                             counted: bool = False) -> exp.Select:
     """One row: rows, sums of observed and predicted, of |y - mu|, of (y - mu)^2 and of the unit deviance.
 
     Unit deviance: poisson 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0; gaussian (y - mu)^2.
@@ -151,30 +175,31 @@ def regression_summary_query(layout: DesignLayout, family: str, coefficients: Ma
     else:
         deviance = squared.copy()
     return exp.select(
-        alias(exp.Count(this=exp.Star()), ROWS),
-        alias(exp.Sum(this=y.copy()), "observed_sum"),
-        alias(exp.Sum(this=mu.copy()), "predicted_sum"),
-        alias(exp.Sum(this=exp.Abs(this=residual.copy())), "absolute_error_sum"),
-        alias(exp.Sum(this=squared), "squared_error_sum"),
-        alias(exp.Sum(this=deviance), "deviance_sum"),
-    ).from_(scored_holdout(layout, family, coefficients).subquery("_scored"))
+        alias(exp.Sum(this=column(COUNTED)) if counted else exp.Count(this=exp.Star()), ROWS),
+        alias(exp.Sum(this=_counted(y.copy(), counted)), "observed_sum"),
+        alias(exp.Sum(this=_counted(mu.copy(), counted)), "predicted_sum"),
+        alias(exp.Sum(this=_counted(exp.Abs(this=residual.copy()), counted)), "absolute_error_sum"),
+        alias(exp.Sum(this=_counted(squared, counted)), "squared_error_sum"),
+        alias(exp.Sum(this=_counted(deviance, counted)), "deviance_sum"),
+    ).from_(scored_holdout(layout, family, coefficients, counted).subquery("_scored"))
 
 
-def calibration_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float]) -> exp.Select:
+def calibration_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float], counted: bool = False) -> exp.Select:
     """Per decile of the prediction (NTILE(10) ordered by prediction, then key): rows, sum predicted, sum observed.
 
-    Ordered by decile; a holdout of fewer than ten rows has fewer deciles.
+    Ordered by decile; a holdout of fewer than ten rows has fewer deciles. With `counted` the sums are
+    weighted by the rows each stands for (the deciles still cut the distinct rows).
     """
     order = exp.Order(expressions=[exp.Ordered(this=column(PREDICTED)), exp.Ordered(this=column(KEY))])
     decile = exp.Window(this=exp.Ntile(this=exp.Literal.number(DECILES)), order=order)
-    binned = _over(scored_holdout(layout, family, coefficients), "_scored",
-                   column(OBSERVED), column(PREDICTED), alias(decile, DECILE))
+    binned = _over(scored_holdout(layout, family, coefficients, counted), "_scored",
+                   column(OBSERVED), column(PREDICTED), alias(decile, DECILE), *([column(COUNTED)] if counted else []))
     return (
         exp.select(
             alias(column(DECILE), "decile"),
-            alias(exp.Count(this=exp.Star()), ROWS),
-            alias(exp.Sum(this=column(PREDICTED)), "predicted_sum"),
-            alias(exp.Sum(this=column(OBSERVED)), "observed_sum"),
+            alias(exp.Sum(this=column(COUNTED)) if counted else exp.Count(this=exp.Star()), ROWS),
+            alias(exp.Sum(this=_counted(column(PREDICTED), counted)), "predicted_sum"),
+            alias(exp.Sum(this=_counted(column(OBSERVED), counted)), "observed_sum"),
         )
         .from_(binned.subquery("_binned"))
         .group_by(column(DECILE))

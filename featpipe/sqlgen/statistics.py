@@ -8,8 +8,8 @@ the engine whatever the row count:
   near the mean (the caller passes the mean of a small sample) keeps the variance free of
   cancellation in one pass. (A fit that streams the rows gathers the same sums in numpy instead.)
 - `statistics_query`: per IRLS step and per model, the deviance, X'WX (upper triangle, intercept
-  first), the score X'W(z - eta) = sum of w (y - mu) x and the count of rows whose fitted value lies
-  within 1e-10 of the family's boundary. Terms enter standardized, (x - center) * (1 / scale), with
+  first), the score X'W(z - eta) = sum of w (y - mu) x, the count of rows whose fitted value lies
+  within 1e-10 of the family's boundary, and the Pearson chi2 sum of w (y - mu)^2 / V(mu). Terms enter standardized, (x - center) * (1 / scale), with
   the centers, scales and coefficients as exact DOUBLE literals. The score rather than X'Wz is
   returned because each step then solves for a small correction, which keeps digits that a
   solve for the whole coefficient vector from normal equations loses (X'Wz is X'WX beta + score).
@@ -255,18 +255,21 @@ def statistics_query(
         eta = column(f"_eta{index}")
         mu = eta if family == "gaussian" else column(f"_mu{index}")
         weight, residual, deviance, boundary = _family_parts(family, y, eta, mu, boundary_eta)
+        pearson = pearson_part(family, y, mu)
         if w is not None:
             weight, residual, deviance = _mul(w, weight), _mul(w, exp.Paren(this=residual)), _mul(w, deviance)
+            pearson = _mul(w.copy(), pearson)
         per_row += [
             alias(weight, f"_W{index}"),
             alias(residual, f"_R{index}"),
             alias(deviance, f"_D{index}"),
             alias(boundary, f"_B{index}"),
+            alias(pearson, f"_P{index}"),
         ]
     grouping = [column("_group")] if group is not None else []
     query = _wrap(query, grouping + [column(x[t]) for t in terms] + per_row, "_working")
 
-    # Level 4: the sums.
+    # Level 4: the sums; each model's Pearson chi2 last, after every model's block.
     sums: list[exp.Expression] = []
     for index, model in enumerate(models):
         weight, residual = column(f"_W{index}"), column(f"_R{index}")
@@ -276,6 +279,7 @@ def statistics_query(
         for i, j in upper_pairs(len(design)):
             factors = [weight] + [c for c in (design[i], design[j]) if c is not None]
             sums.append(_sum(_mul(*factors)))
+    sums += [_sum(column(f"_P{index}")) for index in range(len(models))]
     totals = exp.select(*grouping, *sums).from_(query.subquery("_statistics"))
     return totals.group_by(column("_group")) if group is not None else totals
 
@@ -325,6 +329,17 @@ def _family_parts(family: str, y: exp.Expression, eta: exp.Expression, mu: exp.E
         deviance = _mul(two, exp.Paren(this=_sub(softplus, _mul(y.copy(), eta.copy()))))
         flag = exp.or_(flag, exp.GT(this=eta.copy(), expression=number(boundary_eta)))
     return weight, _sub(y.copy(), mu.copy()), deviance, _case(flag, exp.Literal.number(1), exp.Literal.number(0))
+
+
+def pearson_part(family: str, y: exp.Expression, mu: exp.Expression) -> exp.Expression:
+    """(y - mu)^2 / V(mu), a row's Pearson chi2 before its prior weight (NULL, so left out of the SUM, where
+    V(mu) is 0 in floating point)."""
+    residual = exp.Paren(this=_sub(y.copy(), mu.copy()))
+    squared = _mul(residual, residual.copy())
+    if family == "gaussian":
+        return squared
+    variance = mu.copy() if family == "poisson" else _mul(mu.copy(), exp.Paren(this=_sub(number(1.0), mu.copy())))
+    return exp.Div(this=squared, expression=exp.Nullif(this=variance, expression=number(0.0)))
 
 
 def target_counts_query(layout: DesignLayout) -> exp.Select:

@@ -82,7 +82,10 @@ def interval_plot(fitted: FittedModel, name: str) -> str:
         axes.xaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(lambda value, _: f"{value:g}"))
         axes.xaxis.set_minor_formatter(matplotlib.ticker.NullFormatter())
     kind = terms[0].effect.kind if terms else "effect"
-    axes.set_xlabel(f"{kind} per step, with 95% interval (grey: the interval includes no effect)")
+    if any(t.effect.low is not None for t in terms):
+        axes.set_xlabel(f"{kind} per step, with 95% interval (grey: the interval includes no effect)")
+    else:
+        axes.set_xlabel(f"{kind} per step, estimates only (a penalized fit has no intervals)")
     return to_svg(figure, name)
 
 

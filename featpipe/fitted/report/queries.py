@@ -47,7 +47,7 @@ def rows_query(fitted: FittedModel, source: InputSpec, columns: Sequence[str]) -
     complete = exp.and_(
         column(STATUS, SCORED).eq(exp.Literal.string(OK)),
         column(fitted.target, INPUT).is_(exp.null()).not_(),
-        *([column(fitted.weights, INPUT).is_(exp.null()).not_()] if fitted.weights else []),
+        *([column(fitted.weight_column, INPUT).is_(exp.null()).not_()] if fitted.weights else []),
     )
     observed = target_value(fitted.target, source.columns[fitted.target])
     for reference in observed.find_all(exp.Column):

@@ -41,8 +41,12 @@ def coefficients(fitted: FittedModel) -> str:
     clear = [t for t in terms if t.effect.low is not None and not t.effect.low <= no_effect <= t.effect.high]
     strongest = max(terms, key=lambda t: abs(math.log(t.effect.value)) if no_effect == 1.0 and t.effect.value > 0
                     else abs(t.effect.value - no_effect))
-    return (f"{len(clear)} of {len(terms)} terms have a 95% interval that excludes no effect; per the stated steps the "
-            f"largest is {strongest.name} ({strongest.effect.kind} {figure(strongest.effect.value)} per {strongest.effect.step:g}).")
+    largest = (f"per the stated steps the largest is {strongest.name} "
+               f"({strongest.effect.kind} {figure(strongest.effect.value)} per {strongest.effect.step:g}).")
+    if all(t.effect.low is None for t in terms):
+        return ("A penalized fit has no 95% intervals (the penalty shrinks the coefficients together, so Wald inference "
+                f"does not hold): the plot shows the estimates only; {largest}")
+    return f"{len(clear)} of {len(terms)} terms have a 95% interval that excludes no effect; {largest}"
 
 
 def terms(fitted: FittedModel) -> str:
