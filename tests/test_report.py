@@ -146,11 +146,13 @@ def test_metric_values_are_the_fitted_files_as_the_report_formats_them(demos):
     markup = page(demos["compared"])
     risk = read_fitted(demos["lease"].fitted_path("default_risk"))
     raw = read_fitted(demos["lease"].fitted_path("default_raw"))
-    keys = ["accuracy", "baseline_accuracy", "precision", "recall", "auc", "log_loss", "brier"]
+    keys = ["accuracy", "baseline_accuracy", "precision", "recall", "auc", "auc_low", "auc_high", "gini", "ks",
+            "ks_score", "log_loss", "brier", "calibration_intercept", "calibration_slope"]
     model_table = markup.split('id="holdout-metrics"')[1].split("</table>")[0]
     assert cells(model_table, "metric") == {key: metric_text(risk.metrics[key]) for key in keys}
     for fitted in (risk, raw):
-        assert cells(markup, "metric", fitted.model) == {key: metric_text(fitted.metrics[key]) for key in keys}
+        assert cells(markup, "metric", fitted.model) == {**{key: metric_text(fitted.metrics[key]) for key in keys},
+                                                         "threshold": metric_text(fitted.threshold)}
         shown = cells(markup, "fit", fitted.model)
         for key in ("log_likelihood", "deviance", "null_deviance", "aic", "bic"):
             assert shown[key] == metric_text(fitted.fit[key])
@@ -158,7 +160,8 @@ def test_metric_values_are_the_fitted_files_as_the_report_formats_them(demos):
     assert metric_text(0.8017640508703041) == "0.8018" and metric_text(1873.189662245814) == "1,873.19"
 
     claims = read_fitted(demos["fleet"].fitted_path("claim_frequency"))
-    keys = ["deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted"]
+    keys = ["deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted", "calibration_intercept",
+            "calibration_slope"]
     assert cells(page(demos["claims"]), "metric") == {key: metric_text(claims.metrics[key]) for key in keys}
 
 

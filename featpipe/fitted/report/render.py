@@ -19,7 +19,7 @@ from pygments.lexers import SqlLexer
 from .. import FittedModel
 from ..notes import figure
 from . import plots, readings
-from .compare import LikelihoodRatio
+from .compare import Comparison
 from .data import INTEGER, LEVELS, ReportData, roc_points
 
 CURVES_ID = "effect-curves"
@@ -31,8 +31,15 @@ METRICS = {
         ("precision", "precision"),
         ("recall", "recall"),
         ("auc", "AUC"),
+        ("auc_low", "AUC 95% interval, lower end (DeLong)"),
+        ("auc_high", "AUC 95% interval, upper end (DeLong)"),
+        ("gini", "Gini (2 × AUC − 1)"),
+        ("ks", "KS statistic"),
+        ("ks_score", "predicted probability at the KS gap"),
         ("log_loss", "log loss"),
         ("brier", "Brier score"),
+        ("calibration_intercept", "calibration intercept (0 when calibrated)"),
+        ("calibration_slope", "calibration slope (1 when calibrated)"),
     ),
     "regression": (
         ("deviance", "deviance (sum over held-out rows)"),
@@ -40,8 +47,12 @@ METRICS = {
         ("rmse", "root mean squared error"),
         ("mean_observed", "mean observed"),
         ("mean_predicted", "mean predicted"),
+        ("calibration_intercept", "calibration intercept (0 when calibrated)"),
+        ("calibration_slope", "calibration slope (1 when calibrated)"),
     ),
 }
+GAINS = (("rows", "rows"), ("events", "events"), ("event_rate", "event rate"),
+         ("cumulative_event_share", "share of all events caught"), ("lift", "lift"))
 FIT_FIGURES = (
     ("log_likelihood", "log-likelihood"),
     ("deviance", "deviance"),
@@ -91,7 +102,7 @@ class Sources:
     other_warnings: tuple[str, ...] = ()
 
 
-def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | None) -> str:
+def render_report(data: ReportData, sources: Sources, comparison: Comparison | None) -> str:
     fitted, other = data.fitted, data.other
     models = [fitted] + ([other] if other else [])
     formatter = HtmlFormatter(cssclass="sql")
@@ -103,7 +114,7 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
         "rows": _rows(fitted),
         "metrics": _metrics(fitted),
         "offset_html": Markup(highlight(fitted.offset, SqlLexer(), formatter)) if fitted.offset else None,
-        "comparison": _comparison(fitted, other, test) if other else None,
+        "comparison": _comparison(fitted, other, comparison) if other else None,
         "coefficients": _coefficients(fitted),
         "coefficients_reading": readings.coefficients(fitted),
         "interval_svg": Markup(plots.interval_plot(fitted, "intervals")),
@@ -116,6 +127,8 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
         "surface_points": len(data.surface.points) if data.surface else 0,
         "performance_reading": readings.performance(fitted, data.figures),
         "performance": _performance(data),
+        "gains": _gains(fitted),
+        "gains_columns": GAINS,
         "cautions_reading": readings.cautions(fitted, data.inputs),
         "cautions": CAUTIONS,
         "pygments_css": Markup(formatter.get_style_defs(".sql")),
@@ -154,15 +167,31 @@ def _metrics(fitted: FittedModel) -> list[tuple[str, str, str]]:
     return [(key, label, metric_text(fitted.metrics.get(key))) for key, label in _metric_names(fitted.family)]
 
 
-def _comparison(fitted: FittedModel, other: FittedModel, test: LikelihoodRatio) -> dict:
+def _comparison(fitted: FittedModel, other: FittedModel, comparison: Comparison) -> dict:
     metrics = [(key, label, metric_text(fitted.metrics.get(key)), metric_text(other.metrics.get(key)))
                for key, label in _metric_names(fitted.family)]
+    if fitted.family == "binomial":
+        metrics.append(("threshold", "threshold of accuracy, precision and recall", metric_text(fitted.threshold),
+                        metric_text(other.threshold)))
     fit = [(key, label, metric_text(fitted.fit.get(key)), metric_text(other.fit.get(key))) for key, label in FIT_FIGURES]
     fit.insert(0, ("coefficients", "coefficients", metric_text(len(fitted.terms)), metric_text(len(other.terms))))
     fit.insert(1, ("train", "training rows", metric_text(fitted.rows["train"]), metric_text(other.rows["train"])))
-    return {"reading": readings.comparison(fitted, other, test), "metrics": metrics, "fit": fit, "test": test,
+    test, f_test, auc_test = comparison.likelihood_ratio, comparison.f_test, comparison.auc_test
+    return {"reading": readings.comparison(fitted, other, comparison), "metrics": metrics, "fit": fit, "test": test,
             "statistic": metric_text(test.statistic) if test.statistic is not None else None,
-            "p_value": f"{test.p_value:.3g}" if test.p_value is not None else None}
+            "p_value": f"{test.p_value:.3g}" if test.p_value is not None else None,
+            "f_test": f_test, "f_statistic": metric_text(f_test.statistic) if f_test else None,
+            "f_p_value": f"{f_test.p_value:.3g}" if f_test else None,
+            "auc_test": auc_test, "auc_difference": metric_text(auc_test.difference) if auc_test else None,
+            "auc_z": metric_text(auc_test.z) if auc_test else None,
+            "auc_p_value": f"{auc_test.p_value:.3g}" if auc_test else None,
+            "thresholds": comparison.thresholds, "left_out": comparison.left_out}
+
+
+def _gains(fitted: FittedModel) -> list[dict]:
+    """The lift / gains table as printed: one row per decile of the prediction, the highest first."""
+    return [{"decile": entry["decile"], **{key: metric_text(entry[key]) for key, _ in GAINS}}
+            for entry in fitted.metrics.get("gains") or []]
 
 
 def _coefficients(fitted: FittedModel) -> list[dict]:
