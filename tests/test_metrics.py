@@ -9,12 +9,16 @@ the same held-out rows, to 1e-12.
 from __future__ import annotations
 
 import math
+import re
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import statsmodels.api as sm
+import yaml
+from conftest import copy_demo, run_featpipe
+from delong_reference import delong_reference
 from scipy.stats import ks_2samp, norm
 from sklearn.metrics import (
     accuracy_score,
@@ -271,20 +275,6 @@ def test_prediction_is_finite_for_extreme_linear_predictors(bare_engine):
 # --- the metrics a credit reviewer reads --------------------------------------------------------
 
 
-def delong_reference(y: np.ndarray, scores: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """The AUCs and their covariance, written from DeLong, DeLong & Clarke-Pearson (Biometrics 1988)
-    with the pairwise kernel psi(x, y) = 1 if x > y, 1/2 if equal, 0 below (O(n1 n0), numpy)."""
-    events, non_events = y == 1, y == 0
-    v10, v01 = [], []
-    for score in scores:
-        psi = (score[events][:, None] > score[non_events][None, :]) + 0.5 * (score[events][:, None] == score[non_events][None, :])
-        v10.append(psi.mean(axis=1))
-        v01.append(psi.mean(axis=0))
-    aucs = np.array([component.mean() for component in v10])
-    covariance = np.atleast_2d(np.cov(np.array(v10)) / events.sum() + np.cov(np.array(v01)) / non_events.sum())
-    return aucs, covariance
-
-
 def test_gini_and_ks_match_scikit_learn_and_scipy(engine):
     metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
     rows, p = reference_rows(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11)
@@ -405,3 +395,34 @@ def test_a_perfectly_calibrated_model_has_intercept_0_and_slope_1(engine, tmp_pa
     flat = holdout_metrics(engine, layout, "binomial", {INTERCEPT: 0.0, "band": 0.0}, 0.5)
     assert flat["calibration_slope"] is None  # every row has the same linear predictor: no slope to fit
     assert flat["calibration_intercept"] == pytest.approx(0.0, abs=1e-12)  # 6 events in 12 rows, predicted 1/2
+
+
+def test_fit_stores_the_metrics_explain_shows_them_and_reading_checks_them(tmp_path):
+    root = copy_demo("lease_default", tmp_path)
+    assert run_featpipe("fit", "default_risk", "-p", str(root)).returncode == 0
+    path = root / "fitted" / "default_risk.yaml"
+    stored = yaml.safe_load(path.read_text(encoding="utf-8"))["metrics"]
+    for key in ("auc_low", "auc_high", "gini", "ks", "ks_score", "calibration_intercept", "calibration_slope"):
+        assert isinstance(stored[key], float), key
+    assert stored["auc_low"] < stored["auc"] < stored["auc_high"] and stored["gini"] == pytest.approx(2 * stored["auc"] - 1)
+    assert [entry["decile"] for entry in stored["gains"]] == list(range(1, 11))
+
+    explained = run_featpipe("explain", "default_risk", "-p", str(root))
+    assert explained.returncode == 0, explained.stderr
+    assert f"gini {stored['gini']:.4g}" in explained.stdout and f"ks_score {stored['ks_score']:.4g}" in explained.stdout
+    assert "gains by decile of the prediction" in explained.stdout
+    top = stored["gains"][0]
+    assert re.search(rf"│ +1 │ +{top['rows']} │ +{top['events']} │", explained.stdout)
+
+    # A value of the new metrics edited into something else is refused on read, in one line.
+    data = yaml.safe_load(path.read_text(encoding="utf-8"))
+    data["metrics"]["gains"][0]["lift"] = "high"
+    path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
+    refused = run_featpipe("explain", "default_risk", "-p", str(root))
+    assert (refused.returncode, refused.stderr) == (
+        1, "error: fitted/default_risk.yaml: metrics.gains[0].lift must be a finite number, not 'high'; run featpipe fit again\n")
+    data["metrics"]["gains"][0]["lift"] = top["lift"]
+    data["metrics"]["ks"] = float("nan")
+    path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
+    refused = run_featpipe("explain", "default_risk", "-p", str(root))
+    assert refused.returncode == 1 and "metrics.ks must be a finite number, not 'nan'" in refused.stderr
