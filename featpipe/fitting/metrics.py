@@ -114,10 +114,10 @@ def gains_table(deciles: Sequence[tuple[int, int, float, float]]) -> list[dict]:
     events, cumulative_event_share the share of all events caught down to it, lift its event rate over
     the overall one (both None without events)."""
     rows = sum(count for _, count, _, _ in deciles)
-    events = sum(int(round(observed)) for _, _, _, observed in deciles)
+    events = sum(round(observed) for _, _, _, observed in deciles)
     table, caught = [], 0
     for rank, (_, count, _, observed) in enumerate(reversed(deciles), start=1):
-        found = int(round(observed))
+        found = round(observed)
         caught += found
         table.append({
             "decile": rank, "rows": count, "events": found, "event_rate": found / count,

@@ -147,8 +147,8 @@ def compare(fitted: FittedModel, other: FittedModel, shared_rows: tuple[int, int
 def _aic_problem(fitted: FittedModel, other: FittedModel, shared_rows: tuple[int, int, int]) -> str | None:
     this_rows, other_rows, both = shared_rows
     for problem, applies in (
-        (f"the models were not fitted on the same rows ({this_rows:,} and {other_rows:,} training rows, {both:,} in "
-         "common), so their log-likelihoods are not comparable", not this_rows == other_rows == both),
+        ((f"the models were not fitted on the same rows ({this_rows:,} and {other_rows:,} training rows, {both:,} in "
+          "common), so their log-likelihoods are not comparable"), not this_rows == other_rows == both),
         (f"the families differ ({fitted.family} and {other.family}), so their log-likelihoods measure different things",
          fitted.family != other.family),
         ("the weights differ, so the log-likelihoods weigh the rows differently", fitted.weights != other.weights),
