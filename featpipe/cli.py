@@ -226,6 +226,19 @@ def coefficient_table(fitted: FittedModel) -> Table:
     return table
 
 
+def gains_table(fitted: FittedModel) -> Table:
+    """The holdout's lift / gains table: deciles of the prediction from the highest down."""
+    from rich.table import Table
+
+    table = Table(title=f"{fitted.model}: gains by decile of the prediction on {fitted.metrics['rows']} held-out rows")
+    for heading in ("decile", "rows", "events", "event rate", "share of events caught", "lift"):
+        table.add_column(heading, justify="right")
+    for entry in fitted.metrics["gains"]:
+        table.add_row(str(entry["decile"]), str(entry["rows"]), str(entry["events"]), _number(entry["event_rate"]),
+                      _number(entry["cumulative_event_share"]), _number(entry["lift"], 3))
+    return table
+
+
 def _print_fit_summary(fitted: FittedModel) -> None:
     out.print(coefficient_table(fitted))
     fit = fitted.fit
@@ -293,7 +306,10 @@ def explain(
         _print_json(found)
         return
     if found["kind"] == "model":
-        _print_fit_summary(read_fitted(loaded.fitted_path(name)))
+        fitted = read_fitted(loaded.fitted_path(name))
+        _print_fit_summary(fitted)
+        if fitted.metrics.get("gains"):
+            out.print(gains_table(fitted))
         for reason in found["stale"]:
             out.print(f"[red]stale:[/red] {reason}")
         return

@@ -9,11 +9,17 @@ the same held-out rows, to 1e-12.
 from __future__ import annotations
 
 import math
+import re
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+import statsmodels.api as sm
+import yaml
+from conftest import copy_demo, run_featpipe
+from delong_reference import delong_reference
+from scipy.stats import ks_2samp, norm
 from sklearn.metrics import (
     accuracy_score,
     brier_score_loss,
@@ -32,8 +38,10 @@ from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.fitting.metrics import holdout_metrics
 from featpipe.fitted import INTERCEPT
+from featpipe.glm.delong import paired_test
 from featpipe.sqlgen.common import alias, number
 from featpipe.sqlgen.metrics import linear_predictor, prediction
+from featpipe.sqlgen.ranks import rank_components_query, read_rank_sums
 
 TOLERANCE = 1e-12
 ENGINES = {"duckdb": DuckDBEngine, "sqlite": SQLiteEngine}
@@ -166,7 +174,8 @@ def test_binomial_metrics_match_scikit_learn(engine):
     assert len(np.unique(p)) < len(p) / 5  # many tied probabilities: the AUC's tie handling is exercised
 
     assert list(metrics) == ["rows", "events", "accuracy", "baseline_accuracy", "precision", "recall", "auc",
-                             "log_loss", "brier", "calibration"]
+                             "auc_low", "auc_high", "gini", "ks", "ks_score", "log_loss", "brier",
+                             "calibration_intercept", "calibration_slope", "calibration", "gains"]
     assert metrics["rows"] == len(y)
     assert metrics["events"] == int(y.sum())
     expected = {  # scikit-learn's functions on the same held-out rows
@@ -191,7 +200,7 @@ def test_count_and_measurement_metrics_match_scikit_learn(engine, layout, family
     rows, mu = reference_rows(layout, family, coefficients, seed)
     y = rows[layout.target]
     assert list(metrics) == ["rows", "deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted",
-                             "calibration"]
+                             "calibration_intercept", "calibration_slope", "calibration"]
     assert metrics["rows"] == len(y)
     # Deviance summed over rows = scikit-learn's mean deviance times n (gaussian: the squared error).
     mean_deviance = mean_poisson_deviance(y, mu) if family == "poisson" else mean_squared_error(y, mu)
@@ -261,3 +270,159 @@ def test_prediction_is_finite_for_extreme_linear_predictors(bare_engine):
         math.exp(700), math.exp(-700), math.exp(0.5),
         1000.0, -1000.0, 0.5,
     ), rel=TOLERANCE)
+
+
+# --- the metrics a credit reviewer reads --------------------------------------------------------
+
+
+def test_gini_and_ks_match_scikit_learn_and_scipy(engine):
+    metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
+    rows, p = reference_rows(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11)
+    y = rows[BINOMIAL.target]
+    # Gini is 2 AUC - 1 (common practice), with scikit-learn's AUC.
+    assert metrics["gini"] == pytest.approx(2 * roc_auc_score(y, p) - 1, rel=TOLERANCE, abs=TOLERANCE)
+    # KS: scipy's two-sample statistic on the two classes' predicted probabilities, and where it occurs.
+    reference = ks_2samp(p[y == 1], p[y == 0])
+    assert metrics["ks"] == pytest.approx(reference.statistic, rel=TOLERANCE, abs=TOLERANCE)
+    assert metrics["ks_score"] == pytest.approx(reference.statistic_location, rel=TOLERANCE)
+    assert 0.1 < metrics["ks"] < 1
+
+
+def test_the_auc_interval_is_delongs_variance_written_from_the_paper(engine):
+    metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
+    rows, p = reference_rows(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11)
+    (auc,), covariance = delong_reference(rows[BINOMIAL.target], [p])
+    half = norm.ppf(0.975) * math.sqrt(covariance[0, 0])  # scipy's normal quantile
+    assert metrics["auc"] == pytest.approx(auc, rel=TOLERANCE)
+    assert metrics["auc_low"] == pytest.approx(auc - half, rel=1e-10)
+    assert metrics["auc_high"] == pytest.approx(auc + half, rel=1e-10)
+
+
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
+def test_the_auc_interval_of_hanley_and_mcneils_ratings(engine, tmp_path):
+    """The 109 CT images rated 1 (definitely normal) to 5 (definitely abnormal) of Hanley & McNeil
+    (Radiology 1982, table 1; counts recalled from memory): 58 normal, 51 abnormal. Stata's `roctab`
+    manual reports for them (recalled from memory) area 0.8932, DeLong standard error 0.0307 and
+    asymptotic normal 95% interval 0.83295 to 0.95339; the numpy reference from the paper agrees."""
+    normal, abnormal = [33, 6, 6, 11, 2], [3, 2, 2, 11, 33]
+    rating = np.concatenate([np.repeat(np.arange(1.0, 6.0), normal), np.repeat(np.arange(1.0, 6.0), abnormal)])
+    y = np.concatenate([np.zeros(sum(normal)), np.ones(sum(abnormal))])
+    layout = DesignLayout("design_ratings", "image_id", "_target", ("rating",))
+    path = tmp_path / "ratings.parquet"
+    pq.write_table(pa.table({"image_id": np.arange(len(y)), "rating": rating, "_target": y,
+                             "_holdout": np.ones(len(y), dtype=bool)}), path)
+    engine.load_file(layout.table, path)
+    metrics = holdout_metrics(engine, layout, "binomial", {INTERCEPT: -3.0, "rating": 1.0}, 0.5)
+    assert metrics["rows"] == 109 and metrics["events"] == 51
+    assert round(metrics["auc"], 4) == 0.8932
+    assert round(metrics["auc_low"], 5) == 0.83295 and round(metrics["auc_high"], 5) == 0.95339
+    (auc,), covariance = delong_reference(y, [rating])
+    assert metrics["auc_high"] - metrics["auc"] == pytest.approx(norm.ppf(0.975) * math.sqrt(covariance[0, 0]), rel=1e-10)
+
+
+@pytest.mark.parametrize("engine", ENGINE_KINDS, indirect=True)
+def test_delongs_test_of_two_scores_on_the_same_rows_matches_numpy(engine, tmp_path):
+    rng = np.random.default_rng(21)
+    size = 400
+    y = (rng.uniform(size=size) < 0.3).astype(float)
+    first = np.round(y * 0.8 + rng.normal(0, 1, size), 1)  # rounded: ties within and across classes
+    second = np.round(first * 0.5 + rng.normal(0, 1, size), 1)
+    path = tmp_path / "two_scores.parquet"
+    pq.write_table(pa.table({"_observed": y, "first_score": first, "second_score": second}), path)
+    engine.load_file("two_scores", path)
+    rows = exp.select("*").from_(exp.to_table("two_scores"))
+    sums = read_rank_sums(engine.fetch(rank_components_query(rows, ["first_score", "second_score"])), 2)
+    test = paired_test(sums)
+    aucs, covariance = delong_reference(y, [first, second])
+    assert test.auc == pytest.approx(tuple(aucs), rel=TOLERANCE)
+    assert aucs[0] == pytest.approx(roc_auc_score(y, first), rel=TOLERANCE)  # scikit-learn
+    std_error = math.sqrt(covariance[0, 0] + covariance[1, 1] - 2 * covariance[0, 1])
+    assert test.std_error == pytest.approx(std_error, rel=1e-10)
+    assert test.z == pytest.approx((aucs[0] - aucs[1]) / std_error, rel=1e-10)
+    assert test.p_value == pytest.approx(2 * norm.sf(abs(test.z)), rel=1e-10)  # scipy's normal tail
+    assert test.p_value < 0.05 and test.rows == size
+    assert paired_test(read_rank_sums(engine.fetch(rank_components_query(rows, ["first_score", "first_score"])), 2)) is None
+
+
+def test_the_gains_table_matches_numpy_deciles_from_the_top(engine):
+    metrics = holdout_metrics(engine, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.5)
+    rows, p = reference_rows(BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 11)
+    y = rows[BINOMIAL.target]
+    # numpy: sort by prediction then key, split as NTILE(10) does, and read the groups from the top.
+    groups = list(reversed(np.array_split(np.lexsort((rows[BINOMIAL.key], p)), 10)))
+    caught = np.cumsum([y[group].sum() for group in groups])
+    assert [entry["decile"] for entry in metrics["gains"]] == list(range(1, 11))
+    for entry, group, cumulative in zip(metrics["gains"], groups, caught, strict=True):
+        assert (entry["rows"], entry["events"]) == (len(group), int(y[group].sum()))
+        assert entry["event_rate"] == pytest.approx(y[group].mean(), rel=TOLERANCE)
+        assert entry["cumulative_event_share"] == pytest.approx(cumulative / y.sum(), rel=TOLERANCE)
+        assert entry["lift"] == pytest.approx(y[group].mean() / y.mean(), rel=TOLERANCE)
+    assert metrics["gains"][-1]["cumulative_event_share"] == 1.0
+    assert metrics["gains"][0]["lift"] > 1 > metrics["gains"][-1]["lift"]
+
+
+@pytest.mark.parametrize("layout, family, coefficients, seed", TABLES, ids=["binomial", "poisson", "gaussian"])
+def test_calibration_intercept_and_slope_match_statsmodels_recalibration(engine, layout, family, coefficients, seed):
+    metrics = holdout_metrics(engine, layout, family, coefficients, 0.5)
+    rows, _ = reference_rows(layout, family, coefficients, seed)
+    y, eta = rows[layout.target], reference_eta(layout, coefficients, rows)
+    reference_family = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson(), "gaussian": sm.families.Gaussian()}[family]
+    # statsmodels GLMs of the outcome on the linear predictor (Van Calster et al. 2019): eta as an offset
+    # for the intercept, eta as the covariate for the slope.
+    in_the_large = sm.GLM(y, np.ones(len(y)), family=reference_family, offset=eta).fit(tol=1e-14)
+    with_slope = sm.GLM(y, sm.add_constant(eta), family=reference_family).fit(tol=1e-14)
+    assert metrics["calibration_intercept"] == pytest.approx(in_the_large.params[0], rel=1e-9, abs=1e-11)
+    assert metrics["calibration_slope"] == pytest.approx(with_slope.params[1], rel=1e-9)
+
+
+@pytest.mark.parametrize("engine", EMBEDDED, indirect=True)
+def test_a_perfectly_calibrated_model_has_intercept_0_and_slope_1(engine, tmp_path):
+    """Rows whose event share in each group equals the predicted probability (built so here): the
+    recalibration fits' score equations hold at a0 = 0 and (a, b) = (0, 1) exactly."""
+    layout = DesignLayout("design_exact", "row_id", "_target", ("band",))
+    bands, targets = [], []
+    for band, events in ((-1.0, 1), (0.0, 2), (1.0, 3)):  # 4 rows per band; see the probabilities below
+        bands += [band] * 4
+        targets += [1.0] * events + [0.0] * (4 - events)
+    # Probabilities 1/4, 1/2, 3/4 come from eta = ln(1/3), 0, ln(3), i.e. coefficient ln(3) on band.
+    path = tmp_path / "exact.parquet"
+    pq.write_table(pa.table({"row_id": np.arange(12), "band": bands, "_target": targets,
+                             "_holdout": np.ones(12, dtype=bool)}), path)
+    engine.load_file(layout.table, path)
+    metrics = holdout_metrics(engine, layout, "binomial", {INTERCEPT: 0.0, "band": math.log(3)}, 0.5)
+    assert metrics["calibration_intercept"] == pytest.approx(0.0, abs=1e-12)
+    assert metrics["calibration_slope"] == pytest.approx(1.0, rel=1e-12)
+    flat = holdout_metrics(engine, layout, "binomial", {INTERCEPT: 0.0, "band": 0.0}, 0.5)
+    assert flat["calibration_slope"] is None  # every row has the same linear predictor: no slope to fit
+    assert flat["calibration_intercept"] == pytest.approx(0.0, abs=1e-12)  # 6 events in 12 rows, predicted 1/2
+
+
+def test_fit_stores_the_metrics_explain_shows_them_and_reading_checks_them(tmp_path):
+    root = copy_demo("lease_default", tmp_path)
+    assert run_featpipe("fit", "default_risk", "-p", str(root)).returncode == 0
+    path = root / "fitted" / "default_risk.yaml"
+    stored = yaml.safe_load(path.read_text(encoding="utf-8"))["metrics"]
+    for key in ("auc_low", "auc_high", "gini", "ks", "ks_score", "calibration_intercept", "calibration_slope"):
+        assert isinstance(stored[key], float), key
+    assert stored["auc_low"] < stored["auc"] < stored["auc_high"] and stored["gini"] == pytest.approx(2 * stored["auc"] - 1)
+    assert [entry["decile"] for entry in stored["gains"]] == list(range(1, 11))
+
+    explained = run_featpipe("explain", "default_risk", "-p", str(root))
+    assert explained.returncode == 0, explained.stderr
+    assert f"gini {stored['gini']:.4g}" in explained.stdout and f"ks_score {stored['ks_score']:.4g}" in explained.stdout
+    assert "gains by decile of the prediction" in explained.stdout
+    top = stored["gains"][0]
+    assert re.search(rf"│ +1 │ +{top['rows']} │ +{top['events']} │", explained.stdout)
+
+    # A value of the new metrics edited into something else is refused on read, in one line.
+    data = yaml.safe_load(path.read_text(encoding="utf-8"))
+    data["metrics"]["gains"][0]["lift"] = "high"
+    path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
+    refused = run_featpipe("explain", "default_risk", "-p", str(root))
+    assert (refused.returncode, refused.stderr) == (
+        1, "error: fitted/default_risk.yaml: metrics.gains[0].lift must be a finite number, not 'high'; run featpipe fit again\n")
+    data["metrics"]["gains"][0]["lift"] = top["lift"]
+    data["metrics"]["ks"] = float("nan")
+    path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
+    refused = run_featpipe("explain", "default_risk", "-p", str(root))
+    assert refused.returncode == 1 and "metrics.ks must be a finite number, not 'nan'" in refused.stderr

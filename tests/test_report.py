@@ -27,14 +27,16 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import copy_demo
-from scipy.stats import chi2
+from delong_reference import delong_reference
+from scipy.stats import chi2, norm
 
 from featpipe import api
 from featpipe.compiler import dependencies_fingerprint
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted, write_fitted
 from featpipe.fitted.report import report_path, write_report
-from featpipe.fitted.report.compare import likelihood_ratio
+from featpipe.fitted.report import readings
+from featpipe.fitted.report.compare import compare, likelihood_ratio
 from featpipe.fitted.report.data import default_pair, gather, term_inputs
 from featpipe.fitted.report.render import CURVES_ID, metric_text
 from featpipe.fitted.scoring import scoring_model
@@ -146,11 +148,13 @@ def test_metric_values_are_the_fitted_files_as_the_report_formats_them(demos):
     markup = page(demos["compared"])
     risk = read_fitted(demos["lease"].fitted_path("default_risk"))
     raw = read_fitted(demos["lease"].fitted_path("default_raw"))
-    keys = ["accuracy", "baseline_accuracy", "precision", "recall", "auc", "log_loss", "brier"]
+    keys = ["accuracy", "baseline_accuracy", "precision", "recall", "auc", "auc_low", "auc_high", "gini", "ks",
+            "ks_score", "log_loss", "brier", "calibration_intercept", "calibration_slope"]
     model_table = markup.split('id="holdout-metrics"')[1].split("</table>")[0]
     assert cells(model_table, "metric") == {key: metric_text(risk.metrics[key]) for key in keys}
     for fitted in (risk, raw):
-        assert cells(markup, "metric", fitted.model) == {key: metric_text(fitted.metrics[key]) for key in keys}
+        assert cells(markup, "metric", fitted.model) == {**{key: metric_text(fitted.metrics[key]) for key in keys},
+                                                         "threshold": metric_text(fitted.threshold)}
         shown = cells(markup, "fit", fitted.model)
         for key in ("log_likelihood", "deviance", "null_deviance", "aic", "bic"):
             assert shown[key] == metric_text(fitted.fit[key])
@@ -158,7 +162,8 @@ def test_metric_values_are_the_fitted_files_as_the_report_formats_them(demos):
     assert metric_text(0.8017640508703041) == "0.8018" and metric_text(1873.189662245814) == "1,873.19"
 
     claims = read_fitted(demos["fleet"].fitted_path("claim_frequency"))
-    keys = ["deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted"]
+    keys = ["deviance", "mean_absolute_error", "rmse", "mean_observed", "mean_predicted", "calibration_intercept",
+            "calibration_slope"]
     assert cells(page(demos["claims"]), "metric") == {key: metric_text(claims.metrics[key]) for key in keys}
 
 
@@ -449,3 +454,146 @@ def test_a_gaussian_model_gets_its_report_with_residuals_by_decile(demos):
     assert "difference per step" in markup and "Deviance residuals by decile" in markup
     for mine, theirs in zip(shown, holdout_deviance_residual_deciles(project, fitted, sm.families.Gaussian), strict=True):
         assert mine == pytest.approx(theirs, rel=1e-9, abs=1e-9)
+
+
+# --- the trade's metrics and honest comparisons ------------------------------------------------
+
+
+def held_out_frame(project, fitted) -> pd.DataFrame:
+    """The held-out complete rows of the model's design table with the prediction computed by numpy."""
+    connection = duckdb.connect(str(project.engine.path), read_only=True)
+    try:
+        design = connection.execute(f'SELECT * FROM "design_{fitted.model}"').df()
+    finally:
+        connection.close()
+    names = [term.name for term in fitted.terms[1:]]
+    rows = design[design["_holdout"].astype(bool) & design[[fitted.target, *names]].notna().all(axis=1)]
+    b = fitted.coefficients
+    eta = b["(intercept)"] + sum(b[name] * rows[name].to_numpy() for name in names)
+    return pd.DataFrame({fitted.key: rows[fitted.key].to_numpy(), "y": rows[fitted.target].to_numpy(),
+                         "p": 1 / (1 + np.exp(-eta))})
+
+
+def test_delongs_test_in_the_comparison_matches_numpy_on_the_common_held_out_rows(demos):
+    lease = demos["lease"]
+    markup = page(demos["compared"])
+    shown = {name: float(value) for name, value in re.findall(r'data-delong="(\w+)" data-value="([^"]+)"', markup)}
+    risk, raw = (read_fitted(lease.fitted_path(name)) for name in ("default_risk", "default_raw"))
+    both = held_out_frame(lease, risk).merge(held_out_frame(lease, raw), on=risk.key, suffixes=("_risk", "_raw"))
+    assert len(both) == risk.metrics["rows"] == raw.metrics["rows"]
+    # The numpy DeLong written from the paper (tests/delong_reference.py) on the same rows.
+    aucs, covariance = delong_reference(both["y_risk"].to_numpy(), [both["p_risk"].to_numpy(), both["p_raw"].to_numpy()])
+    std_error = math.sqrt(covariance[0, 0] + covariance[1, 1] - 2 * covariance[0, 1])
+    assert shown["difference"] == pytest.approx(aucs[0] - aucs[1], rel=1e-9)
+    assert shown["difference"] == pytest.approx(risk.metrics["auc"] - raw.metrics["auc"], rel=1e-9)
+    assert shown["std_error"] == pytest.approx(std_error, rel=1e-9)
+    assert shown["z"] == pytest.approx((aucs[0] - aucs[1]) / std_error, rel=1e-9)
+    assert shown["p_value"] == pytest.approx(2 * norm.sf(abs(shown["z"])), rel=1e-9)  # scipy's normal tail
+    assert 'id="left-out"' not in markup  # same rows, same family, both unpenalized: every comparison applies
+
+
+def comparison_of(demos, **changes):
+    """compare() of default_risk against default_raw changed by `changes`, on the same rows unless told."""
+    lease = demos["lease"]
+    risk, raw = (read_fitted(lease.fitted_path(name)) for name in ("default_risk", "default_raw"))
+    rows, held = risk.rows["train"], risk.rows["holdout"]
+    shared_rows = changes.pop("shared_rows", (rows, rows, rows))
+    shared_holdout = changes.pop("shared_holdout", (held, held, held))
+    other = dataclasses.replace(raw, **changes)
+    found = compare(risk, other, shared_rows, shared_holdout, None)
+    return found, dict(found.left_out), readings.comparison(risk, other, found)
+
+
+def test_aic_is_offered_only_for_the_same_rows(demos):
+    found, _, reading = comparison_of(demos)
+    risk, raw = (read_fitted(demos["lease"].fitted_path(name)) for name in ("default_risk", "default_raw"))
+    assert found.aic_difference == risk.fit["aic"] - raw.fit["aic"]
+    assert reading.startswith("AIC favours default_risk by")
+    rows = risk.rows["train"]
+    found, left_out, reading = comparison_of(demos, shared_rows=(rows, rows, rows - 40))
+    assert found.aic_difference is None and "AIC favours" not in reading
+    assert left_out["AIC"].startswith("the models were not fitted on the same rows")
+    assert "Left out: AIC, because the models were not fitted on the same rows" in reading
+
+
+def test_aic_and_the_likelihood_ratio_are_left_out_for_a_penalized_model(demos):
+    found, left_out, reading = comparison_of(demos, penalty={"l2": 0.5, "l1": 0.0})
+    assert found.aic_difference is None and found.likelihood_ratio.reason is not None
+    assert "penalty" in left_out["AIC"] and "penalty" in left_out["likelihood-ratio test"]
+    assert "AIC favours" not in reading and "likelihood-ratio statistic" not in reading
+
+
+def test_aic_and_the_likelihood_ratio_are_left_out_for_different_families(demos):
+    found, left_out, _ = comparison_of(demos, family="poisson", link="log")
+    assert found.aic_difference is None
+    assert left_out["AIC"].startswith("the families differ (binomial and poisson)")
+    assert "families differ" in left_out["likelihood-ratio test"]
+
+
+def test_delongs_test_is_left_out_for_different_held_out_rows(demos):
+    held = read_fitted(demos["lease"].fitted_path("default_risk")).rows["holdout"]
+    found, left_out, reading = comparison_of(demos, shared_holdout=(held, held + 12, held - 30))
+    assert found.auc_test is None
+    assert left_out["DeLong's test of the AUCs"].startswith("the models were not measured on the same held-out rows")
+    assert "measured on different held-out rows" in found.thresholds
+
+
+def test_the_comparison_says_accuracy_uses_each_models_own_threshold(demos):
+    same, _, reading = comparison_of(demos)
+    assert "Accuracy, precision and recall use the same threshold, 0.2, for both." in same.thresholds
+    assert same.thresholds in reading and same.thresholds in text_of(page(demos["compared"]))
+    differ, _, reading = comparison_of(demos, threshold=0.5)
+    assert ("Accuracy, precision and recall use each model's own threshold (0.2 for default_risk, 0.5 for "
+            "default_raw): they compare two decision rules, not two scores") in differ.thresholds
+    assert differ.thresholds in reading
+
+
+SMALLER_GAUSSIAN_MODEL = GAUSSIAN_MODEL.replace("terms: [firm_age_years, log_revenue, term_months, sector_health]",
+                                                "terms: [log_revenue, term_months]")
+
+
+def test_nested_gaussian_models_get_the_f_test_beside_the_likelihood_ratio(demos):
+    lease = demos["lease"]
+    specs = {"payment_size": GAUSSIAN_MODEL, "payment_size_small": SMALLER_GAUSSIAN_MODEL}
+    for name, text in specs.items():
+        (lease.root / "specs" / f"{name}.yaml").write_text(text, encoding="utf-8")
+    try:
+        project = api.load_project(lease.root)
+        api.fit(project, list(specs))
+        markup = page(write_report(project, "payment_size", against="payment_size_small"))
+        big, small = (read_fitted(project.fitted_path(name)) for name in specs)
+        connection = duckdb.connect(str(project.engine.path), read_only=True)
+        try:
+            design = connection.execute('SELECT * FROM "design_payment_size"').df()
+        finally:
+            connection.close()
+    finally:
+        for name in specs:
+            (lease.root / "specs" / f"{name}.yaml").unlink()
+    shown = {name: float(value) for name, value in re.findall(r'data-f="(\w+)" data-value="([^"]+)"', markup)}
+    names = [term.name for term in big.terms[1:]]
+    rows = design[~design["_holdout"].astype(bool) & design[["monthly_payment", *names]].notna().all(axis=1)]
+    assert len(rows) == big.rows["train"] == small.rows["train"]
+    # statsmodels' OLS F test of the restricted model on the same rows.
+    larger = sm.OLS(rows["monthly_payment"], sm.add_constant(rows[names])).fit()
+    smaller = sm.OLS(rows["monthly_payment"], sm.add_constant(rows[["log_revenue", "term_months"]])).fit()
+    statistic, p_value, df = larger.compare_f_test(smaller)
+    assert shown["statistic"] == pytest.approx(statistic, rel=1e-7)
+    assert shown["p_value"] == pytest.approx(p_value, rel=1e-6, abs=1e-300)
+    assert re.search(r'<span data-f="df">(\d+)</span>', markup).group(1) == str(int(df)) == "2"
+    assert re.search(r'<span data-f="residual_df">(\d+)</span>', markup).group(1) == str(int(larger.df_resid))
+    assert 'id="likelihood-ratio"' in markup and 'id="delong-test"' not in markup  # DeLong is for binomial pairs
+
+
+def test_the_gains_table_in_the_report_is_the_fitted_files(demos):
+    markup = page(demos["compared"])
+    risk = read_fitted(demos["lease"].fitted_path("default_risk"))
+    table = markup.split('id="gains-table"')[1].split("</table>")[0]
+    shown = re.findall(r'<tr data-decile="(\d+)">(.*?)</tr>', table, re.S)
+    assert [int(decile) for decile, _ in shown] == list(range(1, 11))
+    for (_, row), entry in zip(shown, risk.metrics["gains"], strict=True):
+        assert dict(re.findall(r'data-gains="(\w+)">([^<]*)<', row)) == {
+            key: metric_text(entry[key]) for key in ("rows", "events", "event_rate", "cumulative_event_share", "lift")}
+    # The deciles hold every held-out row and every event, the highest predictions first.
+    assert sum(entry["rows"] for entry in risk.metrics["gains"]) == risk.metrics["rows"]
+    assert sum(entry["events"] for entry in risk.metrics["gains"]) == risk.metrics["events"]

@@ -205,12 +205,17 @@ FIT = record({}, {
     "effective_df": NUMBER, "observations": NUMBER, "conventions": mapping(NAME, TEXT), "pearson_chi2": NUMBER, "pearson_dispersion": NUMBER,
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
+GAINS = record({"decile": COUNT, "rows": COUNT, "events": COUNT, "event_rate": NUMBER,
+                "cumulative_event_share": OPTIONAL_NUMBER, "lift": OPTIONAL_NUMBER})
 METRICS = record({}, {
     "rows": COUNT, "events": COUNT, "accuracy": OPTIONAL_NUMBER, "baseline_accuracy": OPTIONAL_NUMBER,
     "precision": OPTIONAL_NUMBER, "recall": OPTIONAL_NUMBER, "auc": OPTIONAL_NUMBER, "log_loss": OPTIONAL_NUMBER,
     "brier": OPTIONAL_NUMBER, "deviance": OPTIONAL_NUMBER, "mean_absolute_error": OPTIONAL_NUMBER,
     "rmse": OPTIONAL_NUMBER, "mean_observed": OPTIONAL_NUMBER, "mean_predicted": OPTIONAL_NUMBER,
     "calibration": listing(CALIBRATION),
+    "auc_low": OPTIONAL_NUMBER, "auc_high": OPTIONAL_NUMBER, "gini": OPTIONAL_NUMBER, "ks": OPTIONAL_NUMBER,
+    "ks_score": OPTIONAL_NUMBER, "calibration_intercept": OPTIONAL_NUMBER, "calibration_slope": OPTIONAL_NUMBER,
+    "gains": listing(GAINS),
 })
 CROSSVAL = record(
     {"folds": COUNT, "salt": TEXT, "passes": COUNT,

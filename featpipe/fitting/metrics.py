@@ -1,6 +1,8 @@
 """Holdout metrics and training profiles of a fitted model, computed by aggregate queries in the engine.
 
-Only a handful of rows come back: one summary row, at most ten calibration rows, and per profiled
+`scored_rows_metrics` measures a model on any labelled rows it scored (a rows query); `holdout_metrics`
+is that on a design table's held-out rows. Only a handful of rows come back: a few summary rows (the
+recalibration fits take one per Newton step), at most ten calibration rows, and per profiled
 column one moments row and at most eleven order-statistic rows. Counts arrive as exact integers and
 every ratio is formed here from them, so the metrics are the same on every engine; nothing is rounded.
 """
@@ -8,17 +10,21 @@ every ratio is formed here from them, so the metrics are the same on every engin
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 
 from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
 from ..fitted import Profile
+from ..glm.delong import auc_interval
 from ..sqlgen.metrics import (
+    PREDICTED,
     binomial_summary_query,
     calibration_query,
     regression_summary_query,
+    scored_holdout,
+    with_prediction,
 )
 from ..sqlgen.profile import (
     moments_query,
@@ -26,37 +32,103 @@ from ..sqlgen.profile import (
     read_order_statistics,
     read_profiles,
 )
+from ..sqlgen.ranks import ks_query, rank_components_query, read_rank_sums
+from .recalibration import recalibration
 
 
 def holdout_metrics(
     engine: Engine, layout: DesignLayout, family: str, coefficients: Mapping[str, float], threshold: float,
     counted: bool = False,
 ) -> dict:
-    """Metrics of the model `coefficients` on the held-out complete rows, unweighted (variance weights are
-    a fitting device; a metric counts each held-out row once), or with `counted` (frequency weights) as
-    the rows the weights stand for: every count and sum is that of the rows repeated.
+    """Metrics of the model `coefficients` on the held-out complete rows of its design table (see
+    `scored_rows_metrics`); `counted` when the spec's weights are frequency weights."""
+    return scored_rows_metrics(engine, scored_holdout(layout, coefficients, counted), family, threshold, counted)
+
+
+def scored_rows_metrics(engine: Engine, rows: exp.Select, family: str, threshold: float, counted: bool = False) -> dict:
+    """Metrics of a model on `rows`, a query of labelled rows scored by it: KEY, OBSERVED and ETA (the
+    linear predictor), as featpipe.sqlgen.metrics.scored_holdout gives for a design table's holdout.
+    Unweighted (variance weights are a fitting device; a metric counts each row once), or with
+    `counted` (frequency weights, a COUNTED column in `rows`) as the rows the weights stand for: every
+    count and sum is that of the rows repeated. (KS, the AUC interval and the recalibration still
+    count each distinct row once.)
 
     binomial: rows, events, accuracy (predicted an event when the probability is >= `threshold`),
-    baseline_accuracy (always predicting the holdout's majority class), precision, recall, auc
-    (Mann-Whitney with average ranks for tied probabilities), log_loss, brier, calibration.
+    baseline_accuracy (always predicting the majority class), precision, recall, auc (Mann-Whitney
+    with average ranks for tied probabilities) with its 95% interval auc_low and auc_high (DeLong's
+    variance, normal approximation, cut to [0, 1]), gini (2 auc - 1), ks (the largest gap between the
+    cumulative distributions of the predicted probability among events and non-events) and ks_score
+    (the probability where it occurs, the lowest of equal gaps), log_loss, brier.
     poisson and gaussian: rows, deviance (the family's, summed), mean_absolute_error, rmse,
-    mean_observed, mean_predicted, calibration.
-    calibration: one entry per decile of the prediction, {decile, rows, mean_predicted, mean_observed}.
+    mean_observed, mean_predicted.
+    Every family: calibration_intercept and calibration_slope (featpipe.fitting.recalibration; 0 and 1
+    when calibrated); calibration, one entry per decile of the prediction, {decile, rows,
+    mean_predicted, mean_observed}; binomial also gains, the deciles from the highest predictions
+    down, {decile, rows, events, event_rate, cumulative_event_share, lift}.
     A ratio with a zero denominator (precision without predicted events, recall without events, AUC
-    with one class only) is None. With no held-out rows (holdout fraction 0) the result is {"rows": 0}.
+    with one class only) is None. With no rows (holdout fraction 0) the result is {"rows": 0}.
     """
     if family == "binomial":
-        metrics = _binomial(engine.fetch(binomial_summary_query(layout, coefficients, threshold, counted))[0])
+        metrics = _binomial(engine.fetch(binomial_summary_query(rows, threshold, counted))[0])
     else:
-        metrics = _regression(engine.fetch(regression_summary_query(layout, family, coefficients, counted))[0])
+        metrics = _regression(engine.fetch(regression_summary_query(rows, family, counted))[0])
     if metrics["rows"] == 0:
         return {"rows": 0}
+    if family == "binomial":
+        metrics = _with_rank_metrics(engine, rows, metrics)
+    metrics.update(recalibration(engine, rows, family))
+    deciles = [(int(decile), int(count), float(predicted), float(observed))
+               for decile, count, predicted, observed in engine.fetch(calibration_query(rows, family, counted))]
     metrics["calibration"] = [
-        {"decile": int(decile), "rows": int(rows), "mean_predicted": float(predicted) / int(rows),
-         "mean_observed": float(observed) / int(rows)}
-        for decile, rows, predicted, observed in engine.fetch(calibration_query(layout, family, coefficients, counted))
+        {"decile": decile, "rows": count, "mean_predicted": predicted / count, "mean_observed": observed / count}
+        for decile, count, predicted, observed in deciles
     ]
+    if family == "binomial":
+        metrics["gains"] = gains_table(deciles)
     return metrics
+
+
+def _with_rank_metrics(engine: Engine, rows: exp.Select, metrics: dict) -> dict:
+    """`metrics` with the AUC's interval and Gini after the AUC, and KS after those."""
+    auc = metrics["auc"]
+    sums = read_rank_sums(engine.fetch(rank_components_query(with_prediction(rows, "binomial"), [PREDICTED])), 1)
+    interval = auc_interval(sums) if sums is not None else None
+    found = engine.fetch(ks_query(rows))
+    ks = ks_score = None
+    if found and metrics["events"] and metrics["rows"] > metrics["events"]:
+        score, gap, events, non_events = found[0]
+        ks, ks_score = int(gap) / (int(events) * int(non_events)), float(score)
+    ranked = {
+        "auc": auc,
+        "auc_low": interval[0] if interval else None,
+        "auc_high": interval[1] if interval else None,
+        "gini": 2 * auc - 1 if auc is not None else None,
+        "ks": ks,
+        "ks_score": ks_score,
+    }
+    ordered = {}
+    for key, value in metrics.items():
+        ordered.update(ranked if key == "auc" else {key: value})
+    return ordered
+
+
+def gains_table(deciles: Sequence[tuple[int, int, float, float]]) -> list[dict]:
+    """The lift / gains table from the calibration deciles (decile, rows, sum predicted, events), read
+    from the highest predictions down: decile 1 holds the top tenth. event_rate is the decile's share of
+    events, cumulative_event_share the share of all events caught down to it, lift its event rate over
+    the overall one (both None without events)."""
+    rows = sum(count for _, count, _, _ in deciles)
+    events = sum(round(observed) for _, _, _, observed in deciles)
+    table, caught = [], 0
+    for rank, (_, count, _, observed) in enumerate(reversed(deciles), start=1):
+        found = round(observed)
+        caught += found
+        table.append({
+            "decile": rank, "rows": count, "events": found, "event_rate": found / count,
+            "cumulative_event_share": _ratio(caught, events),
+            "lift": (found / count) / (events / rows) if events else None,
+        })
+    return table
 
 
 def _ratio(numerator: int, denominator: int) -> float | None:

@@ -1,6 +1,8 @@
-"""The linear predictor, the prediction and the holdout-metric queries over a design table.
+"""The linear predictor, the prediction and the metric queries over scored rows.
 
-Every metric is an aggregate over the held-out rows, so only a few numbers leave the engine. Counts
+The metric queries read a rows query of three columns, KEY, OBSERVED and ETA (the linear predictor):
+`scored_holdout` gives the held-out rows of a design table; any labelled table scored by a model
+serves as well. Every metric is an aggregate over those rows, so only a few numbers leave the engine. Counts
 come back as integer SUMs (exact), real-valued metrics as SUMs of DOUBLEs; the caller divides. The
 rank-based AUC needs two window functions, and the calibration table one NTILE; their orders end
 with the key, so ties between predictions are broken the same way on every run and engine.
@@ -79,9 +81,13 @@ def clamped(eta: exp.Expression) -> exp.Case:
     )
 
 
-def scored_holdout(layout: DesignLayout, family: str, coefficients: Mapping[str, float], counted: bool = False) -> exp.Select:
-    """Key, observed target, linear predictor and prediction of every held-out row (a subquery); with
-    `counted`, also the number of rows it stands for (its frequency weight) as _counted."""
+def scored_holdout(layout: DesignLayout, coefficients: Mapping[str, float], counted: bool = False) -> exp.Select:
+    """The rows the holdout metrics read: key, observed target and linear predictor of every held-out
+    complete row; with `counted` (frequency weights), also the rows each stands for as COUNTED.
+
+    Every metric query takes such a rows query (columns KEY, OBSERVED, ETA and maybe COUNTED), so the
+    same metrics can be computed on any labelled rows scored by a model, not only on a design table's holdout.
+    """
     projections = [
         alias(column(layout.key), KEY),
         alias(column(layout.target), OBSERVED),
@@ -89,7 +95,11 @@ def scored_holdout(layout: DesignLayout, family: str, coefficients: Mapping[str,
     ]
     if counted:
         projections.append(alias(column(layout.weight), COUNTED))
-    rows = exp.select(*projections).from_(exp.to_table(layout.table)).where(holdout_rows(layout))
+    return exp.select(*projections).from_(exp.to_table(layout.table)).where(holdout_rows(layout))
+
+
+def with_prediction(rows: exp.Select, family: str, counted: bool = False) -> exp.Select:
+    """`rows` (KEY, OBSERVED, ETA, maybe COUNTED) with the prediction through the family's inverse link as PREDICTED."""
     return _over(rows, "_linear", column(KEY), column(OBSERVED), column(ETA), alias(prediction(family, column(ETA)), PREDICTED),
                  *([column(COUNTED)] if counted else []))
 
@@ -99,8 +109,7 @@ def _counted(value: exp.Expression, counted: bool) -> exp.Expression:
     return exp.Mul(this=column(COUNTED), expression=exp.Paren(this=value)) if counted else value
 
 
-def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, float], threshold: float,
-                           counted: bool = False) -> exp.Select:
+def binomial_summary_query(rows: exp.Select, threshold: float, counted: bool = False) -> exp.Select:
     """One row: rows, events, predicted events, true positives, twice the rank sum of the events,
     log-loss sum and squared-error (Brier) sum.
 
@@ -126,7 +135,7 @@ def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, floa
         tied = exp.Window(this=exp.Count(this=exp.Star()), partition_by=[column(PREDICTED)])
         twice_rank = exp.Sub(this=exp.Add(this=exp.Mul(this=exp.Literal.number(2), expression=rank), expression=tied),
                              expression=exp.Literal.number(1))
-    ranked = _over(scored_holdout(layout, "binomial", coefficients, counted), "_scored",
+    ranked = _over(with_prediction(rows, "binomial", counted), "_scored",
                    column(OBSERVED), column(ETA), column(PREDICTED), alias(twice_rank, TWICE_RANK),
                    *([column(COUNTED)] if counted else []))
 
@@ -153,8 +162,7 @@ def binomial_summary_query(layout: DesignLayout, coefficients: Mapping[str, floa
     ).from_(ranked.subquery("_ranked"))
 
 
-def regression_summary_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float],
-                             counted: bool = False) -> exp.Select:
+def regression_summary_query(rows: exp.Select, family: str, counted: bool = False) -> exp.Select:
     """One row: rows, sums of observed and predicted, of |y - mu|, of (y - mu)^2 and of the unit deviance.
 
     Unit deviance: poisson 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0; gaussian (y - mu)^2.
@@ -181,10 +189,10 @@ def regression_summary_query(layout: DesignLayout, family: str, coefficients: Ma
         alias(exp.Sum(this=_counted(exp.Abs(this=residual.copy()), counted)), "absolute_error_sum"),
         alias(exp.Sum(this=_counted(squared, counted)), "squared_error_sum"),
         alias(exp.Sum(this=_counted(deviance, counted)), "deviance_sum"),
-    ).from_(scored_holdout(layout, family, coefficients, counted).subquery("_scored"))
+    ).from_(with_prediction(rows, family, counted).subquery("_scored"))
 
 
-def calibration_query(layout: DesignLayout, family: str, coefficients: Mapping[str, float], counted: bool = False) -> exp.Select:
+def calibration_query(rows: exp.Select, family: str, counted: bool = False) -> exp.Select:
     """Per decile of the prediction (NTILE(10) ordered by prediction, then key): rows, sum predicted, sum observed.
 
     Ordered by decile; a holdout of fewer than ten rows has fewer deciles. With `counted` the sums are
@@ -192,7 +200,7 @@ def calibration_query(layout: DesignLayout, family: str, coefficients: Mapping[s
     """
     order = exp.Order(expressions=[exp.Ordered(this=column(PREDICTED)), exp.Ordered(this=column(KEY))])
     decile = exp.Window(this=exp.Ntile(this=exp.Literal.number(DECILES)), order=order)
-    binned = _over(scored_holdout(layout, family, coefficients, counted), "_scored",
+    binned = _over(with_prediction(rows, family, counted), "_scored",
                    column(OBSERVED), column(PREDICTED), alias(decile, DECILE), *([column(COUNTED)] if counted else []))
     return (
         exp.select(

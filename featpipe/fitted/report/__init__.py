@@ -23,7 +23,7 @@ from .. import FittedModel, file_hash
 from ..current import refuse_if_stale
 from ..evaluations import read_evaluations
 from ..scoring import load_fitted
-from .compare import check_comparable, likelihood_ratio
+from .compare import check_comparable, compare
 
 __all__ = ["write_report", "write_reports", "report_path"]
 
@@ -89,7 +89,8 @@ def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedM
     data = gather(engine, project.inputs[fitted.input], fitted, other, pair)
     warnings = _warnings(fitted, stale[fitted.model], data.figures.train_rows)
     other_warnings = _warnings(other, stale[other.model], data.shared_rows[1]) if other is not None else ()
-    test = likelihood_ratio(fitted, other, data.shared_rows) if other is not None else None
+    comparison = (compare(fitted, other, data.shared_rows, data.shared_holdout, data.auc_sums)
+                  if other is not None else None)
     sources = Sources(
         fitted_hash=file_hash(project.fitted_path(fitted.model)),
         other_hash=file_hash(project.fitted_path(other.model)) if other is not None else None,
@@ -98,7 +99,7 @@ def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedM
         other_warnings=other_warnings,
         evaluations=read_evaluations(project.fitted_path(fitted.model)),
     )
-    return render_report(data, sources, test)
+    return render_report(data, sources, comparison)
 
 
 def _warnings(fitted: FittedModel, stale: tuple[str, ...], train_rows_now: int) -> tuple[str, ...]:

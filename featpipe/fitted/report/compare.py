@@ -1,9 +1,16 @@
-"""Two fits of one target side by side: may they be compared, and the likelihood-ratio test when nested.
+"""Two fits of one target side by side: which comparisons are valid for the pair, their results, and
+the ones left out with the reason.
 
-The likelihood-ratio test compares a model with a larger one that contains all its terms, fitted on
-the same rows: 2 (llf_larger - llf_smaller) follows a chi-squared distribution with as many degrees
-of freedom as the larger model has extra coefficients, when the extra terms add nothing. A term
-belongs to both models only when its fingerprint (its meaning) is the same in both fitted files.
+- AIC compares log-likelihoods, so it needs the same training rows, the same family and weights, and
+  two unpenalized, converged fits (a penalized fit maximizes another objective).
+- The likelihood-ratio test compares a model with a larger one that contains all its terms, fitted on
+  the same rows: 2 (llf_larger - llf_smaller) follows a chi-squared distribution with as many degrees
+  of freedom as the larger model has extra coefficients, when the extra terms add nothing. A term
+  belongs to both models only when its fingerprint (its meaning) is the same in both fitted files.
+- For gaussian models, whose dispersion is estimated, the F test stands beside it:
+  F = ((D_smaller - D_larger) / df) / (D_larger / (n - p_larger)), D the residual sum of squares.
+- DeLong's test of two AUCs needs the same held-out rows (featpipe.glm.delong).
+- Accuracy, precision and recall are read at each model's own threshold, which the comparison says.
 """
 
 from __future__ import annotations
@@ -11,6 +18,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from ...errors import FeatpipeError
+from ...glm.delong import PairedAuc, paired_test
+from ...sqlgen.ranks import RankSums
 from .. import FittedModel
 
 
@@ -85,3 +94,111 @@ def _terms(fitted: FittedModel) -> frozenset[tuple[str, str | None]]:
 
 def _penalized(fitted: FittedModel) -> bool:
     return bool(fitted.fit.get("penalized")) or any(float(value or 0) > 0 for value in fitted.penalty.values())
+
+
+@dataclass(frozen=True)
+class FTest:
+    larger: str
+    smaller: str
+    statistic: float
+    df: int  # extra coefficients of the larger model
+    residual_df: int  # training rows less the larger model's coefficients
+    p_value: float
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """The comparisons valid for a pair of fits, and the ones left out: (what, why) in `left_out`."""
+
+    aic_difference: float | None  # the first model's AIC minus the second's; None when left out
+    likelihood_ratio: LikelihoodRatio
+    f_test: FTest | None
+    auc_test: PairedAuc | None
+    thresholds: str  # how the class metrics of the two models are to be read
+    left_out: tuple[tuple[str, str], ...]
+
+
+def compare(fitted: FittedModel, other: FittedModel, shared_rows: tuple[int, int, int],
+            shared_holdout: tuple[int, int, int], auc_sums: RankSums | None) -> Comparison:
+    """What may be compared between `fitted` and `other`: `shared_rows` and `shared_holdout` count the
+    training and held-out rows of each and of both; `auc_sums` are DeLong's sums of the two models'
+    predictions on their common held-out rows (binomial pairs; None otherwise)."""
+    left_out: list[tuple[str, str]] = []
+    aic_problem = _aic_problem(fitted, other, shared_rows)
+    if aic_problem:
+        left_out.append(("AIC", aic_problem))
+    test = likelihood_ratio(fitted, other, shared_rows)
+    if test.reason:
+        left_out.append(("likelihood-ratio test", test.reason))
+    f_test = None
+    if "gaussian" in (fitted.family, other.family):
+        f_test = _f_test(fitted, other, test)
+        if f_test is None:
+            left_out.append(("F test", test.reason or "it is for two gaussian models"))
+    auc_test = None
+    if fitted.family == other.family == "binomial":
+        auc_test, why = _auc_test(shared_holdout, auc_sums)
+        if why:
+            left_out.append(("DeLong's test of the AUCs", why))
+    return Comparison(None if aic_problem else fitted.fit["aic"] - other.fit["aic"], test, f_test, auc_test,
+                      _thresholds(fitted, other, shared_holdout), tuple(left_out))
+
+
+def _aic_problem(fitted: FittedModel, other: FittedModel, shared_rows: tuple[int, int, int]) -> str | None:
+    this_rows, other_rows, both = shared_rows
+    for problem, applies in (
+        ((f"the models were not fitted on the same rows ({this_rows:,} and {other_rows:,} training rows, {both:,} in "
+          "common), so their log-likelihoods are not comparable"), not this_rows == other_rows == both),
+        (f"the families differ ({fitted.family} and {other.family}), so their log-likelihoods measure different things",
+         fitted.family != other.family),
+        ("the weights differ, so the log-likelihoods weigh the rows differently", fitted.weights != other.weights),
+        ("a model was fitted with a penalty, so its log-likelihood is not a maximum-likelihood one",
+         _penalized(fitted) or _penalized(other)),
+        ("a fit did not converge", not (fitted.fit.get("converged") and other.fit.get("converged"))),
+    ):
+        if applies:
+            return problem
+    return None
+
+
+def _f_test(fitted: FittedModel, other: FittedModel, test: LikelihoodRatio) -> FTest | None:
+    """The F test of the nested gaussian pair `test` describes, or None when the test does not apply."""
+    if test.reason or not fitted.family == other.family == "gaussian":
+        return None
+    from scipy.stats import f
+
+    larger, smaller = (fitted, other) if test.larger == fitted.model else (other, fitted)
+    residual_df = larger.rows["train"] - len(larger.terms)
+    if residual_df <= 0 or not larger.fit["deviance"] > 0:
+        return None
+    statistic = ((smaller.fit["deviance"] - larger.fit["deviance"]) / test.df) / (larger.fit["deviance"] / residual_df)
+    return FTest(larger.model, smaller.model, statistic, test.df, residual_df, float(f.sf(statistic, test.df, residual_df)))
+
+
+def _auc_test(shared_holdout: tuple[int, int, int], auc_sums: RankSums | None) -> tuple[PairedAuc | None, str | None]:
+    this_rows, other_rows, both = shared_holdout
+    if not this_rows == other_rows == both:
+        return None, (f"the models were not measured on the same held-out rows ({this_rows:,} and {other_rows:,}, "
+                      f"{both:,} in common); hold out the same rows (same fraction and salt) to compare their AUCs")
+    if auc_sums is None:
+        return None, "the held-out rows hold one class only"
+    found = paired_test(auc_sums)
+    if found is None:
+        return None, ("the two models order the held-out rows alike, or a class has fewer than two rows, so the "
+                      "difference of their AUCs has no variance to test against")
+    return found, None
+
+
+def _thresholds(fitted: FittedModel, other: FittedModel, shared_holdout: tuple[int, int, int]) -> str:
+    this_rows, other_rows, both = shared_holdout
+    rows = ("Both models' holdout metrics are measured on the same held-out rows."
+            if this_rows == other_rows == both else
+            f"The holdout metrics are measured on different held-out rows ({this_rows:,} and {other_rows:,}, "
+            f"{both:,} in common), so small differences may come from the rows rather than the models.")
+    if not fitted.family == other.family == "binomial":
+        return rows
+    if fitted.threshold == other.threshold:
+        return f"{rows} Accuracy, precision and recall use the same threshold, {fitted.threshold:g}, for both."
+    return (f"{rows} Accuracy, precision and recall use each model's own threshold ({fitted.threshold:g} for "
+            f"{fitted.model}, {other.threshold:g} for {other.model}): they compare two decision rules, not two scores; "
+            "AUC, Gini, KS, log loss and Brier score do not depend on a threshold.")

@@ -26,6 +26,7 @@ from ...engines.base import Engine
 from ...errors import FeatpipeError
 from ...project import InputSpec
 from ...project.names import PREDICTION
+from ...sqlgen.ranks import RankSums, rank_components_query, read_rank_sums
 from .. import FittedModel
 from ..scoring import scoring_contract
 from . import queries
@@ -122,6 +123,8 @@ class ReportData:
     surface_note: str  # why there is no surface, when there is none
     shared_rows: tuple[int, int, int] | None  # training rows of the model, of the other, of both
     inputs: tuple[str, ...] = field(default=())  # raw inputs the terms read, in model order
+    shared_holdout: tuple[int, int, int] | None = None  # held-out rows of the model, of the other, of both
+    auc_sums: RankSums | None = None  # DeLong's sums of both models' predictions on the common held-out rows
 
 
 def term_inputs(fitted: FittedModel) -> list[str]:
@@ -177,11 +180,27 @@ def gather(
             surface = _surface(engine, temporary("surface"), rows_table, source, models, chosen, ranges, held)
             note = ""
         figures = _figures(engine, rows_table, fitted, train, holdout)
-        shared = None
+        shared = shared_holdout = auc_sums = None
         if other is not None:
-            counts = engine.fetch(queries.shared_rows_query(rows_table, fitted.key, queries.rows_query(other, source, [])))[0]
-            shared = tuple(int(value or 0) for value in counts)
-    return ReportData(fitted, other, figures, held, ranges, tuple(curves), surface, note, shared, tuple(inputs))
+            shared, shared_holdout, auc_sums = _shared(engine, rows_table, source, fitted, other)
+    return ReportData(fitted, other, figures, held, ranges, tuple(curves), surface, note, shared, tuple(inputs),
+                      shared_holdout, auc_sums)
+
+
+def _shared(engine: Engine, rows_table: str, source: InputSpec, fitted: FittedModel, other: FittedModel):
+    """Training and held-out rows of each model and of both, and for two binomial models on the same
+    held-out rows DeLong's sums of their predictions there."""
+    other_rows = queries.rows_query(other, source, [])
+    shared, shared_holdout = (
+        tuple(int(value or 0) for value in engine.fetch(queries.shared_rows_query(rows_table, fitted.key, other_rows, held))[0])
+        for held in (False, True)
+    )
+    auc_sums = None
+    if fitted.family == other.family == "binomial" and shared_holdout[0] == shared_holdout[1] == shared_holdout[2] > 0:
+        paired = queries.paired_scores_query(rows_table, fitted.key, other_rows)
+        found = engine.fetch(rank_components_query(paired, [queries.FIRST_SCORE, queries.SECOND_SCORE]))
+        auc_sums = read_rank_sums(found, 2)
+    return shared, shared_holdout, auc_sums
 
 
 @contextlib.contextmanager

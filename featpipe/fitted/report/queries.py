@@ -181,16 +181,33 @@ def residual_deciles_query(table: str, key: str, family: str) -> exp.Select:
     )
 
 
-def shared_rows_query(table: str, key: str, other: exp.Select) -> exp.Select:
-    """One row: training rows of this rows table, of `other` (another model's rows query), and of both."""
-    mine = exp.and_(exp.not_(column(HOLDOUT, "_a")), column(COMPLETE, "_a"))
-    theirs = exp.and_(exp.not_(column(HOLDOUT, "_b")), column(COMPLETE, "_b"))
+def shared_rows_query(table: str, key: str, other: exp.Select, held: bool = False) -> exp.Select:
+    """One row: training rows (held-out rows when `held`) of this rows table, of `other` (another model's
+    rows query), and of both."""
+    mine, theirs = (exp.and_(column(HOLDOUT, side) if held else exp.not_(column(HOLDOUT, side)), column(COMPLETE, side))
+                    for side in ("_a", "_b"))
     return exp.select(
         alias(_count_if(mine), "this"),
         alias(_count_if(theirs), "other"),
         alias(_count_if(exp.and_(mine.copy(), theirs.copy())), "both"),
     ).from_(exp.to_table(table).as_(exp.to_identifier("_a", quoted=True))).join(
         other.subquery(exp.to_identifier("_b", quoted=True)), on=column(key, "_a").eq(column(key, "_b")), join_type="FULL OUTER"
+    )
+
+
+FIRST_SCORE, SECOND_SCORE = "_first_score", "_second_score"
+
+
+def paired_scores_query(table: str, key: str, other: exp.Select) -> exp.Select:
+    """The rows held out and complete for both this rows table and `other`: the observed target and both
+    models' predictions (FIRST_SCORE, SECOND_SCORE)."""
+    both = exp.and_(*(exp.and_(column(HOLDOUT, side), column(COMPLETE, side)) for side in ("_a", "_b")))
+    return (
+        exp.select(alias(column(OBSERVED, "_a"), OBSERVED), alias(column(PREDICTED, "_a"), FIRST_SCORE),
+                   alias(column(PREDICTED, "_b"), SECOND_SCORE))
+        .from_(exp.to_table(table).as_(exp.to_identifier("_a", quoted=True)))
+        .join(other.subquery(exp.to_identifier("_b", quoted=True)), on=column(key, "_a").eq(column(key, "_b")))
+        .where(both)
     )
 
 

@@ -7,7 +7,7 @@ from collections.abc import Sequence
 
 from .. import FittedModel
 from ..notes import figure, model_reading, p_text, words
-from .compare import LikelihoodRatio
+from .compare import Comparison
 from .data import Curve, ModelFigures, Surface
 
 SIGNIFICANCE = 0.05  # common practice
@@ -112,16 +112,32 @@ def performance(fitted: FittedModel, figures: ModelFigures) -> str:
     return f"Observed against predicted on {metrics['rows']:,} held-out rows.{top_text}{spread}"
 
 
-def comparison(fitted: FittedModel, other: FittedModel, test: LikelihoodRatio) -> str:
-    aic = fitted.fit["aic"] - other.fit["aic"]
-    better = fitted.model if aic < 0 else other.model
-    aic_text = f"AIC favours {better} by {figure(abs(aic))}"
-    if test.reason:
-        return f"{aic_text}; no likelihood-ratio test: {test.reason}."
-    verdict = ("so the extra terms improve the fit by more than chance would" if test.p_value < SIGNIFICANCE
-               else "so the data do not show that the extra terms improve the fit")
-    return (f"{test.larger} adds {', '.join(test.extra_terms)} to {test.smaller}: likelihood-ratio statistic "
-            f"{figure(test.statistic)} on {test.df} degrees of freedom, {p_text(test.p_value)}, {verdict}; {aic_text}.")
+def comparison(fitted: FittedModel, other: FittedModel, found: Comparison) -> str:
+    """The comparisons valid for the pair, in words, then the ones left out and why."""
+    sentences = []
+    test = found.likelihood_ratio
+    if found.aic_difference is not None:
+        better = fitted.model if found.aic_difference < 0 else other.model
+        sentences.append(f"AIC favours {better} by {figure(abs(found.aic_difference))}.")
+    if not test.reason:
+        verdict = ("so the extra terms improve the fit by more than chance would" if test.p_value < SIGNIFICANCE
+                   else "so the data do not show that the extra terms improve the fit")
+        sentences.append(f"{test.larger} adds {', '.join(test.extra_terms)} to {test.smaller}: likelihood-ratio statistic "
+                         f"{figure(test.statistic)} on {test.df} degrees of freedom, {p_text(test.p_value)}, {verdict}.")
+    if found.f_test is not None:
+        sentences.append(f"Beside it the F test, which estimates the dispersion: F = {figure(found.f_test.statistic)} on {found.f_test.df} and "
+                         f"{found.f_test.residual_df:,} degrees of freedom, {p_text(found.f_test.p_value)}.")
+    if found.auc_test is not None:
+        paired = found.auc_test
+        differs = ("a difference larger than chance would give" if paired.p_value < SIGNIFICANCE
+                   else "a difference chance alone could give")
+        sentences.append(f"On the same {paired.rows:,} held-out rows the AUCs are {paired.auc[0]:.3f} ({fitted.model}) and "
+                         f"{paired.auc[1]:.3f} ({other.model}); DeLong's test gives z = {paired.z:.2f}, "
+                         f"{p_text(paired.p_value)}: {differs}.")
+    sentences.append(found.thresholds)
+    if found.left_out:
+        sentences.append("Left out: " + "; ".join(f"{what}, because {why}" for what, why in found.left_out) + ".")
+    return " ".join(sentences)
 
 
 def cautions(fitted: FittedModel, inputs: Sequence[str]) -> str:

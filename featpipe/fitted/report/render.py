@@ -20,7 +20,7 @@ from .. import FittedModel
 from ..evaluations import Evaluation, stability_row
 from ..notes import figure
 from . import plots, readings
-from .compare import LikelihoodRatio
+from .compare import Comparison
 from .data import INTEGER, LEVELS, ReportData, roc_points
 
 CURVES_ID = "effect-curves"
@@ -32,8 +32,15 @@ METRICS = {
         ("precision", "precision"),
         ("recall", "recall"),
         ("auc", "AUC"),
+        ("auc_low", "AUC 95% interval, lower end (DeLong)"),
+        ("auc_high", "AUC 95% interval, upper end (DeLong)"),
+        ("gini", "Gini (2 × AUC − 1)"),
+        ("ks", "KS statistic"),
+        ("ks_score", "predicted probability at the KS gap"),
         ("log_loss", "log loss"),
         ("brier", "Brier score"),
+        ("calibration_intercept", "calibration intercept (0 when calibrated)"),
+        ("calibration_slope", "calibration slope (1 when calibrated)"),
     ),
     "regression": (
         ("deviance", "deviance (sum over held-out rows)"),
@@ -41,8 +48,12 @@ METRICS = {
         ("rmse", "root mean squared error"),
         ("mean_observed", "mean observed"),
         ("mean_predicted", "mean predicted"),
+        ("calibration_intercept", "calibration intercept (0 when calibrated)"),
+        ("calibration_slope", "calibration slope (1 when calibrated)"),
     ),
 }
+GAINS = (("rows", "rows"), ("events", "events"), ("event_rate", "event rate"),
+         ("cumulative_event_share", "share of all events caught"), ("lift", "lift"))
 FIT_FIGURES = (
     ("log_likelihood", "log-likelihood"),
     ("deviance", "deviance"),
@@ -93,7 +104,7 @@ class Sources:
     evaluations: tuple[Evaluation, ...] = ()  # fitted/MODEL.evaluations/*.yaml
 
 
-def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | None) -> str:
+def render_report(data: ReportData, sources: Sources, comparison: Comparison | None) -> str:
     fitted, other = data.fitted, data.other
     models = [fitted] + ([other] if other else [])
     formatter = HtmlFormatter(cssclass="sql")
@@ -106,7 +117,7 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
         "metrics": _metrics(fitted),
         "validation": _validation(fitted, sources),
         "offset_html": Markup(highlight(fitted.offset, SqlLexer(), formatter)) if fitted.offset else None,
-        "comparison": _comparison(fitted, other, test) if other else None,
+        "comparison": _comparison(fitted, other, comparison) if other else None,
         "coefficients": _coefficients(fitted),
         "coefficients_reading": readings.coefficients(fitted),
         "interval_svg": Markup(plots.interval_plot(fitted, "intervals")),
@@ -119,6 +130,8 @@ def render_report(data: ReportData, sources: Sources, test: LikelihoodRatio | No
         "surface_points": len(data.surface.points) if data.surface else 0,
         "performance_reading": readings.performance(fitted, data.figures),
         "performance": _performance(data),
+        "gains": _gains(fitted),
+        "gains_columns": GAINS,
         "cautions_reading": readings.cautions(fitted, data.inputs),
         "cautions": CAUTIONS,
         "pygments_css": Markup(formatter.get_style_defs(".sql")),
@@ -180,15 +193,31 @@ def _metrics(fitted: FittedModel) -> list[tuple[str, str, str]]:
     return [(key, label, metric_text(fitted.metrics.get(key))) for key, label in _metric_names(fitted.family)]
 
 
-def _comparison(fitted: FittedModel, other: FittedModel, test: LikelihoodRatio) -> dict:
+def _comparison(fitted: FittedModel, other: FittedModel, comparison: Comparison) -> dict:
     metrics = [(key, label, metric_text(fitted.metrics.get(key)), metric_text(other.metrics.get(key)))
                for key, label in _metric_names(fitted.family)]
+    if fitted.family == "binomial":
+        metrics.append(("threshold", "threshold of accuracy, precision and recall", metric_text(fitted.threshold),
+                        metric_text(other.threshold)))
     fit = [(key, label, metric_text(fitted.fit.get(key)), metric_text(other.fit.get(key))) for key, label in FIT_FIGURES]
     fit.insert(0, ("coefficients", "coefficients", metric_text(len(fitted.terms)), metric_text(len(other.terms))))
     fit.insert(1, ("train", "training rows", metric_text(fitted.rows["train"]), metric_text(other.rows["train"])))
-    return {"reading": readings.comparison(fitted, other, test), "metrics": metrics, "fit": fit, "test": test,
+    test, f_test, auc_test = comparison.likelihood_ratio, comparison.f_test, comparison.auc_test
+    return {"reading": readings.comparison(fitted, other, comparison), "metrics": metrics, "fit": fit, "test": test,
             "statistic": metric_text(test.statistic) if test.statistic is not None else None,
-            "p_value": f"{test.p_value:.3g}" if test.p_value is not None else None}
+            "p_value": f"{test.p_value:.3g}" if test.p_value is not None else None,
+            "f_test": f_test, "f_statistic": metric_text(f_test.statistic) if f_test else None,
+            "f_p_value": f"{f_test.p_value:.3g}" if f_test else None,
+            "auc_test": auc_test, "auc_difference": metric_text(auc_test.difference) if auc_test else None,
+            "auc_z": metric_text(auc_test.z) if auc_test else None,
+            "auc_p_value": f"{auc_test.p_value:.3g}" if auc_test else None,
+            "thresholds": comparison.thresholds, "left_out": comparison.left_out}
+
+
+def _gains(fitted: FittedModel) -> list[dict]:
+    """The lift / gains table as printed: one row per decile of the prediction, the highest first."""
+    return [{"decile": entry["decile"], **{key: metric_text(entry[key]) for key, _ in GAINS}}
+            for entry in fitted.metrics.get("gains") or []]
 
 
 def _coefficients(fitted: FittedModel) -> list[dict]:
