@@ -17,7 +17,6 @@ from sqlglot import exp
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
 from ..fitted import Profile
-from ..glm.delong import auc_interval
 from ..sqlgen.metrics import (
     PREDICTED,
     binomial_summary_query,
@@ -90,6 +89,8 @@ def scored_rows_metrics(engine: Engine, rows: exp.Select, family: str, threshold
 
 def _with_rank_metrics(engine: Engine, rows: exp.Select, metrics: dict) -> dict:
     """`metrics` with the AUC's interval and Gini after the AUC, and KS after those."""
+    from ..glm.delong import auc_interval  # here, not at the top: the glm package loads numpy, which `check` never needs
+
     auc = metrics["auc"]
     sums = read_rank_sums(engine.fetch(rank_components_query(with_prediction(rows, "binomial"), [PREDICTED])), 1)
     interval = auc_interval(sums) if sums is not None else None

@@ -21,7 +21,6 @@ from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
-from .crossval import chosen_penalty, cross_validation
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -61,6 +60,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     # numpy and scipy load when a model is fitted, not with the API (`featpipe check` never fits).
     from ..glm import Glm
     from ..glm.dispersion import pearson_ratio
+    from .crossval import chosen_penalty, cross_validation
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])

@@ -16,11 +16,14 @@ the ones left out with the reason.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 from ...errors import FeatpipeError
-from ...glm.delong import PairedAuc, paired_test
 from ...sqlgen.ranks import RankSums
 from .. import FittedModel
+
+if TYPE_CHECKING:  # the glm package loads numpy, which the API (and so `featpipe check`) never needs
+    from ...glm.delong import PairedAuc
 
 
 @dataclass(frozen=True)
@@ -182,6 +185,8 @@ def _auc_test(shared_holdout: tuple[int, int, int], auc_sums: RankSums | None) -
                       f"{both:,} in common); hold out the same rows (same fraction and salt) to compare their AUCs")
     if auc_sums is None:
         return None, "the held-out rows hold one class only"
+    from ...glm.delong import paired_test
+
     found = paired_test(auc_sums)
     if found is None:
         return None, ("the two models order the held-out rows alike, or a class has fewer than two rows, so the "
