@@ -102,7 +102,7 @@ PROJECT_FILES = {
         "specs/returns.yaml:1:8: 'input' must be one text, not list ['orders']"),
     "a list as a spec's weights": (
         {SPEC: MODEL_YAML + "weights: [items]\n"},
-        "specs/returns.yaml:5:10: weights must name one column, not list ['items']"),
+        "specs/returns.yaml:5:10: weights must name one column or be {column: c, kind: frequency}, not list ['items']"),
     "a list as a key of a mapping": (
         {SPEC: MODEL_YAML + "expect:\n  ? [items, northern]\n  : positive\n"},
         "specs/returns.yaml:6:5: a key must be a name, not a list or a mapping"),
