@@ -178,7 +178,7 @@ ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout":
                   "imputed": mapping(NAME, COUNT)})
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
-    "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG,
+    "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG, "passes": COUNT,
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
 METRICS = record({}, {
