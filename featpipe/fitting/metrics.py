@@ -113,8 +113,8 @@ def training_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str
     and "linear_predictor"), over every row that is not held out, complete or not: `nulls` counts that
     column's NULLs there, the other figures describe its non-NULL values. The order statistics come
     first, whose medians then centre the one-scan moments; on an engine with an exact percentile
-    aggregate (`percentile_profiles`) they take two scans whatever the distinct values, elsewhere one
-    window query over the distinct values of every column.
+    aggregate (`percentile_profiles`) they take two scans (a count, then the values at the needed ranks)
+    whatever the distinct values, elsewhere one window query over the distinct values of every column.
     Quantile rule and median: see featpipe.sqlgen.profile.
     """
     if not columns:
