@@ -2,6 +2,7 @@
 
     .venv/bin/python benchmarks/bench_fit.py --rows 1000000
     .venv/bin/python benchmarks/bench_fit.py --rows 10000000 --keep build/bench10m.duckdb
+    .venv/bin/python benchmarks/bench_fit.py --commands --rows 10000000 --keep build/bench10m.duckdb
 
 A seeded synthetic binomial design table (30% held out, 15 continuous terms on mixed scales with some
 correlation, 10 indicators) is generated inside DuckDB with SQL, so building it never holds the table
@@ -18,6 +19,13 @@ side: seconds, peak RSS, passes over the data, ratios, and the largest relative 
 coefficients. On a shared machine use --repeat: the competitors then run
 interleaved and the fastest run of each is compared. Targets at 10M rows: featpipe time <= half of fetch + fit, peak
 memory <= a fifth.
+
+With --commands it times what a user runs instead, each a child process with its own peak RSS: the
+same rows (all for training, no holdout) written to a parquet file that a project loads, then
+`featpipe compute` (from an empty engine file) and `featpipe fit`, against DuckDB writing the same
+columns from the file to a table with one CREATE TABLE AS, and fetch + scikit-learn on the design
+table `featpipe compute` built. Targets at 10M rows: compute <= 2x the CREATE TABLE AS; fit <= 0.5x
+fetch + scikit-learn in time and <= 0.2x in peak RSS; coefficients equal to 1e-6.
 """
 
 from __future__ import annotations
@@ -141,15 +149,16 @@ def child_featpipe(path: Path, source: str) -> dict:
     }
 
 
-def child_sklearn(path: Path) -> dict:
+def child_sklearn(path: Path, design: DesignLayout | None = None) -> dict:
     from sklearn.linear_model import LogisticRegression
 
+    design = design or layout()
     engine = DuckDBEngine(path, read_only=True)
     start_rss = peak_rss_mb()
     started = time.perf_counter()
-    frame = engine.fetch_frame(design_columns_query(layout()))
+    frame = engine.fetch_frame(design_columns_query(design))
     fetched = time.perf_counter()
-    x = frame[list(layout().terms)].to_numpy()
+    x = frame[list(design.terms)].to_numpy()
     y = frame["_y"].to_numpy()
     model = LogisticRegression(solver="newton-cholesky", C=np.inf).fit(x, y)
     seconds = time.perf_counter() - started
@@ -162,8 +171,127 @@ def child_sklearn(path: Path) -> dict:
 
 def run_child(kind: str, path: Path, source: str = "auto") -> dict:
     command = [sys.executable, __file__, "--child", kind, "--source", source, "--db", str(path)]
-    result = subprocess.run(command, capture_output=True, text=True, check=True)
+    result = subprocess.run(command, capture_output=True, text=True, check=False)
+    if result.returncode != 0:
+        raise SystemExit(f"child {kind} failed:\n{result.stdout}\n{result.stderr[-3000:]}")
     return json.loads(result.stdout.strip().splitlines()[-1])
+
+
+MODEL = "risk"
+INPUT = "rows"
+
+
+def write_project(folder: Path, db: Path) -> Path:
+    """A project whose one input is the bench table's rows as a parquet file and whose model lists its
+    columns as terms: binomial, no holdout (the parquet is written once and kept beside `db`)."""
+    data = db.with_suffix(".parquet")
+    if not data.is_file():
+        engine = DuckDBEngine(db, read_only=True)
+        try:
+            outputs = [column("id"), column("y"), *(column(name) for name in layout().terms)]
+            rows = exp.select(*outputs).from_(TABLE).order_by(column("id"))
+            engine.connection.sql(engine.render(rows)).write_parquet(str(data))
+        finally:
+            engine.close()
+    project = folder / "project"
+    (project / "specs").mkdir(parents=True, exist_ok=True)
+    (project / "terms").mkdir(exist_ok=True)
+    columns = "\n".join(f"      {name}: DOUBLE" for name in ("y", *layout().terms))
+    (project / "featpipe.yaml").write_text(
+        f"name: bench\nengine:\n  kind: duckdb\n  path: build/bench.duckdb\ninputs:\n  {INPUT}:\n    key: id\n"
+        f"    load: {data}\n    columns:\n      id: BIGINT\n{columns}\n"
+    )
+    terms = ", ".join(layout().terms)
+    (project / "specs" / f"{MODEL}.yaml").write_text(
+        f"input: {INPUT}\ntarget: y\nfamily: binomial\nterms: [{terms}]\nholdout: {{fraction: 0.0}}\n"
+    )
+    return project
+
+
+def child_command(project: Path, words: str) -> dict:
+    """`featpipe WORDS -p PROJECT` in this process, as the console script runs it."""
+    from featpipe.cli import main
+
+    started = time.perf_counter()
+    try:
+        main([*words.split(), "-p", str(project)])
+    except SystemExit as done:
+        if done.code:
+            raise
+    return {"seconds": time.perf_counter() - started, "peak_rss_mb": peak_rss_mb()}
+
+
+def child_create_table(project: Path, db: Path) -> dict:
+    """DuckDB writing the model's columns from the input file to a table with one CREATE TABLE AS."""
+    import duckdb
+
+    data = db.with_suffix(".parquet")
+    target = project / "reference.duckdb"
+    target.unlink(missing_ok=True)
+    started = time.perf_counter()
+    connection = duckdb.connect(str(target))
+    connection.read_parquet(str(data)).select(*(duckdb.ColumnExpression(name) for name in ("id", "y", *layout().terms))).create("reference")
+    connection.close()
+    seconds = time.perf_counter() - started
+    target.unlink()
+    return {"seconds": seconds, "peak_rss_mb": peak_rss_mb()}
+
+
+def child_project_sklearn(project: Path) -> dict:
+    """Fetch + scikit-learn on the design table `featpipe compute` built."""
+    import featpipe
+
+    model_layout = featpipe.check(featpipe.load_project(project)).models[MODEL].layout
+    return child_sklearn(project / "build" / "bench.duckdb", model_layout)
+
+
+def run_command_child(kind: str, project: Path, db: Path, words: str = "") -> dict:
+    command = [sys.executable, __file__, "--child", kind, "--project", str(project), "--db", str(db), "--words", words]
+    result = subprocess.run(command, capture_output=True, text=True, check=False)
+    if result.returncode != 0:
+        raise SystemExit(f"child {kind} {words} failed:\n{result.stdout[-3000:]}\n{result.stderr[-3000:]}")
+    return json.loads(result.stdout.strip().splitlines()[-1])
+
+
+def fitted_estimates(project: Path) -> tuple[list[float], int]:
+    """The coefficients and the passes over the data written in the fitted file."""
+    import yaml
+
+    fitted = yaml.safe_load((project / "fitted" / f"{MODEL}.yaml").read_text())
+    return [term["estimate"] for term in fitted["terms"]], int(fitted["fit"].get("passes", 0))
+
+
+def commands(path: Path, folder: Path, repeat: int) -> None:
+    """Time `featpipe compute` and `featpipe fit` against their references; print ratios beside the goals."""
+    project = write_project(folder, path)
+    runs: dict[str, list[dict]] = {"create": [], "compute": [], "fit": [], "sklearn": []}
+    for _ in range(repeat):  # interleaved, so a busy spell on the machine hits every route
+        runs["create"].append(run_command_child("create", project, path))
+        (project / "build" / "bench.duckdb").unlink(missing_ok=True)  # compute from an empty engine file
+        runs["compute"].append(run_command_child("command", project, path, "compute"))
+        runs["fit"].append(run_command_child("command", project, path, "fit"))
+        runs["sklearn"].append(run_command_child("project-sklearn", project, path))
+    best = {name: min(results, key=lambda result: result["seconds"]) for name, results in runs.items()}
+    estimates, passes = fitted_estimates(project)
+    sklearn = best["sklearn"]
+    print(f"training rows: {sklearn['rows']:,}; fastest of {repeat} interleaved run(s) each; "
+          f"load average at the end {os.getloadavg()[0]:.1f}\n")
+    header = f"{'':40}{'seconds':>9}{'peak RSS MB':>13}   all runs (s)"
+    print(header)
+    print("-" * len(header))
+    labels = [("DuckDB CREATE TABLE AS from the file", "create"), ("featpipe compute", "compute"),
+              ("featpipe fit", "fit"), ("pandas fetch + scikit-learn", "sklearn")]
+    for label, name in labels:
+        every = ", ".join(f"{run['seconds']:.1f}" for run in runs[name])
+        print(f"{label:40}{best[name]['seconds']:9.2f}{best[name]['peak_rss_mb']:13.0f}   {every}")
+    print(f"  (scikit-learn: fetch {sklearn['fetch_seconds']:.2f} s, fit {sklearn['seconds'] - sklearn['fetch_seconds']:.2f} s; "
+          f"featpipe fit: {passes} passes over the training rows)")
+    print()
+    print(f"time   featpipe compute / CREATE TABLE AS: {best['compute']['seconds'] / best['create']['seconds']:.3f}   (goal <= 2)")
+    print(f"time   featpipe fit / (fetch + scikit-learn): {best['fit']['seconds'] / sklearn['seconds']:.3f}   (goal <= 0.5)")
+    print(f"memory featpipe fit / (fetch + scikit-learn): {best['fit']['peak_rss_mb'] / sklearn['peak_rss_mb']:.3f}   (goal <= 0.2)")
+    print(f"coefficients, max relative difference: featpipe fit vs scikit-learn "
+          f"{max_relative_difference(estimates, sklearn['coef']):.2e}   (goal <= 1e-6)")
 
 
 def max_relative_difference(a, b) -> float:
@@ -176,10 +304,23 @@ def main() -> None:
     parser.add_argument("--rows", type=int, default=1_000_000, help="rows of the design table (30%% are held out)")
     parser.add_argument("--keep", type=Path, help="DuckDB file to build (or reuse when it has --rows rows) and keep")
     parser.add_argument("--repeat", type=int, default=1, help="interleaved runs of each competitor; the fastest is shown")
-    parser.add_argument("--child", choices=["featpipe", "sklearn"], help=argparse.SUPPRESS)
+    parser.add_argument("--commands", action="store_true",
+                        help="time `featpipe compute` and `featpipe fit` as a user runs them (see above)")
+    parser.add_argument("--child", choices=["featpipe", "sklearn", "command", "create", "project-sklearn"], help=argparse.SUPPRESS)
     parser.add_argument("--source", default="auto", help=argparse.SUPPRESS)
     parser.add_argument("--db", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--project", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--words", default="", help=argparse.SUPPRESS)
     arguments = parser.parse_args()
+    children = {
+        "command": lambda: child_command(arguments.project, arguments.words),
+        "create": lambda: child_create_table(arguments.project, arguments.db),
+        "project-sklearn": lambda: child_project_sklearn(arguments.project),
+    }
+    if arguments.child in children:
+        result = children[arguments.child]()
+        print(json.dumps(result))
+        return
     if arguments.child == "featpipe":
         print(json.dumps(child_featpipe(arguments.db, arguments.source)))
         return
@@ -194,6 +335,9 @@ def main() -> None:
         build_table(path, arguments.rows)
         print(f"design table: {arguments.rows:,} rows x {len(layout().terms)} terms in {path} "
               f"(built or reused in {time.perf_counter() - started:.1f} s)")
+        if arguments.commands:
+            commands(path, Path(folder), arguments.repeat)
+            return
         runs: dict[str, list[dict]] = {"stream": [], "sql": [], "sklearn": []}
         for _ in range(arguments.repeat):  # interleaved, so a busy spell on the machine hits all three
             runs["stream"].append(run_child("featpipe", path, "stream"))

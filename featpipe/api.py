@@ -147,7 +147,7 @@ def refresh(project: Project, progress: Progress | None = None, fitted: Fitted |
         stale = []
         for model in compiled.models.values():
             path = project.fitted_path(model.name)
-            current = builds.get(model.layout.table) == design_signature(project, model)
+            current = builds.get(model.layout.table) == design_signature(project, model, builds)
             if not path.is_file() or staleness(read_fitted(path), model) or not current:
                 stale.append(model)
         outcomes = fit_models(engine, project, compiled, stale, progress, fitted) if stale else []

@@ -27,6 +27,7 @@ from featpipe.engines.arrowfile import open_arrow_file, sql_type
 from featpipe.engines.base import Check
 from featpipe.sqlgen.dates import for_dialect
 from featpipe.errors import EngineError
+from featpipe.sqlgen.common import materialized
 
 MATH_FUNCTIONS = ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
 
@@ -71,7 +72,7 @@ class SQLiteEngine:
         return tuple(name for name in MATH_FUNCTIONS if name not in present)
 
     def render(self, statement: exp.Expression) -> str:
-        return for_dialect(statement, "sqlite").sql(dialect=BacktickSQLite, identify=True)
+        return materialized(for_dialect(statement, "sqlite")).sql(dialect=BacktickSQLite, identify=True)  # as featpipe renders for SQLite
 
     def _run(self, statement: exp.Expression, parameters=()) -> sqlite3.Cursor:
         try:

@@ -85,6 +85,7 @@ def test_bench_score_scores_the_fitted_model_as_pandas_does():
     for route in ("sql", "sql, contributions", "sql, 3 reasons", "pandas"):
         figures(rf"{re.escape(route)} +{{n}} +{{n}} +{{n}} +{{n}}x +{{n}}x", lines)
     figures(r"target: throughput >= 6x pandas: {n}x \((?:met|NOT met)\); memory <= 1/4 of pandas: {n} \((?:met|NOT met)\)", lines)
+    figures(r"target: throughput with 3 reasons >= 3x pandas: {n}x \((?:met|NOT met)\)", lines)
     sql_rows, pandas_rows, difference = figures(
         r"rows scored: sql {n}, pandas {n}; relative difference of the prediction sums {n}", lines)
     assert sql_rows == pandas_rows
@@ -98,6 +99,8 @@ def test_bench_engines_fits_the_same_coefficients_on_duckdb_and_postgres():
 
     for kind in ("duckdb", "postgres"):
         figures(rf"  {kind} +{{n}}x", lines)  # peak RSS at 2,000 rows against 1,000 rows
+        for rows in ("1,000", "2,000"):
+            figures(rf"  {kind} +{rows} rows: fit {{n}} s, scan {{n}} s, fit / scan {{n}}x", lines)
     for rows in ("1,000", "2,000"):
         duckdb_train, duckdb_scored, postgres_train, postgres_scored, difference = figures(
             rf" +{rows} rows: duckdb train {{n}}, scored {{n}}; postgres train {{n}}, scored {{n}}, coefficients {{n}}", lines)

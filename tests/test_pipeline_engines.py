@@ -259,6 +259,7 @@ def test_the_three_engines_fit_the_same_models(duckdb_run, other_run):
                 assert their[number] == pytest.approx(mine[number], rel=1e-9), (other.engine, model, mine["name"], number)
         mine_fit, their_fit = dict(fitted["fit"]), dict(theirs["fit"])
         del mine_fit["iterations"], their_fit["iterations"]
+        del mine_fit["passes"], their_fit["passes"]  # a streamed fit reads the rows fewer times than SQL aggregates
         differences = same_numbers({**fitted, "fit": mine_fit}, {**theirs, "fit": their_fit})
         assert differences == [], (other.engine, model)
 

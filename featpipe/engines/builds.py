@@ -4,6 +4,9 @@ A signature joins the model's fingerprint with a hash of each local data file, s
 rebuilds a design table when a definition or a loaded file changed, and leaves it alone otherwise.
 Tables the engine holds without a `load:` file cannot be hashed cheaply; rebuild them with
 `featpipe compute` when their data changes.
+
+A file's hash is remembered in the record with the file's size and modification time (a row named
+`file:PATH`), so a command reads a large data file again only when one of them changed.
 """
 
 from __future__ import annotations
@@ -18,6 +21,7 @@ from ..sqlgen.common import alias, column
 from .base import Engine
 
 BUILDS_TABLE = "featpipe_builds"
+FILE_ROW = "file:"  # prefix of the rows that remember a data file's hash with its size and modification time
 
 
 def file_signature(path: Path) -> str:
@@ -28,8 +32,28 @@ def file_signature(path: Path) -> str:
     return digest.hexdigest()[:16]
 
 
-def input_signature(source: InputSpec) -> str:
-    return file_signature(source.load) if source.load is not None else "table"
+def file_stamp(path: Path) -> str:
+    """Size and modification time (ns) of `path`: what a change to its bytes changes."""
+    status = path.stat()
+    return f"{status.st_size}:{status.st_mtime_ns}"
+
+
+def input_signature(source: InputSpec, builds: dict[str, str] | None = None) -> str:
+    """The hash of the input's `load:` file ("table" without one). With `builds` (the build record), a
+    file whose size and modification time the record remembers is not read again."""
+    if source.load is None:
+        return "table"
+    stamp, _, signature = (builds or {}).get(FILE_ROW + str(source.load), "").rpartition(" ")
+    if signature and stamp == file_stamp(source.load):
+        return signature
+    return file_signature(source.load)
+
+
+def remember_signature(builds: dict[str, str], source: InputSpec, stamp: str | None, signature: str) -> None:
+    """Record the input file's `signature` with the `stamp` (`file_stamp`) taken before it was hashed, so a
+    file changed while it was read is hashed again next time."""
+    if source.load is not None and stamp is not None:
+        builds[FILE_ROW + str(source.load)] = f"{stamp} {signature}"
 
 
 def read_builds(engine: Engine) -> dict[str, str]:

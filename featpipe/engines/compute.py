@@ -20,7 +20,7 @@ from ..sqlgen.common import render
 from ..sqlgen.design import design_query
 from . import open_engine
 from .base import Engine
-from .builds import input_signature, read_builds, record_builds
+from .builds import file_stamp, input_signature, read_builds, record_builds, remember_signature
 from .contract import check_contract, check_key
 
 Progress = Callable[[str], None]
@@ -50,10 +50,12 @@ def prepare_inputs(
     A file is checked (columns, then key) on its temporary table before it replaces the input's table,
     so a bad file leaves the old table, and `builds` gets the file's signature only once it is in. A
     table without `load:` is checked as it is, key included; a loaded one's key was checked at load.
+    A file whose size and modification time `builds` remembers is not hashed again.
     """
     for name in sorted(inputs):
         source = project.inputs[name]
-        signature = input_signature(source)
+        stamp = file_stamp(source.load) if source.load is not None else None
+        signature = input_signature(source, builds)
         if source.load is None:
             check_contract(source, name, engine.describe(name), engine.name)
             check_key(engine, name, source.key, f"{engine.name} table '{name}'")
@@ -64,6 +66,7 @@ def prepare_inputs(
         else:
             check_contract(source, name, engine.describe(name), engine.name)
         builds[name] = signature
+        remember_signature(builds, source, stamp, signature)
 
 
 def check_loaded_file(engine: Engine, source: InputSpec, shown: str, building: str) -> None:
@@ -72,11 +75,12 @@ def check_loaded_file(engine: Engine, source: InputSpec, shown: str, building: s
     check_key(engine, building, source.key, shown)
 
 
-def design_signature(project: Project, model: CompiledModel) -> str:
+def design_signature(project: Project, model: CompiledModel, builds: dict[str, str] | None = None) -> str:
     """A hash of the design query and the input file's signature: a design table is rebuilt exactly when
-    what it holds would change, not when a setting that only the fit reads (threshold, notes) did."""
+    what it holds would change, not when a setting that only the fit reads (threshold, notes) did.
+    `builds` (the build record) spares hashing a file it remembers unchanged."""
     query = render(design_query(model, project.inputs[model.spec.input]), "duckdb", pretty=False)
-    return f"{hashlib.sha256(query.encode()).hexdigest()[:16]}:{input_signature(project.inputs[model.spec.input])}"
+    return f"{hashlib.sha256(query.encode()).hexdigest()[:16]}:{input_signature(project.inputs[model.spec.input], builds)}"
 
 
 def build_designs(
@@ -97,7 +101,7 @@ def build_designs(
     try:
         prepare_inputs(engine, project, inputs, builds, progress)
         for model in models:
-            signature = design_signature(project, model)
+            signature = design_signature(project, model, builds)
             if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
                 continue
             say(progress, f"building {model.layout.table}")

@@ -1,4 +1,10 @@
-"""The embedded default engine: a DuckDB database file inside the project's build folder."""
+"""The embedded default engine: a DuckDB database file inside the project's build folder.
+
+DuckDB would cache table data and keep intermediate results in memory up to 80% of the machine's RAM;
+the adapter caps its memory at `MEMORY_LIMIT` and gives it a temporary folder beside the database
+file (`<file>.tmp`) to spill sorts, aggregates and joins to, so computing terms or profiles never
+takes more memory than a streamed fit, and a table larger than memory still computes.
+"""
 
 from __future__ import annotations
 
@@ -18,6 +24,9 @@ from .base import Check
 from .datafiles import check_data_file
 
 
+MEMORY_LIMIT = "1GB"
+
+
 class DuckDBEngine:
     name = "duckdb"
     dialect = "duckdb"
@@ -26,12 +35,14 @@ class DuckDBEngine:
         """Open `path` (None: an in-memory database). A file held by another process is a clear error."""
         self.path = Path(path) if path is not None else None
         target = ":memory:"
+        config = {"memory_limit": MEMORY_LIMIT}
         if self.path is not None:
             if not read_only:
                 self.path.parent.mkdir(parents=True, exist_ok=True)
             target = str(self.path)
+            config["temp_directory"] = str(self.path.with_name(self.path.name + ".tmp"))
         try:
-            self.connection = duckdb.connect(target, read_only=read_only)
+            self.connection = duckdb.connect(target, read_only=read_only, config=config)
         except duckdb.IOException as error:
             if "lock" in str(error).lower():
                 raise EngineError(

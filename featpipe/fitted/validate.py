@@ -201,7 +201,7 @@ ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout":
                   "imputed": mapping(NAME, COUNT)})
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
-    "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG,
+    "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG, "passes": COUNT,
     "effective_df": NUMBER, "observations": NUMBER, "conventions": mapping(NAME, TEXT), "pearson_chi2": NUMBER, "pearson_dispersion": NUMBER,
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})

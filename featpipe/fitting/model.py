@@ -97,6 +97,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         fit={
             "converged": bool(glm.convergence.converged),
             "iterations": int(glm.convergence.iterations),
+            "passes": int(glm.convergence.passes_over_data),  # full reads of the training rows by the fit
             "deviance": float(glm.goodness_of_fit.deviance),
             "null_deviance": float(glm.goodness_of_fit.null_deviance),
             "log_likelihood": float(glm.goodness_of_fit.log_likelihood),

@@ -43,6 +43,8 @@ def render(statement: exp.Expression, dialect: str, pretty: bool = True) -> str:
     statement = for_dialect(statement, dialect)
     if dialect == "postgres":
         statement = fenced(statement)
+    elif dialect == "sqlite":
+        statement = materialized(statement)
     return statement.sql(dialect=_exact_spark() if dialect == "spark" else dialect, identify=True, pretty=pretty)
 
 
@@ -62,6 +64,20 @@ def fenced(statement: exp.Expression) -> exp.Expression:
         body = node.this
         if derived and isinstance(body, exp.Select) and not body.args.get("limit") and not body.args.get("offset"):
             body.offset(0, copy=False)
+    return statement
+
+
+def materialized(statement: exp.Expression) -> exp.Expression:
+    """A copy of `statement` with every WITH query marked MATERIALIZED (SQLite 3.35 and later).
+
+    SQLite flattens a WITH query into the query that reads it and computes its expressions again at
+    every use; the scoring query's reason steps use each column of the step before many times, so
+    flattened they grow with the product of the steps (125 s for 3 reasons of 20 terms on 400 rows,
+    0.7 s materialized). Materializing changes no result.
+    """
+    statement = statement.copy()
+    for node in statement.find_all(exp.CTE):
+        node.set("materialized", True)
     return statement
 
 

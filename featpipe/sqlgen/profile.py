@@ -3,9 +3,19 @@
 The rows profiled are the design table's rows that are not held out, including rows a fit drops for
 a NULL elsewhere: a term's NULL count is then the NULLs of that term among the training-side rows.
 
+On engines with an exact discrete percentile aggregate (`PERCENTILE_DIALECTS`), three scans:
+- `counts_query`: the non-NULL count n of every column;
+- `percentiles_query`: the values at the ranks the deciles and the median need, by each engine's own
+  aggregate (DuckDB `quantile_disc`, PostgreSQL and Spark `PERCENTILE_DISC ... WITHIN GROUP`) asked for
+  the fraction (r - 1/2) / n, which every one of them maps to rank r (the first value whose cumulative
+  share reaches the fraction) without any question of rounding;
+- `moments_query` with `edges`: the moments below plus, per decile edge, the rows at or below it,
+  which give the bin shares.
+Elsewhere (SQLite) the portable route:
 - `order_statistics_query`: all columns stacked with UNION ALL into (name, value) rows, counted per
   distinct value and accumulated in value order; only the values holding the ranks the deciles and
   the median need come back, each with the number of values at or below it, which gives the bin shares.
+  Its cost grows with the distinct values (a window over every one of them).
 - `moments_query`: one scan; per column the non-NULL count, NULL count, sum, min, max and the sums
   of (x - median) and its square, from which the sample sd (n - 1) follows without cancellation.
 
@@ -31,6 +41,8 @@ from .common import alias, column, double, number
 DECILES = range(1, 10)
 NAME, VALUE = "_name", "_value"
 ROWS, AT_OR_BELOW, COUNT = "_rows", "_at_or_below", "_n"
+PERCENTILE_DIALECTS = ("duckdb", "postgres", "spark")  # an exact discrete percentile aggregate each
+COLUMNAR_DIALECTS = ("duckdb",)  # a query per column reads only that column: memory holds one column's values
 
 
 @dataclass(frozen=True)
@@ -99,9 +111,73 @@ def order_statistics_query(layout: DesignLayout, columns: Mapping[str, exp.Expre
     )
 
 
-def moments_query(layout: DesignLayout, columns: Mapping[str, exp.Expression], shifts: Mapping[str, float]) -> exp.Select:
+def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
+    """One scan of the not-held-out rows: the non-NULL count of each column, in order."""
+    return (
+        exp.select(*(exp.Count(this=double(expression.copy())) for expression in columns.values()))
+        .from_(exp.to_table(layout.table))
+        .where(exp.not_(column(layout.holdout)))
+    )
+
+
+def needed_ranks(n: int) -> tuple[int, ...]:
+    """The ranks (ascending, distinct) holding the deciles and the median of n sorted values."""
+    if n == 0:
+        return ()
+    return tuple(sorted({*(decile_rank(k, n) for k in DECILES), (n + 1) // 2, (n + 2) // 2}))
+
+
+def rank_fraction(rank: int, n: int) -> float:
+    """The fraction an inverted-CDF percentile aggregate maps to `rank` of n: halfway between ranks,
+    so ceil(fraction n) is `rank` whatever the engine's rounding of fraction * n."""
+    return (rank - 0.5) / n
+
+
+def percentiles_query(
+    layout: DesignLayout, columns: Mapping[str, exp.Expression], fractions: Mapping[str, Sequence[float]], dialect: str
+) -> exp.Select:
+    """One scan of the not-held-out rows: per column, its values at `fractions` (inverted CDF), by the
+    dialect's exact aggregate. DuckDB and PostgreSQL answer one list per column, Spark (one fraction
+    per call) one value per fraction; `read_percentiles` reads both."""
+    projections = []
+    for name, expression in columns.items():
+        value = double(expression.copy())
+        wanted = [number(fraction) for fraction in fractions[name]]
+        if dialect == "duckdb":
+            projections.append(exp.Anonymous(this="quantile_disc", expressions=[value, exp.Array(expressions=wanted)]))
+        elif dialect == "postgres":
+            projections.append(_within_group(exp.Array(expressions=wanted), value))
+        elif dialect == "spark":
+            projections += [_within_group(fraction, value.copy()) for fraction in wanted]
+        else:
+            raise ValueError(f"no exact percentile aggregate for {dialect}; use order_statistics_query")
+    return exp.select(*projections).from_(exp.to_table(layout.table)).where(exp.not_(column(layout.holdout)))
+
+
+def _within_group(fraction: exp.Expression, value: exp.Expression) -> exp.WithinGroup:
+    return exp.WithinGroup(this=exp.PercentileDisc(this=fraction), expression=exp.Order(expressions=[exp.Ordered(this=value)]))
+
+
+def read_percentiles(fractions: Mapping[str, Sequence[float]], row: Sequence, dialect: str) -> dict[str, tuple[float, ...]]:
+    """Per column of `percentiles_query`'s row, its values in the order of its fractions."""
+    values, position = {}, 0
+    for name, wanted in fractions.items():
+        if dialect == "spark":
+            values[name] = tuple(float(value) for value in row[position : position + len(wanted)])
+            position += len(wanted)
+        else:
+            values[name] = tuple(float(value) for value in row[position])
+            position += 1
+    return values
+
+
+def moments_query(
+    layout: DesignLayout, columns: Mapping[str, exp.Expression], shifts: Mapping[str, float],
+    edges: Mapping[str, Sequence[float]] | None = None,
+) -> exp.Select:
     """One scan of the not-held-out rows; per column (in order) seven values: count (non-NULL), nulls,
-    sum, sum of (x - shift), sum of (x - shift)^2, min, max.
+    sum, sum of (x - shift), sum of (x - shift)^2, min, max. With `edges`, then per column and edge
+    the rows at or below the edge.
 
     With the median as shift the sample variance from the shifted sums keeps its digits, because the
     mean lies within one standard deviation of the median.
@@ -118,6 +194,13 @@ def moments_query(layout: DesignLayout, columns: Mapping[str, exp.Expression], s
             exp.Sum(this=exp.Mul(this=shifted.copy(), expression=shifted.copy())),
             exp.Min(this=value.copy()),
             exp.Max(this=value),
+        ]
+    for name, at in (edges or {}).items():
+        value = double(columns[name].copy())
+        projections += [
+            exp.Sum(this=exp.Case(ifs=[exp.If(this=exp.LTE(this=value.copy(), expression=number(edge)), true=_integer(1))],
+                                  default=_integer(0)))
+            for edge in at
         ]
     return exp.select(*projections).from_(exp.to_table(layout.table)).where(exp.not_(column(layout.holdout)))
 
@@ -176,6 +259,49 @@ class OrderStatistics:
         return (self.at((self.n + 1) // 2)[0] + self.at((self.n + 2) // 2)[0]) / 2
 
 
+@dataclass(frozen=True)
+class RankedValues:
+    """The values of one column at the decile and median ranks, and the rows at or below each decile:
+    what `_profile` reads of `OrderStatistics`, from percentile aggregates and a counting scan."""
+
+    n: int
+    by_rank: Mapping[int, float]
+    at_or_below: Mapping[float, int]
+
+    def at(self, rank: int) -> tuple[float, int | None]:
+        value = self.by_rank[rank]
+        return value, self.at_or_below.get(value)
+
+    def median(self) -> float | None:
+        if self.n == 0:
+            return None
+        return (self.by_rank[(self.n + 1) // 2] + self.by_rank[(self.n + 2) // 2]) / 2
+
+    def edges(self) -> tuple[float, ...]:
+        """The distinct deciles, ascending."""
+        return tuple(sorted({self.by_rank[decile_rank(k, self.n)] for k in DECILES})) if self.n else ()
+
+
+def ranked_values(counts: Mapping[str, int], values: Mapping[str, Sequence[float]]) -> dict[str, RankedValues]:
+    """Per column, its `RankedValues` (no edge counts yet) from its count and its values at `needed_ranks`."""
+    return {
+        name: RankedValues(n, dict(zip(needed_ranks(n), values.get(name, ()), strict=True)), {})
+        for name, n in counts.items()
+    }
+
+
+def with_edge_counts(order: Mapping[str, RankedValues], tail: Sequence) -> dict[str, RankedValues]:
+    """`order` with the rows at or below each edge, from the values `moments_query` adds after the moments
+    (per column in order, per edge ascending)."""
+    counted, position = {}, 0
+    for name, ranked in order.items():
+        edges = ranked.edges()
+        at_or_below = {edge: int(count or 0) for edge, count in zip(edges, tail[position : position + len(edges)], strict=True)}
+        position += len(edges)
+        counted[name] = RankedValues(ranked.n, ranked.by_rank, at_or_below)
+    return counted
+
+
 def read_order_statistics(names: Sequence[str], rows: Sequence[tuple]) -> dict[str, OrderStatistics]:
     """Per name, its `OrderStatistics` from the rows of `order_statistics_query`."""
     counts = {name: 0 for name in names}
@@ -186,7 +312,7 @@ def read_order_statistics(names: Sequence[str], rows: Sequence[tuple]) -> dict[s
     return {name: OrderStatistics(counts[name], tuple(values[name])) for name in names}
 
 
-def read_profiles(names: Sequence[str], order: Mapping[str, OrderStatistics], moments: Sequence) -> dict[str, Profile]:
+def read_profiles(names: Sequence[str], order: Mapping[str, OrderStatistics | RankedValues], moments: Sequence) -> dict[str, Profile]:
     """A `Profile` per name, in the order of `names`, from the order statistics and `moments_query`'s row.
 
     A column with no non-NULL value has None for mean, sd, min, max and median and no edges or
@@ -199,7 +325,7 @@ def read_profiles(names: Sequence[str], order: Mapping[str, OrderStatistics], mo
     return profiles
 
 
-def _profile(n: int, nulls: int, total, shifted, squares, low, high, order: OrderStatistics) -> Profile:
+def _profile(n: int, nulls: int, total, shifted, squares, low, high, order: OrderStatistics | RankedValues) -> Profile:
     if n == 0:
         return Profile(count=0, nulls=nulls, mean=None, sd=None, min=None, max=None, median=None, edges=(), shares=())
     edges: list[float] = []

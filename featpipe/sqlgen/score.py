@@ -11,7 +11,8 @@ The query reads in steps (common table expressions), each computing something on
     term_values    the key, every term value as DOUBLE (hardened SQL) and the offset
     checked_terms  plus `status`: 'ok', or 'missing: <term>' naming the FIRST NULL term in model order
     contributions  the linear predictor and, for complete rows, one contribution per term
-    reason_ranks   (with reasons) each term's rank among the contributions
+    reason_k_top   (with reasons, per reason k) the largest contribution not yet chosen
+    reason_k_pick  the first term in model order holding it (when positive); the next round sets it aside
     final SELECT   the prediction through the inverse link, and the reason codes
 
 The prediction uses the fit's own inverse link (`metrics.prediction`): the linear predictor is clamped
@@ -76,8 +77,9 @@ from .metrics import linear_predictor, prediction
 
 FITTED_DIALECT = "duckdb"  # the fitted file stores canonical SQL in the duckdb dialect
 
-TERM_VALUES, CHECKED, CONTRIBUTIONS, RANKS = "term_values", "checked_terms", "contributions", "reason_ranks"
+TERM_VALUES, CHECKED, CONTRIBUTIONS = "term_values", "checked_terms", "contributions"
 OK = "ok"
+SET_ASIDE = -1.0  # a chosen term's contribution in later rounds: below every positive one, so never chosen again
 
 
 @dataclass(frozen=True)
@@ -123,7 +125,8 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
 
     `reasons` K > 0 adds reason_1..reason_K: the names of the K terms with the largest positive
     contributions (ties broken by model order), NULL where fewer than K terms push the prediction up.
-    Ranks are sums of CASE comparisons, so the SQL needs no array or window functions.
+    They are chosen in K rounds of GREATEST and comparisons (`reason_steps`), about 3 n operations a
+    round for n terms rather than n^2 for a full ranking, and the SQL needs no array or window functions.
     """
     if not 0 <= reasons <= len(model.terms):
         raise FeatpipeError(f"--reasons must be between 0 and {len(model.terms)}, the number of terms in {model.source}")
@@ -139,7 +142,7 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
     outputs += [column(contribution_column(name)) for name in names]
     outputs.append(column(STATUS))
     if reasons:
-        steps.append((RANKS, _reason_ranks(names, steps[-1][1])))
+        steps += reason_steps(names, steps[-1][1], reasons)
         outputs += [alias(reason_expression(names, rank), reason_column(rank)) for rank in range(1, reasons + 1)]
     query = exp.select(*outputs).from_(exp.to_table(steps[-1][0]))
     for name, step in steps:
@@ -184,11 +187,44 @@ def _contributions(model: ScoringModel) -> exp.Select:
     return exp.select(*projections).from_(exp.to_table(CHECKED))
 
 
-def _reason_ranks(names: list[str], contributions: exp.Select) -> exp.Select:
-    """Everything of contributions, plus each term's rank among the positive contributions."""
-    carried = [column(projection.alias_or_name) for projection in contributions.expressions]
-    ranks = [alias(rank_expression(names, index), _rank_column(name)) for index, name in enumerate(names)]
-    return exp.select(*carried, *ranks).from_(exp.to_table(CONTRIBUTIONS))
+def reason_steps(names: list[str], contributions: exp.Select, reasons: int) -> list[tuple[str, exp.Select]]:
+    """The steps choosing reasons 1..`reasons`, after `contributions`; each carries every column before it.
+
+    Round k takes the largest of the contributions still in play (`_top_k`, GREATEST: a row's
+    contributions are all NULL or none), and picks the first term in model order holding it when it
+    is positive (`_pick_k`, the term's position, 1-based; NULL otherwise). Round k + 1 reads the
+    contributions with that term set aside (SET_ASIDE), so a tie goes to the earlier term first and
+    the later one next.
+    """
+    carried = [projection.alias_or_name for projection in contributions.expressions]
+    in_play = [contribution_column(name) for name in names]
+    steps, previous = [], CONTRIBUTIONS
+
+    def step(name: str, *added: exp.Expression) -> None:
+        nonlocal previous
+        steps.append((name, exp.select(*map(column, carried), *added).from_(exp.to_table(previous))))
+        previous = name
+
+    for rank in range(1, reasons + 1):
+        if rank > 1:  # set the last pick aside; the previous round's own columns are no longer needed
+            chosen = column(_pick_column(rank - 1))
+            left = [_left_column(rank, name) for name in names]
+            if rank > 2:
+                carried = [name for name in carried if name not in in_play]
+            step(f"reason_{rank}_left", *(
+                alias(exp.Case().when(chosen.eq(exp.Literal.number(position)), number(SET_ASIDE)).else_(column(value)), name)
+                for position, (value, name) in enumerate(zip(in_play, left, strict=True), start=1)))
+            carried += left
+            in_play = left
+        top = exp.Greatest(this=column(in_play[0]), expressions=[column(name) for name in in_play[1:]], ignore_nulls=True)
+        step(f"reason_{rank}_top", alias(top, _top_column(rank)))
+        pick = exp.Case()
+        for position, name in enumerate(in_play, start=1):
+            pick = pick.when(column(name).eq(column(_top_column(rank))), exp.Literal.number(position))
+        step(f"reason_{rank}_pick", alias(exp.Case().when(exp.GT(this=column(_top_column(rank)), expression=number(0.0)), pick),
+                                          _pick_column(rank)))
+        carried.append(_pick_column(rank))
+    return steps
 
 
 def term_value(model: ScoringModel, term: ScoringTerm) -> exp.Expression:
@@ -204,29 +240,11 @@ def status_expression(names: list[str], has_offset: bool) -> exp.Expression:
     return case.else_(exp.Literal.string(OK))
 
 
-def rank_expression(names: list[str], index: int) -> exp.Expression:
-    """The rank of term `index` among the contributions that push the prediction up, NULL for the others.
-
-    1 + the number of terms whose contribution beats it; an earlier term wins a tie. Only positive
-    contributions are ranked, so rows spend the comparisons only on the terms that can be reasons.
-    """
-    this = column(contribution_column(names[index]))
-    total: exp.Expression = exp.Literal.number(1)
-    for other, name in enumerate(names):
-        if other == index:
-            continue
-        that = column(contribution_column(name))
-        beats = exp.GTE(this=that, expression=this.copy()) if other < index else exp.GT(this=that, expression=this.copy())
-        total = exp.Add(this=total, expression=exp.Case().when(beats, exp.Literal.number(1)).else_(exp.Literal.number(0)))
-    return exp.Case().when(exp.GT(this=this.copy(), expression=number(0.0)), total)
-
-
 def reason_expression(names: list[str], rank: int) -> exp.Expression:
-    """The name of the term ranked `rank` among the positive contributions, or NULL."""
+    """The name of the term picked in round `rank` (see `reason_steps`), or NULL."""
     case = exp.Case()
-    for name in names:
-        ranked = exp.EQ(this=column(_rank_column(name)), expression=exp.Literal.number(rank))
-        case = case.when(ranked, exp.Literal.string(name))
+    for position, name in enumerate(names, start=1):
+        case = case.when(column(_pick_column(rank)).eq(exp.Literal.number(position)), exp.Literal.string(name))
     return case
 
 
@@ -266,6 +284,15 @@ def _prediction(model: ScoringModel, eta: exp.Expression) -> exp.Expression:
         raise FeatpipeError(f"{model.source}: {error}") from None
 
 
-def _rank_column(term: str) -> str:
-    return f"_rank_{term}"
+def _left_column(rank: int, term: str) -> str:
+    """Term's contribution as round `rank` reads it (SET_ASIDE once chosen)."""
+    return f"_left_{rank}_{term}"
+
+
+def _top_column(rank: int) -> str:
+    return f"_top_{rank}"
+
+
+def _pick_column(rank: int) -> str:
+    return f"_pick_{rank}"
 

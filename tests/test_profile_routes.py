@@ -1,0 +1,110 @@
+"""Exact order statistics by each engine's own percentile aggregate give the profiles of the portable
+window route, value for value, on DuckDB, PostgreSQL and Spark.
+
+Reference: the portable route (`window_profiles`, checked against numpy's inverted-CDF quantiles in
+test_profile.py) run on the same engine and on SQLite (tests/sqlite_engine.py), and numpy itself.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from test_profile import LAYOUT, invented_design, reference_profile
+
+from featpipe.fitting.metrics import percentile_profiles, training_profiles, window_profiles
+from featpipe.sqlgen.common import column
+from featpipe.sqlgen.profile import needed_ranks, rank_fraction
+
+
+def load(engine, tmp_path):
+    path = tmp_path / "design.parquet"
+    data = invented_design()
+    pq.write_table(pa.table({name: pa.array(values, from_pandas=True) for name, values in data.items()}), path)
+    engine.load_file(LAYOUT.table, path)
+    return data
+
+
+class Recording:
+    """An engine that remembers the SQL it was asked to run."""
+
+    def __init__(self, engine):
+        self.engine, self.name, self.dialect, self.queries = engine, engine.name, engine.dialect, []
+
+    def fetch(self, query):
+        self.queries.append(self.engine.render(query))
+        return self.engine.fetch(query)
+
+
+def check_routes_agree(engine, tmp_path):
+    data = load(engine, tmp_path)
+    columns = {name: column(name) for name in LAYOUT.terms}
+    fast = percentile_profiles(engine, LAYOUT, columns)
+    portable = window_profiles(engine, LAYOUT, columns)
+    assert fast == portable  # every figure, bit for bit: the same values and the same moments query
+    training = ~data["_holdout"]
+    assert fast["payment_ratio"].edges == reference_profile(data["payment_ratio"][training]).edges  # numpy inverted_cdf
+
+
+def test_percentile_route_equals_the_window_route_on_duckdb(tmp_path):
+    from featpipe.engines.duckdb import DuckDBEngine
+
+    engine = DuckDBEngine(None)
+    check_routes_agree(engine, tmp_path)
+    engine.close()
+
+
+def test_percentile_route_equals_the_window_route_on_postgres(postgres_engine, tmp_path):
+    check_routes_agree(postgres_engine, tmp_path)
+
+
+@pytest.mark.spark
+def test_percentile_route_equals_the_window_route_on_spark(spark_engine, tmp_path):
+    check_routes_agree(spark_engine, tmp_path)
+
+
+def test_percentile_route_equals_sqlite_portable_route(tmp_path):
+    """DuckDB's quantile_disc route against the window route on SQLite, a very different engine."""
+    from sqlite_engine import SQLiteEngine
+
+    from featpipe.engines.duckdb import DuckDBEngine
+
+    duckdb_engine, sqlite = DuckDBEngine(None), SQLiteEngine(None)
+    load(duckdb_engine, tmp_path)
+    load(sqlite, tmp_path)
+    columns = {name: column(name) for name in LAYOUT.terms}
+    fast, portable = percentile_profiles(duckdb_engine, LAYOUT, columns), training_profiles(sqlite, LAYOUT, columns)
+    for name in LAYOUT.terms:  # mean and sd are sums in each engine's order: equal to 1e-12
+        assert (fast[name].count, fast[name].nulls, fast[name].median, fast[name].edges, fast[name].shares) == (
+            portable[name].count, portable[name].nulls, portable[name].median, portable[name].edges, portable[name].shares)
+    duckdb_engine.close()
+    sqlite.close()
+
+
+def test_duckdb_profiles_use_quantile_disc_and_no_window(tmp_path):
+    from featpipe.engines.duckdb import DuckDBEngine
+
+    engine = DuckDBEngine(None)
+    load(engine, tmp_path)
+    recording = Recording(engine)
+    training_profiles(recording, LAYOUT, {name: column(name) for name in LAYOUT.terms})
+    rendered = "\n".join(recording.queries).upper()
+    assert "QUANTILE_DISC" in rendered and " OVER " not in rendered and "UNION" not in rendered
+    # counts, one percentile query per column that has values (never_set has none), moments with edge counts
+    assert len(recording.queries) == 1 + (len(LAYOUT.terms) - 1) + 1
+    engine.close()
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 7, 10, 11, 99, 1000, 10_000_001])
+def test_rank_fraction_selects_the_rank_on_duckdb(n):
+    """DuckDB's quantile_disc at (r - 1/2) / n returns the r-th value of 1..n (its inverted CDF), for every
+    rank the profile needs."""
+    import duckdb
+
+    connection = duckdb.connect()
+    ranks = needed_ranks(n)
+    fractions = ", ".join(repr(rank_fraction(rank, n)) for rank in ranks)
+    (got,) = connection.execute(f"SELECT quantile_disc(i, [{fractions}]) FROM range(1, {n + 1}) t(i)").fetchone()
+    assert got == list(ranks)
+    assert np.array_equal(got, np.quantile(np.arange(1, n + 1), [rank_fraction(r, n) for r in ranks], method="inverted_cdf"))
