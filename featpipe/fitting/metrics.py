@@ -30,7 +30,7 @@ from ..sqlgen.profile import (
 
 def holdout_metrics(
     engine: Engine, layout: DesignLayout, family: str, coefficients: Mapping[str, float], threshold: float,
-    counted: bool = False,
+    counted: bool = False, power: float | None = None,
 ) -> dict:
     """Metrics of the model `coefficients` on the held-out complete rows, unweighted (variance weights are
     a fitting device; a metric counts each held-out row once), or with `counted` (frequency weights) as
@@ -39,16 +39,16 @@ def holdout_metrics(
     binomial: rows, events, accuracy (predicted an event when the probability is >= `threshold`),
     baseline_accuracy (always predicting the holdout's majority class), precision, recall, auc
     (Mann-Whitney with average ranks for tied probabilities), log_loss, brier, calibration.
-    poisson and gaussian: rows, deviance (the family's, summed), mean_absolute_error, rmse,
+    poisson, gaussian, gamma and tweedie (`power`): rows, deviance (the family's, summed), mean_absolute_error, rmse,
     mean_observed, mean_predicted, calibration.
     calibration: one entry per decile of the prediction, {decile, rows, mean_predicted, mean_observed}.
     A ratio with a zero denominator (precision without predicted events, recall without events, AUC
     with one class only) is None. With no held-out rows (holdout fraction 0) the result is {"rows": 0}.
     """
-    if family == "binomial":
+    if family in ("binomial", "quasibinomial"):
         metrics = _binomial(engine.fetch(binomial_summary_query(layout, coefficients, threshold, counted))[0])
     else:
-        metrics = _regression(engine.fetch(regression_summary_query(layout, family, coefficients, counted))[0])
+        metrics = _regression(engine.fetch(regression_summary_query(layout, family, coefficients, counted, power))[0])
     if metrics["rows"] == 0:
         return {"rows": 0}
     metrics["calibration"] = [
