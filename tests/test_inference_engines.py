@@ -21,10 +21,11 @@ CASES = {
     "effective df (binomial, l2)": dict(family="binomial", penalty=Penalty(l2=0.02)),
     "gamma (log link)": dict(family="gamma"),
     "tweedie (log link, power 1.5)": dict(family="tweedie", power=1.5),
+    "quasipoisson": dict(family="quasipoisson"),
 }
 # statsmodels' family for each case (log links for gamma and tweedie)
 REFERENCE_FAMILIES = {
-    "poisson": lambda: sm.families.Poisson(), "gaussian": lambda: sm.families.Gaussian(),
+    "poisson": lambda: sm.families.Poisson(), "quasipoisson": lambda: sm.families.Poisson(), "gaussian": lambda: sm.families.Gaussian(),
     "gamma": lambda: sm.families.Gamma(sm.families.links.Log()),
     "tweedie": lambda: sm.families.Tweedie(sm.families.links.Log(), var_power=1.5),
 }
@@ -37,7 +38,7 @@ def case_rows(family: str, rows: int = 400, seed: int = 9):
     eta = 0.2 + x @ np.array([0.5, -0.3])
     if family == "binomial":
         y = (rng.random(rows) < 1 / (1 + np.exp(-eta))).astype(float)
-    elif family == "poisson":
+    elif family in ("poisson", "quasipoisson"):
         y = rng.poisson(np.exp(eta) * rng.gamma(1.0, 1.0, rows)).astype(float)
     elif family in ("gamma", "tweedie"):
         y = rng.gamma(2.0, np.exp(eta) / 2.0) * (rng.random(rows) < (0.6 if family == "tweedie" else 1.0))
@@ -81,6 +82,6 @@ def test_new_statistics_agree_on_every_engine(case, engine, tmp_path):
     if "penalty" not in settings:
         # Reference: statsmodels GLM on the same rows (freq_weights for frequency weights).
         reference = sm.GLM(y, sm.add_constant(x), family=REFERENCE_FAMILIES[family](),
-                           freq_weights=counts if weighted else None).fit(tol=1e-13)
+                           freq_weights=counts if weighted else None).fit(tol=1e-13, scale="X2" if family.startswith("quasi") else None)
         assert fit.goodness_of_fit.pearson_chi2 == pytest.approx(reference.pearson_chi2, rel=1e-7)
         np.testing.assert_allclose([c.inference.std_error for c in fit.coefficients], reference.bse, rtol=1e-7)
