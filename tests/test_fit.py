@@ -93,7 +93,7 @@ def test_a_failed_fit_leaves_the_previous_file(fitted_demos, tmp_path):
 def test_an_edited_term_makes_the_fit_stale_and_refresh_refits(tmp_path):
     root = copy_demo("fleet_claims", tmp_path)
     project = featpipe.load_project(root)
-    assert [o.model for o in api.refresh(project)] == ["claim_frequency"]
+    assert [o.model for o in api.refresh(project)] == ["claim_frequency", "claim_severity"]
     assert api.refresh(project) == []  # everything is up to date
     usage = root / "terms" / "usage.sql"
     usage.write_text(usage.read_text().replace("/ 1000.0", "/ 100.0"))

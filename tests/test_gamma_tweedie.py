@@ -196,3 +196,15 @@ def test_a_hand_edited_power_is_refused(tmp_path):
     result = run_featpipe("explain", "severity", cwd=tmp_path / "p")
     assert result.returncode == 1
     assert "fit.power must be given for a tweedie fit only, equal to depends_on.power" in result.stdout + result.stderr
+
+
+
+def test_the_report_of_a_tweedie_model_shows_its_reading_and_deviance_residuals(tmp_path):
+    from featpipe.fitted.report import write_report
+
+    claims_project(tmp_path / "p", "family: tweedie\npower: 1.5", zeros=0.3)
+    project = load_project(tmp_path / "p")
+    api.fit(project)
+    text = write_report(project, "severity").read_text()
+    assert "Tweedie regression (log link) of amount on 2 terms" in text
+    assert "Deviance residuals by decile" in text and "ratio of means" in text
