@@ -229,7 +229,7 @@ FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads
 FORMAT = one_of(FORMAT_VERSION)
 FITTED = record(
     {"model": NAME, "fingerprint": FINGERPRINT, "input": NAME, "key": NAME, "target": NAME, "family": FAMILY,
-     "link": one_of(*LINKS.values()), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
+     "link": one_of(*dict.fromkeys(LINKS.values())), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
     {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "warnings": listing(TEXT), "format": FORMAT},

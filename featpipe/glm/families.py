@@ -146,6 +146,7 @@ class QuasiPoisson(Poisson):
     link = LINKS[name]
     statistic_name = "t"
     estimates_dispersion = True
+    likelihood_constant = None  # no likelihood: the poisson data term is not needed
 
 
 class QuasiBinomial(Binomial):
