@@ -242,8 +242,9 @@ def gains_table(fitted: FittedModel) -> Table:
 def _print_fit_summary(fitted: FittedModel) -> None:
     out.print(coefficient_table(fitted))
     fit = fitted.fit
-    out.print(f"deviance {fit['deviance']:.4f} (null {fit['null_deviance']:.4f}), AIC {fit['aic']:.2f}, "
-              f"BIC {fit['bic']:.2f}, {'converged' if fit['converged'] else 'NOT converged'} in {fit['iterations']} iterations"
+    criteria = f"AIC {fit['aic']:.2f}, BIC {fit['bic']:.2f}" if fit["aic"] is not None else "no AIC or BIC (no likelihood)"
+    out.print(f"deviance {fit['deviance']:.4f} (null {fit['null_deviance']:.4f}), {criteria}, "
+              f"{'converged' if fit['converged'] else 'NOT converged'} in {fit['iterations']} iterations"
               + (f", Pearson chi2/df {fit['pearson_dispersion']:.3f}" if "pearson_dispersion" in fit else ""))
     holdout = fitted.metrics
     if holdout.get("rows"):

@@ -63,6 +63,7 @@ def test_overdispersed_counts_are_named_with_their_pearson_ratio_and_the_remedie
     assert warning.startswith(f"Pearson chi2 / df is {ratio:.2f}, above 1.5 (a common screen): the counts vary more "
                               "than the poisson family allows (overdispersion), so the standard errors are too small")
     assert f"read each standard error as about {ratio ** 0.5:.2f} times larger (the quasi-poisson correction" in warning
+    assert "refit with family: quasipoisson, which scales them so" in warning
 
 
 @pytest.mark.parametrize("family", ["poisson", "binomial"])

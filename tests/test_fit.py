@@ -18,7 +18,7 @@ from featpipe.fitted.explain import explain
 from featpipe.project import load_project
 from featpipe.sqlgen.common import training_rows
 
-FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson()}
+FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson(), "gamma": sm.families.Gamma(sm.families.links.Log())}
 
 
 @pytest.fixture(scope="module")
@@ -31,7 +31,7 @@ def fitted_demos(tmp_path_factory):
 
 
 @pytest.mark.parametrize("demo, model", [("lease_default", "default_risk"), ("lease_default", "default_raw"),
-                                         ("fleet_claims", "claim_frequency")])
+                                         ("fleet_claims", "claim_frequency"), ("fleet_claims", "claim_severity")])
 def test_the_fitted_file_agrees_with_statsmodels_on_the_same_rows(fitted_demos, demo, model):
     project = fitted_demos[demo]
     fitted = read_fitted(project.fitted_path(model))
@@ -43,7 +43,7 @@ def test_the_fitted_file_agrees_with_statsmodels_on_the_same_rows(fitted_demos, 
     # Reference library: statsmodels GLM, the same rows and terms, IRLS run to a tight tolerance (its
     # default 1e-8 leaves p-values about 4e-5 off the converged values on these data).
     reference = sm.GLM(rows[layout.target].to_numpy(float), design, family=FAMILIES[fitted.family],
-                       offset=offset).fit(tol=1e-13)
+                       offset=offset).fit(tol=1e-13, use_t=fitted.fit["statistic"] == "t")
     assert fitted.rows["train"] == len(rows)
     np.testing.assert_allclose([t.estimate for t in fitted.terms], reference.params, rtol=1e-6)
     np.testing.assert_allclose([t.std_error for t in fitted.terms], reference.bse, rtol=1e-6)
@@ -93,7 +93,7 @@ def test_a_failed_fit_leaves_the_previous_file(fitted_demos, tmp_path):
 def test_an_edited_term_makes_the_fit_stale_and_refresh_refits(tmp_path):
     root = copy_demo("fleet_claims", tmp_path)
     project = featpipe.load_project(root)
-    assert [o.model for o in api.refresh(project)] == ["claim_frequency"]
+    assert [o.model for o in api.refresh(project)] == ["claim_frequency", "claim_severity"]
     assert api.refresh(project) == []  # everything is up to date
     usage = root / "terms" / "usage.sql"
     usage.write_text(usage.read_text().replace("/ 1000.0", "/ 100.0"))

@@ -75,7 +75,7 @@ CASES = {
     "newline in link": (setting("link", value="logit" + INJECTION),
                         refused("link", "must be one of logit, log, identity", repr("logit" + INJECTION))),
     "newline in family": (setting("family", value="binomial" + INJECTION),
-                          refused("family", "must be one of binomial, poisson, gaussian", repr("binomial" + INJECTION))),
+                          refused("family", "must be one of binomial, poisson, gaussian, gamma, tweedie, quasipoisson, quasibinomial", repr("binomial" + INJECTION))),
     "newline in a term name": (setting("terms", YOUNG_FIRM, "name", value="young_firm" + INJECTION),
                                refused("terms[2].name", A_NAME, repr("young_firm" + INJECTION))),
     "newline in the model name": (setting("model", value=MODEL + INJECTION), refused("model", A_NAME, repr(MODEL + INJECTION))),

@@ -146,3 +146,23 @@ def test_frequency_weights_that_do_not_add_up_to_whole_rows_are_refused():
     x, y, counts = grouped("poisson")
     with pytest.raises(Exception, match="frequency weights count identical rows, but they add up to"):
         Glm("poisson", frequency_weights=True).fit_arrays(x, y, weights=counts + 0.25)
+
+
+def test_evaluate_and_the_fold_metrics_count_the_rows_the_weights_stand_for(tmp_path):
+    from sklearn.metrics import log_loss, roc_auc_score
+
+    x, y, counts = cells_project(tmp_path / "p", "{column: n, kind: frequency}")
+    spec = tmp_path / "p/specs/default.yaml"
+    spec.write_text(spec.read_text() + "folds: 3\n")
+    project = load_project(tmp_path / "p")
+    api.fit(project)
+    fitted = read_fitted(project.fitted_path("default"))
+    # Each fold's metrics are those of its rows repeated: together the folds hold every repeated row.
+    assert sum(fold["metrics"]["rows"] for fold in fitted.crossval["per_fold"]) == counts.sum()
+    evaluation, _ = api.evaluate(project, "default", "cells")
+    eta = fitted.coefficients["(intercept)"] + x[:, 0] * fitted.coefficients["x1"] + x[:, 1] * fitted.coefficients["x2"]
+    p = 1 / (1 + np.exp(-eta))
+    # Reference: scikit-learn metrics with the counts as sample weights (the rows repeated).
+    assert evaluation.metrics["rows"] == counts.sum() and evaluation.metrics["events"] == (counts * y).sum()
+    assert evaluation.metrics["auc"] == pytest.approx(roc_auc_score(y, p, sample_weight=counts), rel=1e-9)
+    assert evaluation.metrics["log_loss"] == pytest.approx(log_loss(y, p, sample_weight=counts), rel=1e-9)

@@ -37,8 +37,8 @@ def test_effect_kinds_by_family_and_missing_intervals():
     assert effect("gaussian", 1.25, 0.5, 2.0, 2.0) == Effect("difference", 2.0, 2.5, 1.0, 4.0)
     # A negative step reverses the bounds; they are kept ordered low to high.
     assert effect("gaussian", 1.25, 0.5, 2.0, -2.0) == Effect("difference", -2.0, -2.5, -4.0, -1.0)
-    with pytest.raises(ValueError, match="unknown family 'gamma'"):
-        effect("gamma", 1.0, None, None)
+    with pytest.raises(ValueError, match="unknown family 'negative_binomial'"):
+        effect("negative_binomial", 1.0, None, None)
 
 
 def test_reading_with_a_unit_phrase():

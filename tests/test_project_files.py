@@ -59,7 +59,7 @@ def test_unknown_key_and_bad_values_in_a_model_spec_are_all_reported(tmp_path):
         holdout: {fraction: 1.5}
         """})
     assert errors_of(root) == [
-        "specs/returns.yaml:3:9: unknown family 'binomal'; use one of binomial, poisson, gaussian",
+        "specs/returns.yaml:3:9: unknown family 'binomal'; use one of binomial, poisson, gaussian, gamma, tweedie, quasipoisson, quasibinomial",
         "specs/returns.yaml:5:1: unknown key 'treshold'; did you mean 'threshold'?",
         "specs/returns.yaml:6:21: holdout fraction must be at least 0 and below 1",
     ]

@@ -130,7 +130,7 @@ def expected_scores(fitted: FittedModel, values: list[np.ndarray], reasons: int 
         eta = eta + offset
     clamped = np.clip(eta, -ETA_LIMIT, ETA_LIMIT)
     prediction = {"binomial": lambda: 1.0 / (1.0 + np.exp(-clamped)), "poisson": lambda: np.exp(clamped),
-                  "gaussian": lambda: eta}[fitted.family]()
+                  "gamma": lambda: np.exp(clamped), "gaussian": lambda: eta}[fitted.family]()
     missing = [np.isnan(value) for value in values] + ([np.isnan(offset)] if offset is not None else [])
     names = [term.name for term in terms] + (["offset"] if offset is not None else [])
     status = []

@@ -28,8 +28,10 @@ from featpipe.project import load_project
 from featpipe.project.names import OFFSET_COLUMN
 from featpipe.sqlgen.common import column
 
-DEMO_MODELS = [("lease_default", "default_risk"), ("lease_default", "default_raw"), ("fleet_claims", "claim_frequency")]
-SM_FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson(), "gaussian": sm.families.Gaussian()}
+DEMO_MODELS = [("lease_default", "default_risk"), ("lease_default", "default_raw"), ("fleet_claims", "claim_frequency"),
+               ("fleet_claims", "claim_severity")]
+SM_FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson(), "gaussian": sm.families.Gaussian(),
+               "gamma": sm.families.Gamma(sm.families.links.Log())}
 REASONS = 3
 
 

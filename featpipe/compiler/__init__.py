@@ -98,6 +98,7 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         "key": key,
         "target": spec.target,
         "family": spec.family,
+        **({"power": spec.power} if spec.power is not None else {}),  # tweedie only: other fits keep their fingerprint
         "offset": offset_sql,
         # A bare column is a variance weight, as written before frequency weights existed.
         "weights": {"column": spec.weights, "kind": spec.weight_kind} if spec.weight_kind == "frequency" else spec.weights,

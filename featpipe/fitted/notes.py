@@ -13,11 +13,15 @@ from collections.abc import Iterable, Mapping
 
 from . import Effect
 
-EFFECT_KINDS = {"binomial": "odds ratio", "poisson": "rate ratio", "gaussian": "difference"}
-NO_EFFECT = {"odds ratio": "an odds ratio of 1", "rate ratio": "a rate ratio of 1", "difference": "a difference of 0"}
+EFFECT_KINDS = {"binomial": "odds ratio", "poisson": "rate ratio", "gaussian": "difference", "gamma": "ratio of means",
+                "tweedie": "ratio of means", "quasipoisson": "rate ratio", "quasibinomial": "odds ratio"}
+NO_EFFECT = {"odds ratio": "an odds ratio of 1", "rate ratio": "a rate ratio of 1", "difference": "a difference of 0",
+             "ratio of means": "a ratio of means of 1"}
 # Variance inflation factors above 5 and above 10 signal collinearity (common practice thresholds).
 VIF_MODERATE, VIF_STRONG = 5.0, 10.0
-MODEL_NAMES = {"binomial": "Logistic regression", "poisson": "Poisson regression", "gaussian": "Linear regression"}
+MODEL_NAMES = {"binomial": "Logistic regression", "poisson": "Poisson regression", "gaussian": "Linear regression",
+               "gamma": "Gamma regression (log link)", "tweedie": "Tweedie regression (log link)",
+               "quasipoisson": "Quasi-Poisson regression", "quasibinomial": "Quasi-binomial logistic regression"}
 
 
 def words(name: str) -> str:
@@ -137,10 +141,12 @@ def _reading(name: str, family: str, target: str, size: Effect, kind: str, unit_
     if not math.isfinite(size.value) or (not signed and size.value == 0):  # exp overflowed or underflowed
         return (f"{subject} changes the prediction by more than a double can hold: the step is far too large for this "
                 "estimate; give a smaller step for this term in the spec")
-    if family == "binomial":
+    if size.kind == "odds ratio":
         verb = f"multiplies the odds of {words(target)} by {figure(size.value)}"
-    elif family == "poisson":
+    elif size.kind == "rate ratio":
         verb = f"multiplies the expected count by {figure(size.value)}"
+    elif size.kind == "ratio of means":
+        verb = f"multiplies the expected {words(target)} by {figure(size.value)}"
     else:
         verb = f"changes {words(target)} by {figure(size.value, signed)}"
     interval = ""
@@ -219,7 +225,7 @@ def model_reading(
     rows = metrics.get("rows", 0)
     if not rows:
         sentences.append("No rows were held out, so there are no holdout metrics.")
-    elif family == "binomial":
+    elif family in ("binomial", "quasibinomial"):
         accuracy, baseline = metrics["accuracy"], metrics["baseline_accuracy"]
         verdict = "" if accuracy > baseline else ", so at this threshold it is no better than the baseline"
         auc = f" Its AUC is {metrics['auc']:.2f}." if metrics.get("auc") is not None else ""

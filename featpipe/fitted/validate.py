@@ -179,6 +179,7 @@ def record(required: dict[str, Kind], optional_keys: dict[str, Kind] | None = No
 OPTIONAL_NUMBER = optional(NUMBER)
 WEIGHTS = optional(either(NAME, record({"column": NAME, "kind": one_of("frequency")})))
 FAMILY = one_of(*LINKS)
+TWEEDIE_POWER = _scalar("must be a number strictly between 1 and 2", lambda value: _is_finite(value) and 1 < value < 2)
 HOLDOUT = record({"salt": TEXT}, {"fraction": NUMBER, "column": NAME,
                                    "from": _scalar("must be a date like 2025-07-01 or a finite number",
                                                    lambda value: _is_iso_date(value) or _is_finite(value))})
@@ -200,8 +201,8 @@ TERM = record(
 ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout": COUNT, "dropped": mapping(TEXT, COUNT),
                   "imputed": mapping(NAME, COUNT)})
 FIT = record({}, {
-    "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
-    "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG, "passes": COUNT,
+    "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": OPTIONAL_NUMBER,
+    "aic": OPTIONAL_NUMBER, "bic": OPTIONAL_NUMBER, "dispersion": NUMBER, "power": TWEEDIE_POWER, "statistic": TEXT, "penalized": FLAG, "passes": COUNT,
     "effective_df": NUMBER, "observations": NUMBER, "conventions": mapping(NAME, TEXT), "pearson_chi2": NUMBER, "pearson_dispersion": NUMBER,
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
@@ -225,7 +226,7 @@ CROSSVAL = record(
 )
 # compiler.fit_dependencies as written; files fitted before a dependency was recorded lack it.
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
-    "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "offset": optional(TEXT), "weights": WEIGHTS,
+    "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "power": TWEEDIE_POWER, "offset": optional(TEXT), "weights": WEIGHTS,
     "holdout": HOLDOUT, "penalty": PENALTY, "folds": COUNT, "threshold": NUMBER, "max_dropped": NUMBER,
     "expect": mapping(NAME, one_of(*EXPECTATIONS)), "step": mapping(NAME, NUMBER), "notes": mapping(NAME, TEXT),
 })
@@ -233,7 +234,7 @@ FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads
 FORMAT = one_of(FORMAT_VERSION)
 FITTED = record(
     {"model": NAME, "fingerprint": FINGERPRINT, "input": NAME, "key": NAME, "target": NAME, "family": FAMILY,
-     "link": one_of(*LINKS.values()), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
+     "link": one_of(*dict.fromkeys(LINKS.values())), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
     {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "warnings": listing(TEXT), "format": FORMAT},
@@ -269,6 +270,8 @@ def check_integrity(fitted, source: str) -> None:
 def _check_agreement(fitted) -> None:
     if fitted.link != LINKS[fitted.family]:
         raise Refusal(f"link {fitted.link} is not the link of family {fitted.family} ({LINKS[fitted.family]})")
+    if (fitted.family == "tweedie") != ("power" in fitted.fit) or fitted.fit.get("power") != fitted.depends_on.get("power"):
+        raise Refusal("fit.power must be given for a tweedie fit only, equal to depends_on.power")
     recorded = fitted.depends_on
     for name in (field.name for field in fields(fitted)):
         if name in recorded and name != "terms" and getattr(fitted, name) != recorded[name]:

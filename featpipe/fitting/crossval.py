@@ -65,7 +65,8 @@ def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, pena
         for index, result in enumerate(fits.results):
             coefficients = folds.original(result.beta)
             measured = replace(layout, table=scratch, holdout=fold_flag(index))
-            metrics = holdout_metrics(engine, measured, spec.family, coefficients, spec.threshold)
+            metrics = holdout_metrics(engine, measured, spec.family, coefficients, spec.threshold,
+                                      spec.weight_kind == "frequency", power=spec.power)
             per_fold.append({"fold": index + 1, "train": folds.training_rows - folds.rows[index], "converged": bool(result.converged),
                              "metrics": metrics})
     finally:
@@ -87,7 +88,7 @@ class _Folds:
     """The folds of one spec's training rows: their sizes, the working scaling and the fold fitter."""
 
     def __init__(self, engine: Engine, layout: DesignLayout, spec: ModelSpec):
-        self.engine, self.layout, self.family = engine, layout, get_family(spec.family)
+        self.engine, self.layout, self.family = engine, layout, get_family(spec.family, spec.power)
         self.fold = fold_number(layout.key, spec.holdout.salt, spec.folds)
         sizes = {int(fold): (int(rows), float(weight)) for fold, rows, weight in engine.fetch(fold_sizes_query(layout, self.fold))}
         empty = [fold + 1 for fold in range(spec.folds) if sizes.get(fold, (0, 0.0))[0] == 0]
@@ -112,7 +113,7 @@ class _Folds:
         mean = profile.weighted_target_sum / profile.weight_sum
         if self.family.name != "gaussian":
             mean = max(mean, 0.5 / (rows + 1))
-        if self.family.name == "binomial":
+        if self.family.link == "logit":
             mean = min(mean, 1 - 0.5 / (rows + 1))
         offset = profile.weighted_offset_sum / profile.weight_sum
         return scaling, np.r_[self.family.link_of_mean(mean) - offset, np.zeros(len(self.layout.terms))]

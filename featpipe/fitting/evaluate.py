@@ -83,7 +83,10 @@ def _measure(engine: Engine, fitted: FittedModel, layout: DesignLayout, scratch:
     layout = replace(layout, table=scratch)
 
     def metrics(flag: str) -> dict:
-        return holdout_metrics(engine, replace(layout, holdout=flag), fitted.family, fitted.coefficients, fitted.threshold)
+        return holdout_metrics(engine, replace(layout, holdout=flag), fitted.family, fitted.coefficients, fitted.threshold,
+                               counted, power=fitted.fit.get("power"))
+
+    counted = isinstance(fitted.weights, dict) and fitted.weights.get("kind") == "frequency"  # rows the weights stand for
 
     ((rows,),) = engine.fetch(row_count_query(scratch))
     return Evaluation(

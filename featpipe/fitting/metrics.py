@@ -40,20 +40,22 @@ from ..sqlgen.profile import (
     read_profiles,
     with_edge_counts,
 )
+from ..sqlgen.families import sums_family
 from ..sqlgen.ranks import ks_query, rank_components_query, read_rank_sums
 from .recalibration import recalibration
 
 
 def holdout_metrics(
     engine: Engine, layout: DesignLayout, family: str, coefficients: Mapping[str, float], threshold: float,
-    counted: bool = False,
+    counted: bool = False, power: float | None = None,
 ) -> dict:
     """Metrics of the model `coefficients` on the held-out complete rows of its design table (see
     `scored_rows_metrics`); `counted` when the spec's weights are frequency weights."""
-    return scored_rows_metrics(engine, scored_holdout(layout, coefficients, counted), family, threshold, counted)
+    return scored_rows_metrics(engine, scored_holdout(layout, coefficients, counted), family, threshold, counted, power)
 
 
-def scored_rows_metrics(engine: Engine, rows: exp.Select, family: str, threshold: float, counted: bool = False) -> dict:
+def scored_rows_metrics(engine: Engine, rows: exp.Select, family: str, threshold: float, counted: bool = False,
+                        power: float | None = None) -> dict:
     """Metrics of a model on `rows`, a query of labelled rows scored by it: KEY, OBSERVED and ETA (the
     linear predictor), as featpipe.sqlgen.metrics.scored_holdout gives for a design table's holdout.
     Unweighted (variance weights are a fitting device; a metric counts each row once), or with
@@ -67,7 +69,7 @@ def scored_rows_metrics(engine: Engine, rows: exp.Select, family: str, threshold
     variance, normal approximation, cut to [0, 1]), gini (2 auc - 1), ks (the largest gap between the
     cumulative distributions of the predicted probability among events and non-events) and ks_score
     (the probability where it occurs, the lowest of equal gaps), log_loss, brier.
-    poisson and gaussian: rows, deviance (the family's, summed), mean_absolute_error, rmse,
+    poisson, gaussian, gamma and tweedie (`power`): rows, deviance (the family's, summed), mean_absolute_error, rmse,
     mean_observed, mean_predicted.
     Every family: calibration_intercept and calibration_slope (featpipe.fitting.recalibration; 0 and 1
     when calibrated); calibration, one entry per decile of the prediction, {decile, rows,
@@ -76,22 +78,23 @@ def scored_rows_metrics(engine: Engine, rows: exp.Select, family: str, threshold
     A ratio with a zero denominator (precision without predicted events, recall without events, AUC
     with one class only) is None. With no rows (holdout fraction 0) the result is {"rows": 0}.
     """
-    if family == "binomial":
+    base = sums_family(family)  # a quasi family predicts, and so is measured, as its base family
+    if base == "binomial":
         metrics = _binomial(engine.fetch(binomial_summary_query(rows, threshold, counted))[0])
     else:
-        metrics = _regression(engine.fetch(regression_summary_query(rows, family, counted))[0])
+        metrics = _regression(engine.fetch(regression_summary_query(rows, family, counted, power))[0])
     if metrics["rows"] == 0:
         return {"rows": 0}
-    if family == "binomial":
+    if base == "binomial":
         metrics = _with_rank_metrics(engine, rows, metrics)
-    metrics.update(recalibration(engine, rows, family))
+    metrics.update(recalibration(engine, rows, base))
     deciles = [(int(decile), int(count), float(predicted), float(observed))
                for decile, count, predicted, observed in engine.fetch(calibration_query(rows, family, counted))]
     metrics["calibration"] = [
         {"decile": decile, "rows": count, "mean_predicted": predicted / count, "mean_observed": observed / count}
         for decile, count, predicted, observed in deciles
     ]
-    if family == "binomial":
+    if base == "binomial":
         metrics["gains"] = gains_table(deciles)
     return metrics
 

@@ -65,14 +65,15 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
     penalty, l2_choice = chosen_penalty(engine, layout, spec)
-    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency").fit(engine, layout)
+    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power).fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
         engine, layout,
         {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency")
+    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
+                              power=spec.power)
     intercept, *slopes = glm.coefficients
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     fitted_terms += [
@@ -100,9 +101,10 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "passes": int(glm.convergence.passes_over_data),  # full reads of the training rows by the fit
             "deviance": float(glm.goodness_of_fit.deviance),
             "null_deviance": float(glm.goodness_of_fit.null_deviance),
-            "log_likelihood": float(glm.goodness_of_fit.log_likelihood),
-            "aic": float(glm.goodness_of_fit.aic),
-            "bic": float(glm.goodness_of_fit.bic),
+            # None where the family has no log-likelihood a sum gives (tweedie, the quasi families)
+            "log_likelihood": glm.goodness_of_fit.log_likelihood,
+            "aic": glm.goodness_of_fit.aic,
+            "bic": glm.goodness_of_fit.bic,
             "dispersion": float(glm.goodness_of_fit.dispersion),
             "statistic": glm.statistic_name,
             "penalized": spec.penalty.active,
@@ -110,7 +112,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "observations": float(glm.rows.n),
             "pearson_chi2": float(glm.goodness_of_fit.pearson_chi2),
             "pearson_dispersion": float(pearson_ratio(glm.goodness_of_fit.pearson_chi2, glm.rows.df_residual)),
-            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active),
+            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active, family=spec.family),
+            **({"power": spec.power} if spec.power is not None else {}),
         },
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],

@@ -124,6 +124,9 @@ def suggest(
 
     spec, project = model.spec, compiled.project
     source = project.inputs[spec.input]
+    if spec.family not in ("binomial", "poisson", "gaussian"):
+        raise FeatpipeError(f"{spec.display}: suggest's score tests are written for the binomial, poisson and gaussian "
+                            f"families, not {spec.family}; try candidate terms by adding them to the spec and fitting")
     if spec.penalty.active:
         raise FeatpipeError(f"{spec.display}: the model is penalized; score tests need a plain maximum-likelihood fit "
                             "(set penalty l2 and l1 to 0, fit, then suggest)")

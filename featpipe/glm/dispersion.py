@@ -14,6 +14,17 @@ import math
 OVERDISPERSED = 1.5  # common practice as a screen for Pearson chi2 / df
 
 
+def estimated_dispersion(family, deviance: float, pearson_chi2: float, df_residual: float) -> float:
+    """The dispersion the standard errors use: 1 for binomial and poisson; deviance / df for gaussian (the
+    residual mean square, equal to Pearson's); Pearson chi2 / df for gamma, tweedie and the quasi families
+    (as R's summary.glm and statsmodels' default scale)."""
+    if not family.estimates_dispersion:
+        return 1.0
+    if family.name == "gaussian":
+        return deviance / df_residual
+    return pearson_ratio(pearson_chi2, df_residual)
+
+
 def pearson_ratio(pearson_chi2: float, df_residual: float) -> float:
     """Pearson chi2 / df (NaN without residual degrees of freedom)."""
     return pearson_chi2 / df_residual if df_residual > 0 else math.nan
@@ -28,4 +39,5 @@ def overdispersion_warning(family: str, ratio: float, binary: bool) -> str | Non
             f"{'counts' if family == 'poisson' else 'successes'} vary more than the {family} family allows "
             "(overdispersion), so the standard errors are too small and the p-values too optimistic; read each "
             f"standard error as about {math.sqrt(ratio):.2f} times larger (the quasi-{family} correction, the square "
-            "root of the ratio), or add the terms that explain the extra variation")
+            f"root of the ratio): refit with family: quasi{family}, which scales them so, or add "
+            "the terms that explain the extra variation")

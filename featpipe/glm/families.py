@@ -1,14 +1,21 @@
 """GLM families with their canonical links, in numpy, matching the SQL of `sqlgen.statistics` row by row.
 
-All three links are canonical, so the working weight is prior weight times the variance function and
-the score is sum of w (y - mu) x. Deviance and log-likelihood follow the definitions of R's `glm` and
-statsmodels (prior weights act like statsmodels' `var_weights`):
+Binomial, poisson and gaussian have canonical links, so the working weight is prior weight times the
+variance function and the score is sum of w (y - mu) x. Gamma and tweedie use the log link, which is
+not canonical for them: Fisher scoring then takes the working weight w mu^2 / V(mu) and the score
+sum of w (y - mu) mu / V(mu) x (`working_weight`, `score_residual`), the expected information R's glm
+and statsmodels use. Deviance and log-likelihood follow the definitions of R's `glm` and statsmodels
+(prior weights act like statsmodels' `var_weights`):
 
 - binomial (logit), y in {0, 1}: unit deviance 2 (ln(1 + e^eta) - y eta); llf = -deviance / 2.
 - poisson (log): unit deviance 2 (y ln(y / mu) - (y - mu));
   llf = sum w (y ln mu - mu - ln y!) = -deviance / 2 + sum w (y ln y - y - ln y!).
 - gaussian (identity): unit deviance (y - mu)^2; llf at the maximum-likelihood scale
   s2 = deviance / n: -(n ln(2 pi s2) + n - sum ln w) / 2.
+- gamma (log), y > 0: unit deviance 2 ((y - mu) / mu - ln(y / mu)); see `log_families`.
+- tweedie (log) with power p in (1, 2), y >= 0: unit deviance
+  2 (y^(2-p) / ((1-p)(2-p)) - y mu^(1-p) / (1-p) + mu^(2-p) / (2-p)); see `log_families`.
+- quasipoisson and quasibinomial: the poisson and binomial fits, with the dispersion estimated.
 """
 
 from __future__ import annotations
@@ -31,10 +38,16 @@ class Family(ABC):
     link: str
     statistic_name = "z"  # dispersion fixed at 1: normal reference distribution
     estimates_dispersion = False
+    power: float | None = None  # the tweedie variance power
     # The linear predictor is clamped to +-eta_limit before EXP: far beyond any useful fitted value,
     # and small enough that EXP and sums of EXP stay finite on every engine (PostgreSQL raises on
     # overflow). None: the family takes no EXP.
     eta_limit: float | None = None
+
+    def tolerance(self, tol: float) -> float:
+        """The IRLS stopping tolerance giving estimates as exact as `tol` does for a canonical link, whose last
+        (Newton) step squares the remaining error."""
+        return tol
 
     def clamp(self, eta: np.ndarray) -> np.ndarray:
         return eta if self.eta_limit is None else np.clip(eta, -self.eta_limit, self.eta_limit)
@@ -50,6 +63,14 @@ class Family(ABC):
     @abstractmethod
     def unit_deviance(self, y: np.ndarray, eta: np.ndarray, mu: np.ndarray) -> np.ndarray:
         """Each row's deviance contribution before its prior weight."""
+
+    def working_weight(self, mu: np.ndarray) -> np.ndarray:
+        """The IRLS working weight before the prior weight: V(mu) for a canonical link."""
+        return self.variance(mu)
+
+    def score_residual(self, y: np.ndarray, mu: np.ndarray) -> np.ndarray:
+        """A row's score contribution per design value before the prior weight: y - mu for a canonical link."""
+        return y - mu
 
     def pearson(self, y: np.ndarray, mu: np.ndarray) -> np.ndarray:
         """Each row's Pearson chi2 (y - mu)^2 / V(mu) before its prior weight; 0 where V(mu) is 0 (the SQL
@@ -117,6 +138,27 @@ class Poisson(Family):
         return y_ln_y - y - gammaln(y + 1.0)
 
 
+class QuasiPoisson(Poisson):
+    """Poisson's mean, variance function and deviance, with the dispersion estimated by Pearson chi2 / df
+    (R's quasipoisson): the estimates are poisson's, the standard errors scaled by the root of the dispersion."""
+
+    name = "quasipoisson"
+    link = LINKS[name]
+    statistic_name = "t"
+    estimates_dispersion = True
+    likelihood_constant = None  # no likelihood: the poisson data term is not needed
+
+
+class QuasiBinomial(Binomial):
+    """Binomial's mean, variance function and deviance, with the dispersion estimated by Pearson chi2 / df
+    (R's quasibinomial)."""
+
+    name = "quasibinomial"
+    link = LINKS[name]
+    statistic_name = "t"
+    estimates_dispersion = True
+
+
 class Gaussian(Family):
     name = "gaussian"
     link = LINKS[name]
@@ -136,11 +178,81 @@ class Gaussian(Family):
         return mean
 
 
-FAMILIES = {family.name: family for family in (Binomial(), Poisson(), Gaussian())}
+class _LogLink(Family):
+    """A family with the log link that is not its canonical link (gamma, tweedie); dispersion estimated."""
+
+    statistic_name = "t"
+    estimates_dispersion = True
+    eta_limit = 50.0
+
+    def tolerance(self, tol):
+        """Fisher scoring with a non-canonical link converges linearly, so the last step does not square the
+        error: stop at the square of the tolerance (the predicted change is a sum of squares, exact far below
+        the deviance's own rounding)."""
+        return tol * tol
+
+    def mean(self, eta):
+        return np.exp(eta)
+
+    def working_weight(self, mu):
+        return mu**2 / self.variance(mu)
+
+    def score_residual(self, y, mu):
+        return (y - mu) * mu / self.variance(mu)
+
+    def boundary(self, eta):
+        return eta < -BOUNDARY_ETA
+
+    def link_of_mean(self, mean):
+        return math.log(mean)
 
 
-def get_family(name: str) -> Family:
+class Gamma(_LogLink):
+    name = "gamma"
+    link = LINKS[name]
+
+    def variance(self, mu):
+        return mu**2
+
+    def unit_deviance(self, y, eta, mu):
+        return 2.0 * ((y - mu) / mu - np.log(np.where(y > 0, y, np.nan)) + eta)  # NaN where y <= 0, refused before a fit
+
+    @staticmethod
+    def likelihood_constant(y: np.ndarray) -> np.ndarray:
+        """Per row, -ln y: the part of the gamma log-likelihood that depends on the target alone (0 where y is
+        not positive: such rows are refused before a fit)."""
+        return -np.log(np.where(y > 0, y, 1.0))
+
+
+class Tweedie(_LogLink):
+    name = "tweedie"
+    link = LINKS[name]
+
+    def __init__(self, power: float | None):
+        if power is None or not 1.0 < power < 2.0:
+            raise ValueError(f"the tweedie family needs a power strictly between 1 and 2, not {power!r}")
+        self.power = float(power)
+
+    def variance(self, mu):
+        return mu**self.power
+
+    def unit_deviance(self, y, eta, mu):
+        p = self.power
+        y_part = np.where(y > 0, np.power(np.where(y > 0, y, 1.0), 2.0 - p), 0.0) / ((1.0 - p) * (2.0 - p))
+        return 2.0 * (y_part - y * np.exp((1.0 - p) * eta) / (1.0 - p) + np.exp((2.0 - p) * eta) / (2.0 - p))
+
+
+FAMILIES = {family.name: family for family in (Binomial(), Poisson(), Gaussian(), Gamma(), QuasiPoisson(), QuasiBinomial())}
+
+
+def get_family(name: str, power: float | None = None) -> Family:
+    """The family called `name`; tweedie takes its variance `power` in (1, 2), the others none."""
+    if name == "tweedie":
+        return Tweedie(power)
+    if power is not None:
+        raise ValueError(f"only the tweedie family takes a power, not {name!r}")
     try:
         return FAMILIES[name]
     except KeyError:
-        raise ValueError(f"unknown family {name!r}; use one of {', '.join(FAMILIES)}") from None
+        raise ValueError(f"unknown family {name!r}; use one of {', '.join([*FAMILIES, 'tweedie'])}") from None
+

@@ -44,8 +44,8 @@ from ..sqlgen.statistics import (
     target_counts_query,
 )
 from . import problems
-from .dispersion import overdispersion_warning, pearson_ratio
-from .families import Family, Poisson, get_family
+from .dispersion import estimated_dispersion, overdispersion_warning, pearson_ratio
+from .families import Family, get_family
 from .inference import Wald, information_criteria, log_likelihood, wald
 from .irls import AliasedTerms, IrlsResult, run_irls
 from .linalg import inverse_spd, variance_inflation
@@ -80,6 +80,7 @@ class Glm:
     rows, the warm start. A table sorted by a term gives a poorer warm start (more passes), not a
     different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
+    `power`: the tweedie variance power, in (1, 2); None for the other families.
     """
 
     family: str
@@ -91,9 +92,10 @@ class Glm:
     sample_rows: int = SAMPLE_ROWS
     batch_rows: int = BATCH_ROWS
     frequency_weights: bool = False
+    power: float | None = None
 
     def __post_init__(self) -> None:
-        get_family(self.family)  # raises on an unknown family
+        get_family(self.family, self.power)  # raises on an unknown family or a power it does not take
         if not (self.penalty.l2 >= 0 and self.penalty.l1 >= 0):
             raise ValueError(f"penalty l2 and l1 must be zero or more, not {self.penalty.l2!r} and {self.penalty.l1!r}")
         if self.max_iter < 1:
@@ -109,7 +111,7 @@ class Glm:
 
     def fit(self, engine: Engine, layout: DesignLayout) -> GlmResult:
         """Fit on the training rows of a design table in `engine`."""
-        family = get_family(self.family)
+        family = get_family(self.family, self.power)
         streamed = self.source == "stream" or (self.source == "auto" and engine.name == "duckdb")
         ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
         frame = engine.fetch_frame(design_columns_query(layout, limit=self.sample_rows, ordered=ordered))
@@ -134,7 +136,7 @@ class Glm:
     def fit_arrays(self, X, y, offset=None, weights=None, names: tuple[str, ...] | None = None) -> GlmResult:
         """The same fit on in-memory arrays: X (rows x terms, no intercept column), y, optional offset and
         weights; `names` name the terms (x1, x2, ... by default)."""
-        family = get_family(self.family)
+        family = get_family(self.family, self.power)
         terms = np.asarray(X, dtype=float)
         terms = terms.reshape(len(terms), -1)
         names = tuple(names) if names is not None else tuple(f"x{j + 1}" for j in range(terms.shape[1]))
@@ -167,12 +169,13 @@ class Glm:
         penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
         try:
             model, null = run_irls(
-                problem.statistics, starts, penalty, profile.weight_sum, self.max_iter, self.tol,
+                problem.statistics, starts, penalty, profile.weight_sum, self.max_iter, problem.family.tolerance(self.tol),
                 allow_aliasing=penalty.active, first=first,
             )
         except AliasedTerms as error:
             raise FeatpipeError(problems.aliased_message(error.aliases, problem.data, problem.scaling)) from None
-        solution = _Solution(model=model, null=null, profile=profile, constant=constant, penalty=penalty, warnings=tuple(warnings))
+        solution = _Solution(model=model, null=null, profile=profile, constant=constant, penalty=penalty, warnings=tuple(warnings),
+                             variance_weighted=problem.data.weight is not None and not self.frequency_weights)
         return _result(problem, solution, self.max_iter)
 
     def _warm_starts(self, problem: _Problem, starts: list[Request]) -> list[Request]:
@@ -211,22 +214,24 @@ class _Solution:
     model: IrlsResult
     null: IrlsResult
     profile: TrainingProfile
-    constant: float  # the poisson log-likelihood constant (0 for the other families)
+    constant: float  # the poisson or gamma log-likelihood constant (0 for the other families)
     penalty: ScaledPenalty
     warnings: tuple[str, ...]  # from the checks of the training rows
+    variance_weighted: bool = False  # weights that weigh precision rather than count rows
 
 
 def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling) -> tuple[tuple[TrainingProfile, float], int]:
-    """The training profile and poisson log-likelihood constant from aggregate queries; and how many
-    full reads that took."""
+    """The training profile and the log-likelihood constant (poisson, gamma) from aggregate queries; and how
+    many full reads that took."""
     shifts = dict(zip(layout.terms, scaling.centers.tolist(), strict=True))
     profile = read_profile(engine.fetch(profile_query(layout, shifts))[0], layout, shifts)
-    if family.name != "poisson":
+    constant = getattr(family, "likelihood_constant", None)
+    if constant is None:
         return (profile, 0.0), 1
     counts = sorted((float(value), float(weight)) for value, weight in engine.fetch(target_counts_query(layout)))
     values = np.array([value for value, _ in counts])
     weights = np.array([weight for _, weight in counts])
-    return (profile, float(weights @ Poisson.likelihood_constant(values))), 2
+    return (profile, float(weights @ constant(values))), 2
 
 
 def _starts(problem: _Problem) -> list[Request]:
@@ -236,9 +241,9 @@ def _starts(problem: _Problem) -> list[Request]:
     weight = np.ones(rows) if sample.weight is None else sample.weight
     total = float(weight.sum()) if rows else 1.0
     mean = float(weight @ sample.y) / total if rows else 0.5
-    if family.name == "binomial":
+    if family.link == "logit":
         mean = min(max(mean, 0.5 / (rows + 1)), 1 - 0.5 / (rows + 1))
-    elif family.name == "poisson":
+    elif family.link == "log":
         mean = max(mean, 0.5 / (rows + 1))
     offset = float(weight @ sample.offset) / total if rows and sample.offset is not None else 0.0
     intercept = family.link_of_mean(mean) - offset
@@ -261,7 +266,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     coef = transform @ model.beta
     size = len(coef)
     df_residual = profile.rows - size
-    dispersion = statistics.deviance / df_residual if family.estimates_dispersion else 1.0
+    dispersion = estimated_dispersion(family, statistics.deviance, statistics.pearson, df_residual)
     inverse = inverse_spd(statistics.xtwx)
     covariance = inference = None
     if not penalty.active:
@@ -293,7 +298,8 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     if overdispersed:
         warnings.append(overdispersed)
     parameters = penalty.effective_df(statistics.xtwx, model.beta, profile.weight_sum) if penalty.active else size
-    llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, solution.constant)
+    llf = log_likelihood(family, statistics.deviance, profile.rows, profile.log_weight_sum, solution.constant,
+                         dispersion=dispersion, variance_weighted=solution.variance_weighted)
     aic, bic = information_criteria(llf, parameters, profile.rows)
     return GlmResult(
         family=family.name,
@@ -305,9 +311,9 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         goodness_of_fit=GoodnessOfFit(
             deviance=float(statistics.deviance),
             null_deviance=float(solution.null.statistics.deviance),
-            log_likelihood=float(llf),
-            aic=float(aic),
-            bic=float(bic),
+            log_likelihood=_maybe(llf),
+            aic=_maybe(aic),
+            bic=_maybe(bic),
             dispersion=float(dispersion),
             effective_df=float(parameters),
             pearson_chi2=float(statistics.pearson),
@@ -321,6 +327,10 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         ),
         warnings=tuple(warnings),
     )
+
+
+def _maybe(value: float | None) -> float | None:
+    return None if value is None else float(value)
 
 
 def _coefficients(names: tuple[str, ...], coef: np.ndarray, inference: Wald | None, vif: np.ndarray) -> tuple[Coefficient, ...]:

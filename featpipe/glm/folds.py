@@ -57,7 +57,8 @@ class FoldSource:
         models = [ModelRequest(tuple(self.layout.terms[i] for i in request.terms), tuple(request.beta.tolist()))
                   for request in requests]
         query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models,
-                                 eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA, group=self.fold)
+                                 eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA, group=self.fold,
+                                 power=self.family.power)
         sizes = [len(request.terms) + 1 for request in requests]
         # Each row: the fold, every model's sums, then every model's Pearson chi2 (not needed here).
         groups = {int(row[0]): _unpack(row[1 : len(row) - len(requests)], sizes) for row in self.engine.fetch(query)}

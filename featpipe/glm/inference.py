@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
+from scipy.special import gammaln
 
 from .families import Family
 from .result import Inference
@@ -44,8 +45,19 @@ def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: 
     return Wald(stderr, statistic, p_value, coef - quantile * stderr, coef + quantile * stderr)
 
 
-def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: float, constant: float) -> float:
-    """llf as statsmodels and R define it (see `families`); `constant` is the poisson data term."""
+def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: float, constant: float, *,
+                   dispersion: float = 1.0, variance_weighted: bool = False) -> float | None:
+    """llf as statsmodels and R define it (see `families`); `constant` is the poisson or gamma data term.
+
+    gamma (statsmodels' llf, at the Pearson dispersion phi, each row counted once or as its frequency weight):
+    -deviance / (2 phi) - n (1 + ln phi) / phi - n ln Gamma(1 / phi) - sum ln y. None where a sum cannot give it:
+    gamma with variance weights (it needs ln Gamma of each weight / phi), tweedie (its density is an infinite
+    series per row) and the quasi families (no likelihood at all, as R's glm says).
+    """
+    if family.name == "gamma" and not variance_weighted:
+        return -0.5 * deviance / dispersion - rows * (1.0 + math.log(dispersion)) / dispersion - rows * gammaln(1.0 / dispersion) + constant
+    if family.name in ("gamma", "tweedie", "quasipoisson", "quasibinomial"):
+        return None
     if family.name == "gaussian":
         scale = deviance / rows
         return -0.5 * (rows * math.log(2.0 * math.pi * scale) + rows - log_weight_sum)
@@ -54,7 +66,9 @@ def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: f
     return -0.5 * deviance
 
 
-def information_criteria(llf: float, parameters: float, rows: float) -> tuple[float, float]:
+def information_criteria(llf: float | None, parameters: float, rows: float) -> tuple[float | None, float | None]:
     """AIC = -2 llf + 2 k (as statsmodels' GLM `aic`: k counts the coefficients, not the scale) and
-    BIC = -2 llf + k ln n (statsmodels' `bic_llf`)."""
+    BIC = -2 llf + k ln n (statsmodels' `bic_llf`); None without a log-likelihood."""
+    if llf is None:
+        return None, None
     return -2.0 * llf + 2.0 * parameters, -2.0 * llf + parameters * math.log(rows)

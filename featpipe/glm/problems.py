@@ -43,6 +43,7 @@ def check_training_rows(profile: TrainingProfile, family: Family, data: DataName
             "prior weights must be positive: filter those rows out or fix the weight column"
         )
     _check_target_domain(profile, family, where, target)
+    _check_positive_domain(profile, family, where, target)
     bad = [term.name for term in profile.terms if not all(map(math.isfinite, (term.mean, term.min, term.max)))]
     if bad:
         raise FeatpipeError(
@@ -95,10 +96,36 @@ def _check_target_domain(profile: TrainingProfile, family: Family, where: str, t
             raise FeatpipeError(f"{where}: target '{target}' is 0 on every training row, so there is nothing to model")
 
 
+def _check_positive_domain(profile: TrainingProfile, family: Family, where: str, target: str) -> None:
+    """gamma needs a positive target; tweedie and quasipoisson one that is never negative; quasibinomial a
+    proportion (0 to 1)."""
+    if profile.rows == 0 or family.name not in ("gamma", "tweedie", "quasipoisson", "quasibinomial"):
+        return
+    observed = f"(training values range from {profile.target_min:g} to {profile.target_max:g})"
+    if family.name == "gamma" and profile.target_min <= 0:
+        raise FeatpipeError(
+            f"{where}: a gamma target is a positive amount, but '{target}' is zero or negative on some training rows "
+            f"{observed}; leave the rows without an amount out of the severity model, or choose family: tweedie "
+            "(exact zeros allowed)"
+        )
+    if family.name in ("tweedie", "quasipoisson") and profile.negative:
+        raise FeatpipeError(
+            f"{where}: a {family.name} target is never negative, but '{target}' is negative on {profile.negative} "
+            f"training rows {observed}; fix the target or choose family: gaussian"
+        )
+    if family.name == "quasibinomial" and (profile.negative or profile.target_max > 1):
+        raise FeatpipeError(
+            f"{where}: a quasibinomial target is a proportion from 0 to 1, but '{target}' is not {observed}; "
+            "divide successes by trials and give the trials as weights"
+        )
+    if profile.target_sum == 0:
+        raise FeatpipeError(f"{where}: target '{target}' is 0 on every training row, so there is nothing to model")
+
+
 def _thin_data(profile: TrainingProfile, family: Family) -> list[str]:
-    if family.name == "gaussian" or not profile.terms:
+    if family.name in ("gaussian", "gamma", "tweedie") or not profile.terms:
         return []
-    if family.name == "binomial":
+    if family.link == "logit":
         events = min(profile.target_sum, profile.rows - profile.target_sum)
         kind = "events (rows of the rarer outcome)"
     else:

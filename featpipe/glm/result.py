@@ -41,10 +41,10 @@ class Coefficient:
 class GoodnessOfFit:
     deviance: float
     null_deviance: float  # intercept-only model with the same offset and weights
-    log_likelihood: float
-    aic: float  # -2 llf + 2 k, k = coefficients (the effective degrees of freedom of a penalized fit)
-    bic: float  # -2 llf + k ln n
-    dispersion: float  # Pearson chi2 / (n - p) for gaussian, 1 otherwise
+    log_likelihood: float | None  # None where the family has no log-likelihood a sum gives (see inference)
+    aic: float | None  # -2 llf + 2 k, k = coefficients (the effective degrees of freedom of a penalized fit)
+    bic: float | None  # -2 llf + k ln n
+    dispersion: float  # Pearson chi2 / (n - p) when the family estimates it (gaussian, gamma, tweedie, quasi), 1 otherwise
     effective_df: float  # trace of the hat matrix: the coefficients without a penalty, fewer with one
     pearson_chi2: float  # sum of w (y - mu)^2 / V(mu)
 

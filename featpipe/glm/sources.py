@@ -32,7 +32,7 @@ from ..sqlgen.statistics import (
     term_profile,
     upper_pairs,
 )
-from .families import BOUNDARY_ETA, Family, Poisson
+from .families import BOUNDARY_ETA, Family
 
 
 @dataclass(frozen=True)
@@ -101,7 +101,7 @@ class SqlAggregateSource:
             for request in requests
         ]
         query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models,
-                                 eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA)
+                                 eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA, power=self.family.power)
         (row,) = self.engine.fetch(query)
         self.passes += 1
         pearson = [np.nan if value is None else float(value) for value in row[len(row) - len(requests):]]
@@ -162,9 +162,9 @@ class BatchSource:
         return self._pass(requests, None)
 
     def evaluate_with_profile(self, requests: Sequence[Request], names: Sequence[str]) -> tuple[list[Statistics], TrainingProfile, float]:
-        """Statistics, the training profile (shifted by the scaling's centers) and, for poisson, the
-        log-likelihood constant sum of w (y ln y - y - ln y!)."""
-        profile = _ProfileTotals(self.scaling.centers, self.family.name == "poisson")
+        """Statistics, the training profile (shifted by the scaling's centers) and, for poisson and gamma,
+        the log-likelihood constant: the sum of w times the family's `likelihood_constant` of y."""
+        profile = _ProfileTotals(self.scaling.centers, getattr(self.family, "likelihood_constant", None))
         statistics = self._pass(requests, profile)
         return statistics, profile.profile(names), profile.constant
 
@@ -213,8 +213,8 @@ class _Totals:
             eta += batch.offset
         eta = family.clamp(eta)
         mu = family.mean(eta)
-        weight = family.variance(mu)
-        residual = batch.y - mu
+        weight = family.working_weight(mu)
+        residual = family.score_residual(batch.y, mu)
         unit = family.unit_deviance(batch.y, eta, mu)
         pearson = family.pearson(batch.y, mu)
         if batch.weight is not None:
@@ -239,8 +239,8 @@ class _Totals:
 class _ProfileTotals:
     """Running sums of the training profile, the same sums `profile_query` takes in SQL."""
 
-    def __init__(self, shifts: np.ndarray, poisson: bool):
-        self.shifts, self.poisson = shifts, poisson
+    def __init__(self, shifts: np.ndarray, likelihood_constant: Callable[[np.ndarray], np.ndarray] | None):
+        self.shifts, self.likelihood_constant = shifts, likelihood_constant
         size = len(shifts)
         self.rows, self.not_binary, self.negative, self.not_integer, self.nonpositive_weights = 0, 0, 0, 0, 0
         self.weight_sum = self.weighted_target_sum = self.target_sum = 0.0
@@ -265,8 +265,8 @@ class _ProfileTotals:
         self.not_binary += int(((y != 0) & (y != 1)).sum())
         self.negative += int((y < 0).sum())
         self.not_integer += int((y != np.floor(y)).sum())
-        if self.poisson:
-            constant = Poisson.likelihood_constant(y)
+        if self.likelihood_constant is not None:
+            constant = self.likelihood_constant(y)
             self.constant += float(constant.sum() if weight is None else weight @ constant)
         if standardized.shape[1]:  # whole-matrix reductions: one call per statistic, not per term
             self.shifted += (np.ones(len(y)) @ standardized) * scales

@@ -21,7 +21,8 @@ from .names import NAME_PATTERN, NAME_RULE, scoring_clash
 from .yamlfile import YamlDocument, read_text, read_yaml
 
 PROJECT_FILE = "featpipe.yaml"
-LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity"}  # each GLM family with its link
+LINKS = {"binomial": "logit", "poisson": "log", "gaussian": "identity", "gamma": "log", "tweedie": "log",
+         "quasipoisson": "log", "quasibinomial": "logit"}  # each GLM family with its link
 FAMILIES = tuple(LINKS)
 ENGINE_KINDS = ("duckdb", "postgres", "spark")
 EXPECTATIONS = ("positive", "negative")
@@ -119,6 +120,7 @@ class ModelSpec:
     notes: dict[str, str] = field(default_factory=dict)
     max_dropped: float = 0.05  # largest share of rows that may be dropped for NULLs before a fit refuses
     weight_kind: str = "variance"  # "frequency": a row stands for `weights` identical rows
+    power: float | None = None  # the tweedie variance power, in (1, 2)
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
 
     def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
@@ -334,7 +336,7 @@ def is_sql_type(kind: str) -> bool:
 
 MODEL_KEYS = {
     "input", "target", "family", "offset", "weights", "terms", "penalty",
-    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped",
+    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power",
 }
 MAX_FOLDS = 20
 
@@ -368,6 +370,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         diagnostics.append(document.at(("input",), f"unknown input '{input_name}'" + (f"; did you mean '{hint[0]}'?" if hint else "")))
     if family and family not in FAMILIES:
         diagnostics.append(document.at(("family",), f"unknown family '{family}'; use one of {', '.join(FAMILIES)}"))
+    power = _power(document, family, data.get("power"), diagnostics)
     columns = inputs[input_name].columns if input_name in inputs else {}
     if target and columns and target not in columns:
         diagnostics.append(document.at(("target",), f"target '{target}' is not a column of input '{input_name}'"))
@@ -444,7 +447,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     return ModelSpec(
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
         offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
-        expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, document=document,
+        expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, power=power, document=document,
     )
 
 
@@ -487,6 +490,21 @@ def _out_of_time(document, data: dict, columns: dict[str, str], input_name: str,
     diagnostics.append(document.at(("holdout", "column"), f"holdout column '{name}' is {columns[name]}; an out-of-time "
                                    "holdout needs a date, timestamp or numeric column"))
     return Holdout()
+
+
+def _power(document, family: str, value, diagnostics) -> float | None:
+    """The tweedie variance power: required with family tweedie, strictly between 1 (poisson) and 2 (gamma)."""
+    if family != "tweedie":
+        if value is not None:
+            diagnostics.append(document.at(("power",), f"power is the tweedie variance power; family {family} takes none, "
+                                           "remove it", key=True))
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 1.0 < value < 2.0:
+        diagnostics.append(document.at(("power",) if value is not None else ("family",), "family tweedie needs power: a "
+                                       "number strictly between 1 (poisson) and 2 (gamma), e.g. power: 1.5"
+                                       + ("" if value is None else f", not {value!r}")))
+        return None
+    return float(value)
 
 
 def _weights(document, value, diagnostics) -> tuple[str | None, str]:

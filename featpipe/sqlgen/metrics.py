@@ -22,6 +22,7 @@ from ..compiler.layout import DesignLayout
 from ..project import FAMILIES
 from ..project.names import INTERCEPT, ROWS
 from .common import alias, column, holdout_rows, number
+from .families import LOG_LINK, log_link_parts, sums_family
 
 # EXP(700) is about 1e304 and EXP(-700) about 1e-304: finite and non-zero on every engine.
 ETA_LIMIT = 700.0
@@ -57,12 +58,13 @@ def linear_predictor(layout: DesignLayout, coefficients: Mapping[str, float]) ->
 def prediction(family: str, eta: exp.Expression) -> exp.Expression:
     """The inverse link of any linear-predictor tree `eta`: the probability, expected count or mean.
 
-    binomial 1 / (1 + EXP(-eta)) and poisson EXP(eta), with eta clamped to [-700, 700] first;
-    gaussian eta itself. A NULL eta gives NULL.
+    binomial 1 / (1 + EXP(-eta)) and poisson, gamma and tweedie EXP(eta), with eta clamped to [-700, 700]
+    first; gaussian eta itself. A NULL eta gives NULL. A quasi family predicts as its base family.
     """
+    family = sums_family(family) if family in FAMILIES else family
     if family == "gaussian":
         return eta.copy()
-    if family == "poisson":
+    if family == "poisson" or family in LOG_LINK:
         return exp.Exp(this=clamped(eta))
     if family == "binomial":
         denominator = exp.Add(this=number(1.0), expression=exp.Exp(this=exp.Neg(this=exp.Paren(this=clamped(eta)))))
@@ -162,17 +164,18 @@ def binomial_summary_query(rows: exp.Select, threshold: float, counted: bool = F
     ).from_(ranked.subquery("_ranked"))
 
 
-def regression_summary_query(rows: exp.Select, family: str, counted: bool = False) -> exp.Select:
+def regression_summary_query(rows: exp.Select, family: str, counted: bool = False, power: float | None = None) -> exp.Select:
     """One row: rows, sums of observed and predicted, of |y - mu|, of (y - mu)^2 and of the unit deviance.
 
-    Unit deviance: poisson 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0; gaussian (y - mu)^2.
+    Unit deviance: poisson (and quasipoisson) 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0;
+    gaussian (y - mu)^2; gamma and tweedie (variance `power`) as `families` writes them.
     """
-    if family not in ("poisson", "gaussian"):
-        raise ValueError(f"regression metrics are for poisson or gaussian models, not '{family}'")
+    if family not in ("poisson", "quasipoisson", "gaussian", *LOG_LINK):
+        raise ValueError(f"regression metrics are for poisson, gaussian, gamma or tweedie models, not '{family}'")
     y, mu = column(OBSERVED), column(PREDICTED)
     residual = exp.Paren(this=exp.Sub(this=y.copy(), expression=mu.copy()))
     squared = exp.Mul(this=residual, expression=residual.copy())
-    if family == "poisson":
+    if family in ("poisson", "quasipoisson"):
         ratio = exp.Div(this=y.copy(), expression=exp.Nullif(this=mu.copy(), expression=number(0.0)))
         y_log_ratio = (
             exp.Case()
@@ -180,6 +183,8 @@ def regression_summary_query(rows: exp.Select, family: str, counted: bool = Fals
             .else_(number(0.0))
         )
         deviance = exp.Mul(this=number(2.0), expression=exp.Paren(this=exp.Sub(this=y_log_ratio, expression=residual.copy())))
+    elif family in LOG_LINK:
+        deviance = log_link_parts(family, power, y, clamped(column(ETA)))[2]
     else:
         deviance = squared.copy()
     return exp.select(

@@ -32,6 +32,7 @@ from sqlglot import exp
 from ..compiler.layout import DesignLayout
 from ..project import FAMILIES
 from .common import alias, column, double, number, training_rows
+from .families import LOG_LINK, log_link_parts, log_link_pearson, sums_family
 
 
 @dataclass(frozen=True)
@@ -198,6 +199,7 @@ def statistics_query(
     eta_limit: float | None,
     boundary_eta: float,
     group: exp.Expression | None = None,
+    power: float | None = None,
 ) -> exp.Select:
     """One pass computing, for each model: deviance, boundary rows, score (q), X'WX upper triangle.
 
@@ -208,9 +210,11 @@ def statistics_query(
     standardized as (x - centers[t]) * (1 / scales[t]). The linear predictor is clamped to
     [-eta_limit, eta_limit] before EXP (None: no clamp), and a row whose |eta| exceeds `boundary_eta`
     (binomial; poisson: eta < -boundary_eta) counts as fitted at the boundary; glm.families sets both.
+    `power` is the tweedie variance power (see `families`).
     """
     if family not in FAMILIES:
         raise ValueError(f"unknown family {family}")
+    family = sums_family(family)
     terms = sorted({term for model in models for term in model.terms}, key=layout.terms.index)
     x = {term: f"_x{index}" for index, term in enumerate(terms)}
 
@@ -254,8 +258,13 @@ def statistics_query(
     for index in range(len(models)):
         eta = column(f"_eta{index}")
         mu = eta if family == "gaussian" else column(f"_mu{index}")
-        weight, residual, deviance, boundary = _family_parts(family, y, eta, mu, boundary_eta)
-        pearson = pearson_part(family, y, mu)
+        if family in LOG_LINK:  # the boundary of a log link is poisson's: eta < -boundary_eta
+            boundary = _family_parts("poisson", y, eta, mu, boundary_eta)[3]
+            weight, residual, deviance = log_link_parts(family, power, y, eta)
+            pearson = log_link_pearson(family, power, y, eta)
+        else:
+            weight, residual, deviance, boundary = _family_parts(family, y, eta, mu, boundary_eta)
+            pearson = pearson_part(family, y, mu)
         if w is not None:
             weight, residual, deviance = _mul(w, weight), _mul(w, exp.Paren(this=residual)), _mul(w, deviance)
             pearson = _mul(w.copy(), pearson)
@@ -301,7 +310,7 @@ def _clamp(value: exp.Expression, limit: float) -> exp.Case:
 
 def _mean(family: str, eta: exp.Expression) -> exp.Expression:
     """The inverse link of a clamped linear predictor."""
-    if family == "poisson":
+    if family != "binomial":  # the log link
         return exp.Exp(this=eta)
     # binomial: 1 / (1 + EXP(-eta)); the denominator is at least 1, so it needs no NULLIF guard.
     return exp.Div(this=number(1.0), expression=exp.Paren(this=_add(number(1.0), exp.Exp(this=exp.Neg(this=eta)))))

@@ -1,4 +1,5 @@
-"""Write data/vehicle_years.csv: invented claim counts per vehicle-year for a commercial fleet.
+"""Write data/vehicle_years.csv and data/claim_costs.csv: invented claim counts per vehicle-year for a
+commercial fleet, and the cost of each of those claims.
 
 Nothing here describes a real fleet, insurer or driver. The generator is deterministic (a fixed seed,
 fixed rounding), so running it again rewrites a byte-identical file.
@@ -8,6 +9,10 @@ exposure_years * exp(eta), where eta grows with vehicle age (levelling off after
 the kilometres each driver covers (a ratio), with the share of kilometres driven at night (a ratio,
 more so for heavy trucks), and shifts by vehicle class. annual_km and night_km are annualised, so a
 part-year row states the same yearly rate of use as a full-year row would.
+
+Each claim then gets a cost: gamma with shape 2 (a coefficient of variation of 0.71) around
+exp(true_log_cost), which rises with vehicle class, with age and for claims at night. The costs use a
+second generator, so adding them left vehicle_years.csv unchanged.
 
 Run: python generate.py
 """
@@ -22,6 +27,8 @@ import numpy as np
 SEED = 20240612
 ROWS = 4000
 OUTPUT = Path(__file__).resolve().parent / "data" / "vehicle_years.csv"
+COSTS = OUTPUT.with_name("claim_costs.csv")
+COST_SHAPE = 2.0
 
 CLASSES = ["van", "light_truck", "heavy_truck"]
 CLASS_SHARES = [0.45, 0.30, 0.25]
@@ -46,6 +53,27 @@ def true_log_rate(age, km_per_driver_thousands, night_share, vehicle_class):
         + 2.0 * night_share * heavy
         + shift
     )
+
+
+def true_log_cost(age, at_night, vehicle_class):
+    """The mean cost of one claim, in currency units, on the log scale: the severity the demo model should recover."""
+    shift = {"van": 0.0, "light_truck": 0.25, "heavy_truck": 0.7}
+    return np.log(2500.0) + np.array([shift[c] for c in vehicle_class]) + 0.03 * np.minimum(age, 12.0) + 0.3 * at_night
+
+
+def claim_costs(rows: list[list[str]], rng: np.random.Generator) -> list[list[str]]:
+    """One row per claim of `rows`: its vehicle's class and age, whether it happened at night, its cost."""
+    claims = [(row, k) for row in rows for k in range(int(row[-1]))]
+    vehicle_class = np.array([row[6] for row, _ in claims])
+    age = np.array([float(row[1]) for row, _ in claims])
+    night_share = np.array([float(row[5]) / float(row[3]) for row, _ in claims])
+    at_night = (rng.random(len(claims)) < night_share).astype(float)
+    mean = np.exp(true_log_cost(age, at_night, vehicle_class))
+    cost = np.round(rng.gamma(COST_SHAPE, mean / COST_SHAPE), 2)
+    return [
+        [str(int(row[0]) * 10 + k), row[0], row[6], row[1], "true" if at_night[i] else "false", f"{cost[i]:.2f}"]
+        for i, (row, k) in enumerate(claims)
+    ]
 
 
 def generate(rng: np.random.Generator) -> list[list[str]]:
@@ -84,23 +112,28 @@ def generate(rng: np.random.Generator) -> list[list[str]]:
     ]
 
 
-def main() -> None:
-    rows = generate(np.random.default_rng(SEED))
-    OUTPUT.parent.mkdir(parents=True, exist_ok=True)
-    temporary = OUTPUT.with_suffix(".csv.tmp")
+def write_csv(path: Path, header: list[str], rows: list[list[str]]) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    temporary = path.with_suffix(".csv.tmp")
     with temporary.open("w", newline="", encoding="utf-8") as handle:
         writer = csv.writer(handle, lineterminator="\n")
-        writer.writerow([
-            "vehicle_year_id", "vehicle_age_years", "exposure_years", "annual_km",
-            "drivers", "night_km", "vehicle_class", "claims",
-        ])
+        writer.writerow(header)
         writer.writerows(rows)
-    temporary.replace(OUTPUT)
+    temporary.replace(path)
+
+
+def main() -> None:
+    rows = generate(np.random.default_rng(SEED))
+    write_csv(OUTPUT, ["vehicle_year_id", "vehicle_age_years", "exposure_years", "annual_km",
+                       "drivers", "night_km", "vehicle_class", "claims"], rows)
+    costs = claim_costs(rows, np.random.default_rng(SEED + 1))
+    write_csv(COSTS, ["claim_id", "vehicle_year_id", "vehicle_class", "vehicle_age_years", "at_night", "cost"], costs)
     claims = sum(int(row[-1]) for row in rows)
     exposure = sum(float(row[2]) for row in rows)
     print(
         f"wrote {OUTPUT.name}: {len(rows)} vehicle-years, {exposure:.1f} years of exposure, "
-        f"{claims} claims, {claims / exposure:.3f} claims per vehicle-year"
+        f"{claims} claims, {claims / exposure:.3f} claims per vehicle-year; {COSTS.name}: mean cost "
+        f"{sum(float(row[-1]) for row in costs) / len(costs):.2f}"
     )
 
 

@@ -74,6 +74,8 @@ def likelihood_ratio(fitted: FittedModel, other: FittedModel, shared_rows: tuple
         ("a model was fitted with a penalty, so its log-likelihood is not a maximum-likelihood one",
          _penalized(fitted) or _penalized(other)),
         ("a fit did not converge", not (fitted.fit.get("converged") and other.fit.get("converged"))),
+        ("a model's family has no log-likelihood (tweedie or quasi)",
+         fitted.fit.get("log_likelihood") is None or other.fit.get("log_likelihood") is None),
     ):
         if applies:
             return LikelihoodRatio(reason=f"{problem}; the likelihood-ratio test needs nested maximum-likelihood fits")
@@ -158,6 +160,8 @@ def _aic_problem(fitted: FittedModel, other: FittedModel, shared_rows: tuple[int
         ("a model was fitted with a penalty, so its log-likelihood is not a maximum-likelihood one",
          _penalized(fitted) or _penalized(other)),
         ("a fit did not converge", not (fitted.fit.get("converged") and other.fit.get("converged"))),
+        ("a model's family has no likelihood featpipe computes (quasi families, tweedie, weighted gamma); compare their deviance",
+         fitted.fit.get("aic") is None or other.fit.get("aic") is None),
     ):
         if applies:
             return problem

@@ -316,13 +316,13 @@ def _surface(
 def _figures(engine: Engine, table: str, fitted: FittedModel, train: int, holdout: int) -> ModelFigures:
     if holdout == 0:
         return ModelFigures(train, holdout)
-    if fitted.family == "binomial":
+    if fitted.link == "logit":
         bins = tuple((int(b), int(rows), float(events)) for b, rows, events in engine.fetch(queries.score_bins_query(table)))
         return ModelFigures(train, holdout, score_bins=bins)
     names = ("decile", "rows", "mean_predicted", "mean_observed", "q10", "q25", "q50", "q75", "q90")
     deciles = tuple(
         {name: (int(value) if name in ("decile", "rows") else float(value)) for name, value in zip(names, row)}
-        for row in engine.fetch(queries.residual_deciles_query(table, fitted.key, fitted.family))
+        for row in engine.fetch(queries.residual_deciles_query(table, fitted.key, fitted.family, fitted.fit.get("power")))
     )
     return ModelFigures(train, holdout, residual_deciles=deciles)
 

@@ -119,7 +119,7 @@ def curve_plot(curve: Curve, models: Sequence[FittedModel], name: str) -> str:
             axes.set_xlim(curve.x[0], curve.x[-1])
         axes.set_xlabel(curve.column)
         _readable_ticks(axes.xaxis)
-    if fitted.family == "binomial":
+    if fitted.link == "logit":
         axes.axhline(fitted.threshold, color="#444444", linewidth=0.8, linestyle=":")
     if fitted.family != "gaussian":  # probabilities and counts start at zero
         axes.set_ylim(bottom=0)
@@ -134,9 +134,9 @@ def curve_plot(curve: Curve, models: Sequence[FittedModel], name: str) -> str:
 def surface_plot(surface: Surface, models: Sequence[FittedModel], name: str) -> str:
     """Each model's prediction over a grid of two inputs (the others held), with held-out rows on top."""
     fitted = models[0]
-    width = 5.1 * len(models) + (1.3 if fitted.family != "binomial" else 0.5)
+    width = 5.1 * len(models) + (1.3 if fitted.link != "logit" else 0.5)
     figure = Figure(figsize=(width, 4.6))
-    figure.subplots_adjust(left=0.7 / width, right=1 - (1.3 if fitted.family != "binomial" else 0.15) / width,
+    figure.subplots_adjust(left=0.7 / width, right=1 - (1.3 if fitted.link != "logit" else 0.15) / width,
                            bottom=0.12, top=0.93, wspace=0.08)
     panels = figure.subplots(1, len(models), sharex=True, sharey=True, squeeze=False)[0]
     xs, ys = np.array(surface.xs), np.array(surface.ys)
@@ -145,7 +145,7 @@ def surface_plot(surface: Surface, models: Sequence[FittedModel], name: str) -> 
     shading = None
     for index, (axes, model) in enumerate(zip(panels, models)):
         values = np.ma.masked_invalid(surface.predictions[model.model])
-        if fitted.family == "binomial":
+        if fitted.link == "logit":
             axes.contourf(xs, ys, values, levels=[0.0, fitted.threshold, 1.0], colors=[BELOW, ABOVE])
             shown = np.concatenate([v[np.isfinite(v)].ravel() for v in surface.predictions.values()])
             lines = axes.contour(xs, ys, values, levels=_probability_levels(shown, fitted.threshold),

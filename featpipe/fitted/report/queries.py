@@ -29,6 +29,7 @@ from ...project import Holdout, InputSpec
 from ...project.names import PREDICTION, ROWS, STATUS
 from ...sqlgen.common import alias, column, number
 from ...sqlgen.design import holdout_flag, target_value
+from ...sqlgen.families import LOG_LINK, log_link_parts
 from ...sqlgen.score import OK, score_query
 from .. import FittedModel
 from ..scoring import scoring_model
@@ -139,20 +140,25 @@ def score_bins_query(table: str) -> exp.Select:
     )
 
 
-def residual_deciles_query(table: str, key: str, family: str) -> exp.Select:
+def residual_deciles_query(table: str, key: str, family: str, power: float | None = None) -> exp.Select:
     """Per decile of the prediction among held-out rows (NTILE(10) by prediction, then key, as the fit's
     calibration): rows, mean predicted, mean observed, and the 10th, 25th, 50th, 75th and 90th percentiles
     of the deviance residual sign(y - mu) * sqrt(unit deviance).
 
-    Unit deviance: poisson 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0; gaussian (y - mu)^2,
-    whose deviance residual is y - mu itself.
+    Unit deviance: poisson 2 (y ln(y / mu) - (y - mu)) with y ln(y / mu) = 0 at y = 0; gamma and tweedie
+    (variance `power`) as `sqlgen.families` writes them, at eta = ln mu; gaussian (y - mu)^2, whose deviance
+    residual is y - mu itself.
     """
     y, mu = column(OBSERVED), column(PREDICTED)
     difference = exp.Paren(this=exp.Sub(this=y.copy(), expression=mu.copy()))
-    if family == "poisson":
-        ratio = exp.Div(this=y.copy(), expression=exp.Nullif(this=mu.copy(), expression=number(0.0)))
-        y_log_ratio = exp.Case().when(exp.GT(this=y.copy(), expression=number(0.0)), exp.Mul(this=y.copy(), expression=exp.Ln(this=ratio))).else_(number(0.0))
-        unit = exp.Mul(this=number(2.0), expression=exp.Paren(this=exp.Sub(this=y_log_ratio, expression=difference.copy())))
+    if family in ("poisson", "quasipoisson", *LOG_LINK):
+        if family in LOG_LINK:
+            eta = exp.Ln(this=exp.Case().when(exp.GT(this=mu.copy(), expression=number(0.0)), mu.copy()))
+            unit = log_link_parts(family, power, y, eta)[2]
+        else:
+            ratio = exp.Div(this=y.copy(), expression=exp.Nullif(this=mu.copy(), expression=number(0.0)))
+            y_log_ratio = exp.Case().when(exp.GT(this=y.copy(), expression=number(0.0)), exp.Mul(this=y.copy(), expression=exp.Ln(this=ratio))).else_(number(0.0))
+            unit = exp.Mul(this=number(2.0), expression=exp.Paren(this=exp.Sub(this=y_log_ratio, expression=difference.copy())))
         size = exp.Case().when(exp.GT(this=unit.copy(), expression=number(0.0)), exp.Sqrt(this=unit)).else_(number(0.0))
         sign = (exp.Case().when(exp.GT(this=y.copy(), expression=mu.copy()), number(1.0))
                 .when(exp.LT(this=y.copy(), expression=mu.copy()), number(-1.0)).else_(number(0.0)))
@@ -160,7 +166,7 @@ def residual_deciles_query(table: str, key: str, family: str) -> exp.Select:
     elif family == "gaussian":
         residual = difference
     else:
-        raise ValueError(f"deviance residuals by decile are for poisson or gaussian models, not '{family}'")
+        raise ValueError(f"deviance residuals by decile are for poisson, gamma, tweedie or gaussian models, not '{family}'")
     order = exp.Order(expressions=[exp.Ordered(this=column(PREDICTED)), exp.Ordered(this=column(key))])
     decile = exp.Window(this=exp.Ntile(this=exp.Literal.number(DECILES)), order=order)
     binned = exp.select(

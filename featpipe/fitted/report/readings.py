@@ -82,7 +82,7 @@ def surface(fitted: FittedModel, shown: Surface | None, note: str, other: Fitted
         why = f"{', '.join(combining)} read{'s' if len(combining) == 1 else ''} both, which is what bends it"
     else:
         why = "no term reads both, so its shape comes only from how each enters the model on its own"
-    if fitted.family == "binomial":
+    if fitted.link == "logit":
         lead = (f"Over {shown.a} and {shown.b} (other inputs at their medians) the coloured line is the threshold "
                 f"{fitted.threshold:g}: rows in the orange region would be predicted {words(fitted.target)}; {why}.")
     else:
@@ -101,7 +101,7 @@ def performance(fitted: FittedModel, figures: ModelFigures) -> str:
     top = calibration[-1] if calibration else None
     top_text = (f" In the top decile the mean prediction is {figure(top['mean_predicted'])} against "
                 f"{figure(top['mean_observed'])} observed." if top else "")
-    if fitted.family == "binomial":
+    if fitted.link == "logit":
         auc = metrics.get("auc")
         lead = (f"AUC {auc:.2f}: a held-out row with {words(fitted.target)} gets a higher prediction than one without "
                 f"{auc:.0%} of the time (0.5 is chance).") if auc is not None else "The held-out rows hold one class only."
@@ -147,7 +147,7 @@ def cautions(fitted: FittedModel, inputs: Sequence[str]) -> str:
 
 def predicted_words(fitted: FittedModel) -> str:
     """What the model's prediction is, in words: also the axis label of every prediction."""
-    if fitted.family == "binomial":
+    if fitted.link == "logit":
         return f"predicted probability of {words(fitted.target)}"
     if fitted.family == "poisson":
         return f"expected {words(fitted.target)}"

@@ -184,7 +184,7 @@ def _validation(fitted: FittedModel, sources: Sources) -> list[tuple[str, ...]]:
 
 
 def _metric_names(family: str):
-    return METRICS["binomial" if family == "binomial" else "regression"]
+    return METRICS["binomial" if family in ("binomial", "quasibinomial") else "regression"]
 
 
 def _metrics(fitted: FittedModel) -> list[tuple[str, str, str]]:
@@ -262,7 +262,7 @@ def _performance(data: ReportData) -> list[dict]:
     fitted, figures = data.fitted, data.figures
     calibration = fitted.metrics.get("calibration") or []
     shown = []
-    if fitted.family == "binomial":
+    if fitted.link == "logit":
         if calibration:
             shown.append({"title": "Calibration by decile", "svg": plots.calibration_plot(calibration, fitted, "calibration")})
         if figures.score_bins:
