@@ -42,7 +42,7 @@ def test_a_learned_call_compiles_to_its_argument_with_a_fingerprint_of_the_whole
     ("LEVELS(amount, 5)", "1:15: LEVELS reads text or whole numbers; for a decimal number use BINS(expr, k)"),
     ("SPLINE(region, 4)", "1:15: SPLINE reads a number, not a text expression"),
     ("BINS(amount > 1, 4)", "1:13: BINS reads a number, not a boolean expression"),
-    ("LEVELS(region + 1, 5)", "1:15: arithmetic on text: 'region' is VARCHAR; compare it to a value (e.g. CASE WHEN "
+    ("LEVELS(region + 1, 5)", "1:15: arithmetic on text: 'region' is TEXT; compare it to a value (e.g. CASE WHEN "
                               "x = 'a' THEN 1 ELSE 0 END) or CAST it"),
 ])
 def test_learned_call_problems_are_positioned(tmp_path, call, message):
