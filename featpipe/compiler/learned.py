@@ -125,7 +125,7 @@ def _range_problem(function: str, constants: list[float | int]) -> str | None:
 
 
 def argument_type(call: LearnedCall, expression: exp.Expression, schema: dict[str, str]) -> tuple[str | None, list]:
-    """('text' | 'numeric' | None, [(node, message)]) for a learned term's argument expression.
+    """('text' | 'whole' | 'numeric' | None, [(node, message)]) for a learned term's argument expression.
 
     LEVELS reads text or whole numbers (their levels are compared as text); the others read numbers.
     """
@@ -142,7 +142,7 @@ def argument_type(call: LearnedCall, expression: exp.Expression, schema: dict[st
         return None, [(expression, "LEVELS reads text or whole numbers; for a decimal number use BINS(expr, k)")]
     if call.function != "LEVELS" and kind != "numeric":
         return None, [(expression, f"{call.function} reads a number, not a {kind} expression")]
-    return ("text" if call.function == "LEVELS" else "numeric"), []
+    return ("whole" if call.function == "LEVELS" else "numeric"), []
 
 
 def _declared_type(expression: exp.Expression, schema: dict[str, str]) -> exp.DataType | None:

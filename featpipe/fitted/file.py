@@ -37,7 +37,7 @@ class Effect:
 @dataclass(frozen=True)
 class FittedTerm:
     name: str
-    estimate: float
+    estimate: float | None
     std_error: float | None
     statistic: float | None
     p_value: float | None
@@ -53,6 +53,9 @@ class FittedTerm:
     vif: float | None = None
     profile: Profile | None = None
     notes: tuple[str, ...] = ()
+    # A learned term's constants, one entry per design column and its joint Wald test (fitting/learned.py);
+    # a term of several columns has no single estimate (None).
+    learned: dict | None = None
 
 
 @dataclass(frozen=True)
@@ -102,7 +105,7 @@ def to_yaml(fitted: FittedModel) -> str:
 SIGNIFICANT_DIGITS = 12
 ORDER_STATISTICS = {"edges", "min", "median", "max"}
 # Written in full too: the spec's own values, compared with the spec when the fit goes stale.
-WRITTEN_IN_FULL = ORDER_STATISTICS | {"depends_on"}
+WRITTEN_IN_FULL = ORDER_STATISTICS | {"depends_on", "values"}  # values: a learned term's edges, knots or caps
 
 
 def as_written(value: float) -> float:

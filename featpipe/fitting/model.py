@@ -6,6 +6,7 @@ profiles and the holdout metrics are all queries; only small results come back.
 
 from __future__ import annotations
 
+import dataclasses
 from typing import TYPE_CHECKING
 
 from sqlglot import exp
@@ -20,6 +21,7 @@ from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
+from .learned import column_names, expand, learn_constants, learned_entry
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -61,20 +63,27 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
-    glm = Glm(spec.family, spec.penalty).fit(engine, layout)
+    # Learned terms: constants from the training rows, then a table of their design columns to fit on.
+    constants = learn_constants(engine, model) if any(term.learned for term in model.terms) else {}
+    fit_layout = expand(engine, model, constants) if constants else layout
+    glm = Glm(spec.family, spec.penalty).fit(engine, fit_layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
-        engine, layout,
-        {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
+        engine, fit_layout,
+        {**{name: column(name) for name in fit_layout.terms}, LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold)
+    metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold)
     intercept, *slopes = glm.coefficients
+    by_column = dict(zip(fit_layout.terms, slopes, strict=True))
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
-    fitted_terms += [
-        _fitted_term(coefficient, term, spec, model, profiles[term.name])
-        for coefficient, term in zip(slopes, model.terms, strict=True)
-    ]
+    for term in model.terms:
+        if term.name not in constants:
+            fitted_terms.append(_fitted_term(by_column[term.name], term, spec, model, profiles[term.name]))
+            continue
+        entry = learned_entry(term.name, constants[term.name], glm.coefficients, glm.covariance, glm.names, spec.family,
+                              {name: profiles[name].mean for name in fit_layout.terms})
+        fitted_terms.append(_learned_term(term, entry, by_column, profiles, spec, model))
     return FittedModel(
         model=spec.name,
         fingerprint=model.fingerprint,
@@ -117,6 +126,23 @@ def _read_columns(compiled: CompiledProject, model: CompiledModel) -> dict[str, 
     if model.offset is not None:
         read.update(node.name for node in model.offset.find_all(exp.Column))
     return {name: declared[name] for name in sorted(read)}
+
+
+def _learned_term(term: Term, entry: dict, by_column, profiles, spec, model: CompiledModel) -> FittedTerm:
+    """A learned term as one entry: CAPPED (one column) reads like any term; a term of several columns
+    has no single estimate, its columns and joint test are in `learned`."""
+    names = column_names(term.name, len(entry["columns"]))
+    if term.learned.function == "CAPPED":
+        single = _fitted_term(by_column[names[0]], term, spec, model, profiles[names[0]])
+        return dataclasses.replace(single, learned=entry)
+    notes = tuple(item["reading"] for item in entry["columns"])
+    if entry["wald"] is not None:
+        wald = entry["wald"]
+        notes += (f"joint Wald test of its {wald['df']} columns: chi-square {wald['statistic']:.3g}, "
+                  f"p = {wald['p_value']:.3g}",)
+    return FittedTerm(name=term.name, estimate=None, std_error=None, statistic=None, p_value=None, ci_low=None,
+                      ci_high=None, fingerprint=term.fingerprint, sql=term.sql, kind=term.kind, doc=term.doc,
+                      columns=term.columns, built_from=term.built_from, notes=notes, learned=entry)
 
 
 def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: CompiledModel, profile) -> FittedTerm:
