@@ -14,7 +14,7 @@ from sqlglot import exp
 from featpipe import api
 from featpipe.compiler import compile_project
 from featpipe.engines.compute import connect
-from featpipe.fitted import read_fitted
+from featpipe.fitted import read_fitted, scoring
 from featpipe.errors import FeatpipeError
 from featpipe.project import load_project
 
@@ -150,3 +150,83 @@ def test_levels_fit_equals_statsmodels_treatment_coding_with_pooled_levels(tmp_p
     assert learned["wald"]["df"] == len(columns)
     construction = next(item for item in learned["columns"] if item["label"] == "construction")
     assert construction["reading"].startswith("construction vs retail (reference): odds ratio ")
+
+
+def test_learned_quantiles_equal_numpy_inverted_cdf_and_scoring_reproduces_the_fit(tmp_path):
+    terms = ("SELECT CAPPED(income, 0.05, 0.95) AS capped_income,\n  BINS(income, 4) AS income_band,\n"
+             "  SPLINE(income, 4) AS income_curve,\n  LEVELS(branch, 10) AS branch_level FROM leases\n")
+    root, data = lease_project(tmp_path, terms, ["capped_income", "income_band", "branch_level"])
+    project, fitted, frame = fit_and_frame(root, data)
+    income = frame["income"].to_numpy()
+    # Reference: numpy's quantile with method="inverted_cdf", the rule the issue asks for.
+    caps = np.quantile(income, [0.05, 0.95], method="inverted_cdf")
+    assert fitted.term("capped_income").learned["values"] == caps.tolist()
+    edges = np.unique(np.quantile(income, [0.25, 0.5, 0.75], method="inverted_cdf"))
+    assert fitted.term("income_band").learned["values"] == edges.tolist()
+    # Whole-number levels are compared as text, written without a fraction.
+    assert sorted(item["level"] for item in fitted.term("branch_level").learned["levels"]) == ["1", "2", "3"]
+    # Scoring the training rows with the exported SQL gives the fit's linear predictor: numpy on the
+    # same design (capped income, band indicators, branch indicators) and the file's coefficients.
+    design = [np.clip(income, *caps)]
+    design += [((income > low) & (income <= high)).astype(float) for low, high in zip(edges, [*edges[1:], np.inf])]
+    branch = frame["branch"].astype(str).to_numpy()
+    learned = fitted.term("branch_level").learned
+    design += [(branch == item["label"]).astype(float) for item in learned["columns"]]
+    estimates = [fitted.term("capped_income").estimate]
+    estimates += [item["estimate"] for term in ("income_band", "branch_level") for item in fitted.term(term).learned["columns"]]
+    expected = fitted.terms[0].estimate + np.column_stack(design) @ np.array(estimates)
+    api_score = scoring.score(project, "risk", table="leases", into="scores", reasons=2)
+    assert api_score.status == {"ok": len(data["lease_id"])}
+    with connect(project) as engine:
+        scored = dict(engine.fetch(exp.select('"lease_id"', '"linear_predictor"').from_("scores")))
+    np.testing.assert_allclose([scored[key] for key in frame["lease_id"]], expected, rtol=1e-9, atol=1e-9)
+    # One contribution and one reason per term, however many columns it has.
+    with connect(project) as engine:
+        names = [row[0] for row in engine.fetch(exp.select('"column_name"').from_("information_schema.columns")
+                                                  .where(exp.column("table_name").eq(exp.Literal.string("scores"))))]
+    assert [n for n in names if n.startswith("contribution_")] == [
+        "contribution_capped_income", "contribution_income_band", "contribution_branch_level"]
+
+
+def test_spline_basis_equals_the_restricted_cubic_spline_formula(tmp_path):
+    root, data = lease_project(tmp_path, "SELECT SPLINE(income, 4) AS income_curve FROM leases\n", ["income_curve"])
+    project, fitted, frame = fit_and_frame(root, data)
+    income = frame["income"].to_numpy()
+    learned = fitted.term("income_curve").learned
+    # Knots at Harrell's quantiles for k = 4 (0.05, 0.35, 0.65, 0.95; recalled from memory, as the issue
+    # states them), each the inverted empirical CDF (numpy).
+    knots = np.quantile(income, [0.05, 0.35, 0.65, 0.95], method="inverted_cdf")
+    assert learned["values"] == knots.tolist()
+    # The restricted cubic spline basis written from the published formula (Harrell, Regression
+    # Modeling Strategies, 2nd ed., eq. 2.25), normalised by (t_k - t_1)^2 as Harrell's rcspline.eval does.
+    t, k = knots, len(knots)
+
+    def plus3(u):
+        return np.where(u > 0, u, 0.0) ** 3
+
+    basis = [income] + [
+        (plus3(income - t[j]) - plus3(income - t[k - 2]) * (t[k - 1] - t[j]) / (t[k - 1] - t[k - 2])
+         + plus3(income - t[k - 1]) * (t[k - 2] - t[j]) / (t[k - 1] - t[k - 2])) / (t[k - 1] - t[0]) ** 2
+        for j in range(k - 2)]
+    X = sm.add_constant(np.column_stack(basis))
+    # Reference: statsmodels' GLM on that basis gives the same estimates, so the same linear predictors.
+    reference = sm.GLM(frame["defaulted"].to_numpy(), X, family=sm.families.Binomial()).fit()
+    estimates = [fitted.terms[0].estimate] + [item["estimate"] for item in learned["columns"]]
+    np.testing.assert_allclose(X @ np.array(estimates), X @ reference.params, rtol=1e-9, atol=1e-9)
+    scoring.score(project, "risk", table="leases", into="scores")
+    with connect(project) as engine:
+        scored = dict(engine.fetch(exp.select('"lease_id"', '"linear_predictor"').from_("scores")))
+    np.testing.assert_allclose([scored[key] for key in frame["lease_id"]], X @ reference.params, rtol=1e-9, atol=1e-9)
+
+
+def test_an_unseen_level_is_scored_as_unseen_without_other_and_missing_when_null(tmp_path):
+    root, data = lease_project(tmp_path, "SELECT LEVELS(sector, 1) AS sector_level FROM leases\n", ["sector_level", "income"])
+    project, fitted, frame = fit_and_frame(root, data)
+    assert "other" not in [item["label"] for item in fitted.term("sector_level").learned["columns"]]
+    with connect(project) as engine:
+        engine.execute(exp.Create(this=exp.to_table("new_leases"), kind="TABLE", expression=exp.select(
+            "CAST(1 AS BIGINT) AS lease_id", "'whaling' AS sector", "CAST(1 AS BIGINT) AS branch", "20.0 AS income")
+            .union(exp.select("CAST(2 AS BIGINT)", "CAST(NULL AS VARCHAR)", "CAST(1 AS BIGINT)", "20.0"), distinct=False)
+            .union(exp.select("CAST(3 AS BIGINT)", "'retail'", "CAST(1 AS BIGINT)", "20.0"), distinct=False)))
+    result = scoring.score(project, "risk", table="new_leases", into="scores")
+    assert result.status == {"missing: sector_level": 1, "ok": 1, "unseen: sector_level": 1}
