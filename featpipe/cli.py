@@ -223,6 +223,11 @@ def coefficient_table(fitted: FittedModel) -> Table:
             effect = f"{term.effect.kind} {_number(term.effect.value, 3)} per {term.effect.step:g}"
         table.add_row(term.name, _number(term.estimate), _number(term.std_error), _number(term.statistic, 3),
                       _number(term.p_value, 2), interval, effect, _number(term.vif, 3))
+        if term.learned and len(term.learned["columns"]) > 1:  # a learned term's columns, under it
+            for item in term.learned["columns"]:
+                low = "" if item["ci_low"] is None else f"{_number(item['ci_low'])} to {_number(item['ci_high'])}"
+                table.add_row(f"  {item['label']}", _number(item["estimate"]), _number(item["std_error"]),
+                              _number(item["statistic"], 3), _number(item["p_value"], 2), low, "", "")
     return table
 
 

@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
-from conftest import write_project
+from conftest import run_featpipe, write_project
 from sqlglot import exp
 
 from featpipe import api
@@ -230,3 +230,11 @@ def test_an_unseen_level_is_scored_as_unseen_without_other_and_missing_when_null
             .union(exp.select("CAST(3 AS BIGINT)", "'retail'", "CAST(1 AS BIGINT)", "20.0"), distinct=False)))
     result = scoring.score(project, "risk", table="new_leases", into="scores")
     assert result.status == {"missing: sector_level": 1, "ok": 1, "unseen: sector_level": 1}
+
+
+def test_the_coefficient_table_prints_a_learned_terms_columns_under_it(tmp_path):
+    root, data = lease_project(tmp_path, "SELECT LEVELS(sector, 40) AS sector_level FROM leases\n", ["sector_level"])
+    result = run_featpipe("fit", cwd=root)
+    assert result.returncode == 0, result.stderr
+    lines = [line for line in result.stdout.splitlines() if "sector_level" in line or "construction" in line or " other " in line]
+    assert len(lines) >= 3 and "sector_level" in lines[0] and "construction" in lines[1]
