@@ -22,6 +22,7 @@ from ..compiler import CompiledModel
 from ..errors import FeatpipeError
 from ..project.yamlfile import read_text
 from ..sqlgen.profile import Profile
+from .learned import check_learned_columns
 from .validate import AGAIN, FORMAT_VERSION, check_integrity, check_values
 
 
@@ -134,6 +135,7 @@ def from_yaml(text: str, source: str) -> FittedModel:
     (featpipe.fitted.validate); `source` names the file in messages."""
     data = _yaml_data(text, source)
     check_values(data, source)
+    check_learned_columns(data, text, source)
     fitted = FittedModel(**{
         **data,
         "terms": tuple(_term(item) for item in data["terms"]),

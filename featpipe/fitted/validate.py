@@ -176,7 +176,7 @@ LEARNED = record(
     {"function": one_of(*LEARNED_FUNCTIONS), "arguments": listing(NUMBER), "columns": listing(LEARNED_COLUMN),
      "wald": optional(WALD)},
     {"levels": listing(record({"level": TEXT, "rows": COUNT})), "reference": TEXT, "pooled": listing(TEXT),
-     "values": listing(NUMBER)},
+     "values": listing(NUMBER), "data": TEXT},
 )
 TERM = record(
     {"name": TERM_NAME, "estimate": OPTIONAL_NUMBER, "std_error": OPTIONAL_NUMBER, "statistic": OPTIONAL_NUMBER,

@@ -74,6 +74,13 @@ def _refuse_degenerate(model: CompiledModel, name: str, constants: LearnedConsta
                             "use fewer knots, or BINS for a variable with few values")
 
 
+def profiled_arguments(constants: dict[str, LearnedConstants]) -> list[str]:
+    """Learned terms profiled by their argument: BINS and SPLINE, whose several columns have no one value
+    to profile (drift bins the argument, the report draws over its range). CAPPED is profiled as its one
+    column, LEVELS by its levels' rows."""
+    return [name for name, found in constants.items() if found.call.function in ("BINS", "SPLINE")]
+
+
 def expand(engine: Engine, model: CompiledModel, constants: dict[str, LearnedConstants]) -> DesignLayout:
     """Build the table of design columns and return its layout (the GLM's names are its columns)."""
     layout = model.layout
@@ -86,6 +93,8 @@ def expand(engine: Engine, model: CompiledModel, constants: dict[str, LearnedCon
             projections.append(column(term.name))
             names.append(term.name)
             continue
+        if term.name in profiled_arguments(constants):  # the argument too, for its training profile
+            projections.append(column(term.name))
         expanded = column_names(term.name, len(constants[term.name].labels))
         projections += [alias(value, name) for value, name in
                         zip(design_columns(constants[term.name], column(term.name)), expanded, strict=True)]
@@ -95,8 +104,9 @@ def expand(engine: Engine, model: CompiledModel, constants: dict[str, LearnedCon
 
 
 def learned_entry(term: str, constants: LearnedConstants, coefficients, covariance, names, family: str,
-                  means: dict[str, float]) -> dict:
-    """The fitted file's `learned` record of a term: constants, one entry per column, joint Wald test.
+                  means: dict[str, float], data: str) -> dict:
+    """The fitted file's `learned` record of a term: constants, one entry per column, joint Wald test,
+    and `data`, the signature of the input the constants were learned from (engines.builds).
 
     `coefficients` are the GLM's (intercept first), `covariance` its matrix (None when penalized) in
     the order of `names`.
@@ -120,6 +130,7 @@ def learned_entry(term: str, constants: LearnedConstants, coefficients, covarian
         entry["values"] = list(constants.values)
     entry["columns"] = columns
     entry["wald"] = _wald(covariance, positions, [coefficients[p].estimate for p in positions])
+    entry["data"] = data
     return entry
 
 

@@ -13,6 +13,7 @@ from sqlglot import exp
 
 from ..compiler import CompiledModel, CompiledProject, Term
 from ..engines.base import Engine
+from ..engines.builds import input_signature
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
 from ..fitted.notes import effect, term_notes
@@ -21,7 +22,7 @@ from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
-from .learned import column_names, expand, learn_constants, learned_entry
+from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -71,7 +72,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
         engine, fit_layout,
-        {**{name: column(name) for name in fit_layout.terms}, LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)},
+        {**{name: column(name) for name in (*fit_layout.terms, *profiled_arguments(constants))},
+         LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)},
     )
     metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold)
     intercept, *slopes = glm.coefficients
@@ -82,7 +84,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             fitted_terms.append(_fitted_term(by_column[term.name], term, spec, model, profiles[term.name]))
             continue
         entry = learned_entry(term.name, constants[term.name], glm.coefficients, glm.covariance, glm.names, spec.family,
-                              {name: profiles[name].mean for name in fit_layout.terms})
+                              {name: profiles[name].mean for name in fit_layout.terms},
+                              input_signature(compiled.project.inputs[spec.input]))
         fitted_terms.append(_learned_term(term, entry, by_column, profiles, spec, model))
     return FittedModel(
         model=spec.name,
@@ -142,7 +145,8 @@ def _learned_term(term: Term, entry: dict, by_column, profiles, spec, model: Com
                   f"p = {wald['p_value']:.3g}",)
     return FittedTerm(name=term.name, estimate=None, std_error=None, statistic=None, p_value=None, ci_low=None,
                       ci_high=None, fingerprint=term.fingerprint, sql=term.sql, kind=term.kind, doc=term.doc,
-                      columns=term.columns, built_from=term.built_from, notes=notes, learned=entry)
+                      columns=term.columns, built_from=term.built_from, notes=notes, learned=entry,
+                      profile=profiles.get(term.name))  # BINS, SPLINE: the argument's profile
 
 
 def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: CompiledModel, profile) -> FittedTerm:

@@ -180,8 +180,10 @@ def _checked_terms(model: ScoringModel, names: list[str]) -> exp.Select:
     """Everything of term_values, plus the row's status."""
     has_offset = model.offset is not None
     columns = [term.name for term in model.terms]
+    columns += [learned_value_column(term.group) for term in model.terms if term.learned is not None and term.index == 0]
     carried = [column(model.key), *map(column, columns), *([column(OFFSET_COLUMN)] if has_offset else [])]
-    status = alias(_status(model, names) if len(columns) != len(names) else status_expression(names, has_offset), STATUS)
+    learned = any(term.learned is not None for term in model.terms)
+    status = alias(_status(model, names) if learned else status_expression(names, has_offset), STATUS)
     return exp.select(*carried, status).from_(exp.to_table(TERM_VALUES))
 
 
