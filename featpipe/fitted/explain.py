@@ -33,7 +33,7 @@ def explain(compiled: CompiledProject, name: str) -> dict:
             "kind": "model",
             "name": name,
             "spec": model.spec.display,
-            "stale": staleness(fitted[name], model),
+            "stale": staleness(fitted[name], model, compiled.project.inputs),
             "fitted": asdict(fitted[name]),
         }
     term = compiled.terms.get(name)
@@ -49,7 +49,7 @@ def explain(compiled: CompiledProject, name: str) -> dict:
         entry = {"model": model.name, "fitted": None, "stale": []}
         if model.name in fitted:
             entry["fitted"] = asdict(fitted[model.name].term(name)) if _has(fitted[model.name], name) else None
-            entry["stale"] = staleness(fitted[model.name], model)
+            entry["stale"] = staleness(fitted[model.name], model, compiled.project.inputs)
         uses.append(entry)
     return {
         "kind": "term",

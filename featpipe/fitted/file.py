@@ -20,9 +20,10 @@ import yaml
 from ..atomic import write_text_atomic
 from ..compiler import CompiledModel
 from ..errors import FeatpipeError
+from ..project import InputSpec
 from ..project.yamlfile import read_text
 from ..sqlgen.profile import Profile
-from .learned import check_learned_columns
+from .learned import check_learned_columns, data_staleness
 from .validate import AGAIN, FORMAT_VERSION, check_integrity, check_values
 
 
@@ -203,9 +204,10 @@ def file_hash(path: Path) -> str:
 OLDER_FILE = "the file does not record all the fit depended on (an older featpipe wrote it); fit it again to record it"
 
 
-def staleness(fitted: FittedModel, model: CompiledModel | None) -> list[str]:
+def staleness(fitted: FittedModel, model: CompiledModel | None, inputs: dict[str, InputSpec] | None = None) -> list[str]:
     """Why a fitted model no longer matches its current definitions (empty when it is current);
-    `model` None: its spec is gone.
+    `model` None: its spec is gone. Given the project's `inputs`, a model with learned terms is also
+    stale when its input's data file changed since the fit (fitted.learned.data_staleness).
 
     Each reason names what changed between the dependencies recorded in the file (`depends_on`) and
     the model's now. A file written before featpipe recorded them still names its terms' changes,
@@ -213,12 +215,13 @@ def staleness(fitted: FittedModel, model: CompiledModel | None) -> list[str]:
     """
     if model is None:
         return [f"specs/{fitted.model}.yaml no longer exists"]
+    data = data_staleness(fitted, inputs) if inputs is not None else []
     if fitted.fingerprint == model.fingerprint:
-        return []
+        return data
     recorded = fitted.depends_on or {"terms": {term.name: term.fingerprint for term in fitted.terms if term.fingerprint}}
     reasons = [reason for key, now in model.dependencies.items() if key in recorded and not _same(recorded[key], now)
                for reason in _changes(key, recorded[key], now)]
-    return reasons or [OLDER_FILE]
+    return (reasons or [OLDER_FILE]) + data
 
 
 def _same(was, now) -> bool:
@@ -260,7 +263,7 @@ def stale_fits(compiled) -> tuple[str, ...]:
     for name, model in sorted(compiled.models.items()):
         path = compiled.project.fitted_path(name)
         if path.is_file():
-            reasons = staleness(read_fitted(path), model)
+            reasons = staleness(read_fitted(path), model, compiled.project.inputs)
             if reasons:
                 lines.append(f"fitted/{name}.yaml is stale: {'; '.join(reasons)}")
     return tuple(lines)

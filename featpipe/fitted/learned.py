@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING
 import yaml
 
 from ..compiler.learned import LearnedCall
+from ..engines.builds import input_signature
 from ..errors import FeatpipeError
 from ..sqlgen.drift import Category, Monitored
 from ..sqlgen.learned import OTHER, LearnedConstants, read_levels
@@ -126,6 +127,23 @@ def learned_monitored(term: FittedTerm, train_rows: int | None) -> Monitored:
         categories.append(Category(OTHER, constants.pooled, sum(rows[level] for level in constants.pooled) / total))
     return Monitored(term.name, None, value=value, parts=parts, categories=tuple(categories),
                      null_share=max(total - sum(rows.values()), 0) / total)
+
+
+def data_staleness(fitted, inputs) -> list[str]:
+    """A model's learned constants would change when the rows they were learned from changed. Cheaply
+    seen for an input with a `load:` file: the file's signature (engines.builds, the one `refresh` uses
+    to rebuild design tables) is recorded with each learned term and compared with the file's now. A
+    table the engine holds without a file has the signature 'table' and is never seen to change."""
+    learned = [term for term in fitted.model_terms if term.learned and term.learned.get("data")]
+    source = inputs.get(fitted.input)
+    if not learned or source is None or source.load is None or not source.load.is_file():
+        return []
+    now = input_signature(source)
+    moved = [term.name for term in learned if term.learned["data"] != now]
+    if not moved:
+        return []
+    return [f"the data of input '{fitted.input}' changed since the fit, so the learned constants of "
+            f"{', '.join(moved)} would be learned again"]
 
 
 def constants_changes(old: dict | None, new: dict | None) -> list[str]:
