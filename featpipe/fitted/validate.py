@@ -186,7 +186,7 @@ TERM = record(
      "vif": OPTIONAL_NUMBER, "profile": optional(PROFILE), "notes": listing(TEXT), "learned": optional(LEARNED)},
 )
 ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout": COUNT, "dropped": mapping(TEXT, COUNT),
-                  "imputed": mapping(NAME, COUNT)})
+                  "imputed": mapping(NAME, COUNT), "unseen": mapping(NAME, COUNT)})
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": NUMBER,
     "aic": NUMBER, "bic": NUMBER, "dispersion": NUMBER, "statistic": TEXT, "penalized": FLAG,

@@ -26,6 +26,7 @@ from ..sqlgen.learned import (
     levels_query,
     quantiles_query,
     read_levels,
+    unseen_holdout_query,
     read_quantiles,
 )
 
@@ -59,6 +60,17 @@ def learn_constants(engine: Engine, model: CompiledModel) -> dict[str, LearnedCo
     for name in learned:
         _refuse_degenerate(model, name, constants[name])
     return {name: constants[name] for name in learned}
+
+
+def unseen_holdout_rows(engine: Engine, model: CompiledModel, constants: dict[str, LearnedConstants]) -> dict[str, int]:
+    """Per LEVELS term, the holdout rows whose level the training rows never had (the row accounting's
+    `unseen`). Without an `other` group such a row has no prediction (scoring says `unseen: TERM`), so it
+    is left out of the holdout metrics; with one it is scored as `other`."""
+    levels = {name: found for name, found in constants.items() if found.call.function == "LEVELS"}
+    if not levels:
+        return {}
+    (row,) = engine.fetch(unseen_holdout_query(model.layout, levels))
+    return {name: int(count or 0) for name, count in zip(levels, row, strict=True)}
 
 
 def _refuse_degenerate(model: CompiledModel, name: str, constants: LearnedConstants) -> None:

@@ -22,7 +22,7 @@ from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
-from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments
+from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -67,6 +67,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     # Learned terms: constants from the training rows, then a table of their design columns to fit on.
     constants = learn_constants(engine, model) if any(term.learned for term in model.terms) else {}
     fit_layout = expand(engine, model, constants) if constants else layout
+    if any(found.call.function == "LEVELS" for found in constants.values()):
+        rows["unseen"] = unseen_holdout_rows(engine, model, constants)
     glm = Glm(spec.family, spec.penalty).fit(engine, fit_layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}

@@ -30,7 +30,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..compiler.learned import LearnedCall
-from .common import alias, column, number, training_rows
+from .common import alias, column, holdout_rows, number, training_rows
 
 NAME, LEVEL, ROWS = "_name", "_level", "_rows"
 OTHER = "other"  # the label of the pooled levels' column
@@ -89,6 +89,15 @@ def quantiles_query(layout: DesignLayout, calls: Mapping[str, LearnedCall]) -> e
         for name, call in calls.items() for q in call.quantiles()
     ]
     return exp.select(*percentiles).from_(exp.to_table(layout.table)).where(training_rows(layout))
+
+
+def unseen_holdout_query(layout: DesignLayout, constants: Mapping[str, LearnedConstants]) -> exp.Select:
+    """One row: per LEVELS term in `constants`, the complete holdout rows whose level no training row had."""
+    counts = []
+    for name, found in constants.items():
+        unseen = exp.and_(holdout_rows(layout), exp.Not(this=_one_of(column(name), [level for level, _ in found.levels])))
+        counts.append(alias(exp.Sum(this=exp.Case().when(unseen, exp.Literal.number(1)).else_(exp.Literal.number(0))), name))
+    return exp.select(*counts).from_(exp.to_table(layout.table))
 
 
 def read_levels(call: LearnedCall, counted: Sequence[tuple[str, int]]) -> LearnedConstants:

@@ -122,6 +122,7 @@ class ReportData:
     surface_note: str  # why there is no surface, when there is none
     shared_rows: tuple[int, int, int] | None  # training rows of the model, of the other, of both
     inputs: tuple[str, ...] = field(default=())  # raw inputs the terms read, in model order
+    learned: dict = field(default_factory=dict)  # by term: the figure of each learned term (report/learned.py)
 
 
 def term_inputs(fitted: FittedModel) -> list[str]:
@@ -181,7 +182,10 @@ def gather(
         if other is not None:
             counts = engine.fetch(queries.shared_rows_query(rows_table, fitted.key, queries.rows_query(other, source, [])))[0]
             shared = tuple(int(value or 0) for value in counts)
-    return ReportData(fitted, other, figures, held, ranges, tuple(curves), surface, note, shared, tuple(inputs))
+        from .learned import learned_figures
+
+        learned = learned_figures(engine, fitted)
+    return ReportData(fitted, other, figures, held, ranges, tuple(curves), surface, note, shared, tuple(inputs), learned)
 
 
 @contextlib.contextmanager
