@@ -87,21 +87,23 @@ def _what(learned: dict) -> str:
 
 
 def _line(text: str, index: int, key: str) -> int:
-    """The line of terms[index].learned(.key) in the YAML text (1 when it cannot be found)."""
+    """The line of the key terms[index].learned (key 'learned') or terms[index].learned.KEY in the YAML
+    text (1 when it cannot be found)."""
     try:
         node = yaml.compose(text, Loader=getattr(yaml, "CSafeLoader", yaml.SafeLoader))
-        node = _value(node, "terms").value[index]
-        node = _value(node, "learned")
-        found = _value(node, key) if key != "learned" else node
-        return found.start_mark.line + (0 if key == "learned" else 1)
-    except (AttributeError, IndexError, KeyError, yaml.YAMLError):
+        term = _entry(node, "terms")[1].value[index]
+        learned_key, learned = _entry(term, "learned")
+        found = learned_key if key == "learned" else _entry(learned, key)[0]
+        return found.start_mark.line + 1
+    except (AttributeError, IndexError, KeyError, TypeError, yaml.YAMLError):
         return 1
 
 
-def _value(node, key: str):
+def _entry(node, key: str):
+    """(key node, value node) of `key` in a composed mapping node."""
     for key_node, value in node.value:
         if key_node.value == key:
-            return value
+            return key_node, value
     raise KeyError(key)
 
 
