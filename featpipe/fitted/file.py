@@ -101,7 +101,11 @@ class FittedModel:
 
 
 def to_yaml(fitted: FittedModel) -> str:
-    return yaml.safe_dump(_plain(asdict(fitted)), sort_keys=False, allow_unicode=True, width=100)
+    data = asdict(fitted)
+    for term in data["terms"]:  # only a learned term has the key: other fits keep their bytes
+        if term["learned"] is None:
+            del term["learned"]
+    return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 
 SIGNIFICANT_DIGITS = 12
