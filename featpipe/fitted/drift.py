@@ -159,6 +159,9 @@ def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
          f"({psi_column('')})."),
         "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge;",
         "expected shares are the training rows' (NULLs included), written below as literals.",
+        *(["A LEVELS term's bins are its levels (the reference and each level with a column), then `other` (the",
+           "pooled levels) when it has pooled levels, then `unseen` (levels no training row had; expected share 0)."]
+          if any(term.learned and term.learned["function"] == "LEVELS" for term in fitted.model_terms) else []),
         f"PSI = SUM over bins of (actual - expected) * LN(actual / expected); a share below {EMPTY_SHARE:g} counts as {EMPTY_SHARE:g}.",
         (f"Reading (common practice in credit scoring): below {MODERATE_FROM} stable, {MODERATE_FROM} to {MAJOR_ABOVE} "
          f"a moderate shift, above {MAJOR_ABOVE} a major shift."),
