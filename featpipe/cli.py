@@ -223,6 +223,11 @@ def coefficient_table(fitted: FittedModel) -> Table:
             effect = f"{term.effect.kind} {_number(term.effect.value, 3)} per {term.effect.step:g}"
         table.add_row(term.name, _number(term.estimate), _number(term.std_error), _number(term.statistic, 3),
                       _number(term.p_value, 2), interval, effect, _number(term.vif, 3))
+        if term.learned and len(term.learned["columns"]) > 1:  # a learned term's columns, under it
+            for item in term.learned["columns"]:
+                low = "" if item["ci_low"] is None else f"{_number(item['ci_low'])} to {_number(item['ci_high'])}"
+                table.add_row(f"  {item['label']}", _number(item["estimate"]), _number(item["std_error"]),
+                              _number(item["statistic"], 3), _number(item["p_value"], 2), low, "", "")
     return table
 
 
@@ -299,6 +304,7 @@ def explain(
     from . import api
     from .fitted import read_fitted
     from .fitted.explain import explain as describe
+    from .fitted.explain import learned_lines
     from .project import load_project
 
     loaded = load_project(project)
@@ -325,12 +331,16 @@ def explain(
         if term is None:
             out.print(f"model {use['model']}: not fitted yet")
             continue
-        if term["p_value"] is None:
-            inference = ", no interval or p-value (a penalized fit)"
+        if term["estimate"] is None:  # a learned term of several columns: its columns under it
+            out.print(f"model {use['model']}:")
+        elif term["p_value"] is None:
+            out.print(f"model {use['model']}: estimate {term['estimate']:.4g}, no interval or p-value (a penalized fit)")
         else:
-            inference = f" (95% interval {term['ci_low']:.4g} to {term['ci_high']:.4g}), p {_number(term['p_value'], 2)}"
-        out.print(f"model {use['model']}: estimate {term['estimate']:.4g}{inference}")
-        for note in term["notes"]:
+            out.print(f"model {use['model']}: estimate {term['estimate']:.4g} (95% interval {term['ci_low']:.4g} to "
+                      f"{term['ci_high']:.4g}), p {_number(term['p_value'], 2)}")
+        for line in learned_lines(term["learned"]) if term["learned"] else ():
+            out.print(f"  {line}", markup=False, highlight=False)
+        for note in term["notes"] if term["estimate"] is not None else ():
             out.print(f"  - {note}")
         for reason in use["stale"]:
             out.print(f"  [red]stale:[/red] {reason}")
@@ -393,6 +403,13 @@ def drift(
         out.print("terms ranked by how far their mean contribution to the linear predictor moved (0 in training); "
                   "PSI over the training deciles with NULL as a bin of its own, empty bins counted as 0.0001; "
                   "below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice)")
+        for row in report.terms:
+            if any(item.label for item in row.bins):  # a LEVELS term: its bins are levels, other and unseen
+                shown = ", ".join(f"{item.label} {item.actual:.1%} ({item.expected:.1%})" for item in row.bins)
+                out.print(f"{row.name} by level, batch (training): {shown}", markup=False, highlight=False)
+            if row.unseen:
+                levels = ", ".join(f"{level} ({rows} rows)" for level, rows in row.unseen)
+                out.print(f"[yellow]unseen levels of {row.name}:[/yellow] {levels}", highlight=False)
         for reason in report.stale:
             out.print(f"[red]stale:[/red] {reason}")
     if fail_above is not None:

@@ -39,9 +39,7 @@ def lease_terms_in_pandas(leases: pd.DataFrame) -> pd.DataFrame:
         "monthly_payment": leases.monthly_payment.astype(float),
         "past_late_payments": leases.past_late_payments.astype(float),
         "term_months": leases.term_months.astype(float),
-        "sector_construction": (leases.sector == "construction").astype(float),
-        "sector_food_service": (leases.sector == "food_service").astype(float),
-        "sector_health": (leases.sector == "health").astype(float),
+        "sector_level": leases.sector,  # a learned term (LEVELS): the design table keeps its level as text
     })
 
 
@@ -59,7 +57,8 @@ def test_the_design_table_equals_the_terms_computed_in_pandas(lease_demo):
     expected = lease_terms_in_pandas(pd.read_csv(DEMOS / "lease_default" / "data" / "leases.csv"))
     assert list(built.columns) == list(expected.columns)
     assert built._holdout.tolist() == expected._holdout.tolist()
-    numeric = expected.columns.drop(["_holdout"])
+    assert built.sector_level.tolist() == expected.sector_level.tolist()
+    numeric = expected.columns.drop(["_holdout", "sector_level"])
     # NULL exactly where pandas has NaN, and equal values elsewhere (to 1e-12 relative).
     assert (built[numeric].isna() == expected[numeric].isna()).all().all()
     np.testing.assert_allclose(built[numeric].to_numpy(float), expected[numeric].to_numpy(float), rtol=1e-12, equal_nan=True)
@@ -78,7 +77,8 @@ def test_sqlite_computes_the_same_design_table_as_duckdb(lease_demo):
     with featpipe.connect(lease_demo) as engine:
         on_duckdb = engine.fetch_frame(select_all("design_default_risk")).sort_values("lease_id").reset_index(drop=True)
     assert on_sqlite._holdout.astype(bool).tolist() == on_duckdb._holdout.tolist()
-    columns = on_duckdb.columns.drop("_holdout")
+    assert on_sqlite.sector_level.tolist() == on_duckdb.sector_level.tolist()  # a learned term's level, as text
+    columns = on_duckdb.columns.drop(["_holdout", "sector_level"])
     np.testing.assert_allclose(on_sqlite[columns].to_numpy(float), on_duckdb[columns].to_numpy(float), rtol=1e-12, equal_nan=True)
 
 

@@ -49,19 +49,53 @@ def demo(request, tmp_path_factory):
     query = exp.select(*map(column, [fitted.key, *terms, *offset])).from_(exp.to_table(f"design_{model}"))
     rows = engine.fetch(query.order_by(column(fitted.key)))
     engine.close()
-    design = np.array([[math.nan if value is None else value for value in row[1:]] for row in rows], dtype=float)
-    values = [design[:, i] for i in range(len(terms))]
-    offset_values = design[:, -1] if fitted.offset else None
+    # A learned term's design columns from its argument, by numpy, from the constants in the fitted file.
+    values = [learned_columns(term.learned, [row[index] for row in rows]) if term.learned
+              else np.array([math.nan if row[index] is None else row[index] for row in rows], dtype=float)
+              for index, term in enumerate(fitted.terms[1:], start=1)]
+    offset_values = np.array([row[-1] for row in rows], dtype=float) if fitted.offset else None
     expected = expected_scores(fitted, values, REASONS, offset_values)
 
+    design = np.column_stack([value if np.ndim(value) == 2 else value[:, None] for value in values])
     complete = ~np.isnan(design).any(axis=1)
-    exog = sm.add_constant(design[complete, : len(terms)], has_constant="add")
+    exog = sm.add_constant(design[complete], has_constant="add")
     glm = sm.GLM(np.zeros(complete.sum()), exog, family=SM_FAMILIES[fitted.family])
-    params = np.array([term.estimate for term in fitted.terms])
+    params = np.array([fitted.terms[0].estimate] + [
+        item["estimate"] for term in fitted.terms[1:] for item in (term.learned["columns"] if term.learned else [vars(term)])])
     reference = np.full(len(rows), math.nan)
     reference[complete] = glm.predict(params, exog, offset=offset_values[complete] if fitted.offset else None)
     return {"project": project, "fitted": fitted, "keys": [row[0] for row in rows], "expected": expected,
             "statsmodels": reference}
+
+
+def learned_columns(learned: dict, values: list) -> np.ndarray:
+    """A learned term's design columns (rows x columns) from its argument's values, written from the issue's
+    definitions: LEVELS indicators (pooled levels in `other`), BINS right-closed indicators, CAPPED
+    clipping, and the restricted cubic spline of Harrell, Regression Modeling Strategies (eq. 2.25),
+    divided by (t_k - t_1)^2."""
+    missing = np.array([value is None for value in values])
+    if learned["function"] == "LEVELS":
+        text = np.array(["" if value is None else str(value) for value in values])
+        columns = [np.isin(text, learned["pooled"]) if item["label"] == "other" else text == item["label"]
+                   for item in learned["columns"]]
+    else:
+        x = np.array([math.nan if value is None else value for value in values], dtype=float)
+        t = np.array(learned["values"])
+        if learned["function"] == "CAPPED":
+            columns = [np.clip(x, *t)]
+        elif learned["function"] == "BINS":
+            columns = [(x > low) & (x <= high) for low, high in zip(t, [*t[1:], np.inf])]
+        else:
+            def cube(u):
+                return np.where(u > 0, u, 0.0) ** 3
+
+            k = len(t)
+            columns = [x] + [(cube(x - t[j]) - cube(x - t[k - 2]) * (t[k - 1] - t[j]) / (t[k - 1] - t[k - 2])
+                              + cube(x - t[k - 1]) * (t[k - 2] - t[j]) / (t[k - 1] - t[k - 2])) / (t[k - 1] - t[0]) ** 2
+                             for j in range(k - 2)]
+    matrix = np.column_stack(columns).astype(float)
+    matrix[missing] = math.nan
+    return matrix
 
 
 @pytest.fixture(params=["duckdb", "sqlite", "postgres"])

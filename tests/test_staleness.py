@@ -8,6 +8,8 @@ each test edits its spec and watches the fitted file react.
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from conftest import copy_demo, run_featpipe
@@ -55,10 +57,15 @@ def test_an_edited_threshold_is_named_by_check_and_refresh_recomputes_the_class_
     assert fitted.coefficients == before.coefficients  # the threshold changes no estimate
     project = load_project(root)
     layout = api.check(project).models[MODEL].layout
+    # sector_level (a learned term) is read as its design columns, from the table the fit expands them into.
+    estimates = {}
+    for term in fitted.model_terms:
+        estimates.update({f"_{term.name}__{i}": item["estimate"] for i, item in enumerate(term.learned["columns"], start=1)}
+                         if term.learned else {term.name: term.estimate})
+    layout = replace(layout, table=f"{layout.table}__columns", terms=tuple(estimates))
     with api.connect(project) as engine:
         rows = engine.fetch_frame(select_all(layout.table).where(holdout_rows(layout)))
-    eta = fitted.coefficients[INTERCEPT] + rows[list(layout.terms)].to_numpy(float) @ np.array(
-        [fitted.coefficients[name] for name in layout.terms])
+    eta = fitted.coefficients[INTERCEPT] + rows[list(layout.terms)].to_numpy(float) @ np.array(list(estimates.values()))
     observed, flagged = rows[layout.target].to_numpy(int), 1 / (1 + np.exp(-eta)) >= 0.3
     # Reference library: scikit-learn's class metrics on the same held-out rows, flagged at 0.3.
     assert fitted.metrics["accuracy"] == pytest.approx(accuracy_score(observed, flagged), rel=1e-12)
@@ -138,7 +145,9 @@ def test_a_new_key_makes_the_fit_stale_and_refresh_rebuilds_on_it(tmp_path):
     edit(root / "featpipe.yaml", "    key: lease_id\n", "    key: contract\n")
     edit(root / "featpipe.yaml", "      lease_id: BIGINT\n", "      lease_id: BIGINT\n      contract: VARCHAR\n")
     stale = api.check_report(load_project(root)).stale
-    assert f"fitted/{MODEL}.yaml is stale: key changed from lease_id to contract" in stale
+    # The data file changed too (a new column), so the learned sector levels would be learned again.
+    assert (f"fitted/{MODEL}.yaml is stale: key changed from lease_id to contract; the data of input 'leases' changed "
+            "since the fit, so the learned constants of sector_level would be learned again") in stale
 
     said: list[str] = []
     api.refresh(load_project(root), progress=said.append)

@@ -9,6 +9,7 @@ cycles, inlining), types (numeric or boolean), canonical (canonical SQL and fing
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import hashlib
 import json
@@ -41,6 +42,7 @@ from .inline import (
 )
 from .layout import DesignLayout
 from .leakage import target_paths
+from .learned import LearnedCall, argument_type, call_sql, is_learned, learned_call, nested_learned
 from .parse import TERM_DIALECT, RawTerm, nesting_depth, node_position, parse_term_file
 from .resolve import resolve_names, with_declared_columns
 from .types import term_type
@@ -64,6 +66,9 @@ class Term:
     columns: tuple[str, ...]  # input columns it reads, directly or through other terms
     expression: exp.Expression = field(compare=False, repr=False)  # as written
     inlined: exp.Expression = field(compare=False, repr=False)  # canonical tree, input columns only
+    # A learned term (LEVELS, BINS, SPLINE, CAPPED): `expression`, `inlined` and `sql` are its argument,
+    # `kind` the argument's ("text" for LEVELS) and `fingerprint` covers the whole call.
+    learned: LearnedCall | None = None
 
 
 @dataclass(frozen=True)
@@ -130,10 +135,12 @@ def compile_project(project: Project) -> CompiledProject:
     columns_by_input = {name: spec.columns for name, spec in project.inputs.items()}
     raw_terms = _parse_files(project, diagnostics)
     raw_terms = _unique_names(raw_terms, columns_by_input, diagnostics)
+    raw_terms, calls, refused = _learned_calls(raw_terms, texts, diagnostics)
     raw_terms, uses, problems = resolve_names(raw_terms, columns_by_input, texts)
+    _refuse_learned_uses(raw_terms, uses, calls, texts, problems)
     for term in raw_terms:
         problems.setdefault(term.name, []).extend(check_allowed(term.expression, term.file))
-    broken = {name for name, found in problems.items() if found}
+    broken = {name for name, found in problems.items() if found} | refused
     diagnostics.extend(d for found in problems.values() for d in found)
 
     order, cycles = dependency_order(uses)
@@ -144,7 +151,7 @@ def compile_project(project: Project) -> CompiledProject:
                                       f"terms depend on each other in a cycle: {' -> '.join(cycle)}"))
         broken.update(cycle)
 
-    terms = _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics)
+    terms = _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics, calls)
     models = {}
     for spec in project.models.values():
         model = _compile_model(project, spec, terms, uses, by_name, diagnostics)
@@ -196,7 +203,42 @@ def _unique_names(terms: list[RawTerm], columns_by_input, diagnostics) -> list[R
     return kept
 
 
-def _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics) -> dict[str, Term]:
+def _learned_calls(terms: list[RawTerm], texts, diagnostics) -> tuple[list[RawTerm], dict[str, LearnedCall], set[str]]:
+    """Learned terms with their argument as expression (the other passes check it), their calls, and
+    the terms refused here (kept with a NULL expression, so no pass reports them again)."""
+    kept, calls, refused = [], {}, set()
+    for term in terms:
+        nested = nested_learned(term.expression)
+        problems = [(nested, f"{nested.name.upper()}(...) must be the whole expression of a term: write it as its "
+                             "own projection and do not use it inside another expression")] if nested else []
+        call = None
+        if not problems and is_learned(term.expression):
+            call, problems = learned_call(term.expression)
+        for node, message in problems:
+            diagnostics.append(Diagnostic(term.file, *node_position(texts[term.file], node), message))
+        if problems:
+            refused.add(term.name)
+            kept.append(dataclasses.replace(term, expression=exp.Null()))
+        elif call is not None:
+            calls[term.name] = call
+            kept.append(dataclasses.replace(term, expression=term.expression.expressions[0]))
+        else:
+            kept.append(term)
+    return kept, calls, refused
+
+
+def _refuse_learned_uses(terms: list[RawTerm], uses, calls, texts, problems) -> None:
+    """A learned term's constants are learned per model, so no other term may be built from it."""
+    for term in terms:
+        for used in sorted(uses[term.name] & set(calls)):
+            node = next((c for c in term.expression.find_all(exp.Column) if c.name == used), term.expression)
+            problems.setdefault(term.name, []).append(Diagnostic(term.file, *node_position(texts[term.file], node),
+                f"term '{used}' is a learned term ({calls[used].function}); other terms may not use it: "
+                "use its argument expression instead"))
+
+
+def _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics, calls=None) -> dict[str, Term]:
+    calls = calls or {}
     by_name = {term.name: term for term in raw_terms}
     kinds: dict[str, str] = {}
     for name in order:
@@ -206,7 +248,10 @@ def _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics) ->
             continue
         schema = dict(project.inputs[term.input].columns)
         schema.update({used: "BOOLEAN" if kinds[used] == "boolean" else "DOUBLE" for used in uses[name]})
-        kind, problems = term_type(term.expression, schema)
+        if name in calls:
+            kind, problems = argument_type(calls[name], term.expression, schema)
+        else:
+            kind, problems = term_type(term.expression, schema)
         for node, message in problems:
             line, col = node_position(texts[term.file], node)
             diagnostics.append(Diagnostic(term.file, line, col, message))
@@ -246,10 +291,11 @@ def _typed_terms(project, raw_terms, uses, order, broken, texts, diagnostics) ->
             continue
         terms[name] = Term(
             name=name, input=raw.input, file=raw.file, line=raw.line, col=raw.col, doc=raw.doc,
-            kind=kinds[name], sql=sql, fingerprint=fingerprint_of_sql(sql),
+            kind=kinds[name], sql=sql,
+            fingerprint=fingerprint_of_sql(call_sql(calls[name], tree) if name in calls else sql),
             uses=tuple(sorted(uses[name])), built_from=tuple(sorted(_closure(name, uses))),
             columns=tuple(sorted({c.name for c in tree.find_all(exp.Column)})),
-            expression=raw.expression, inlined=tree,
+            expression=raw.expression, inlined=tree, learned=calls.get(name),
         )
     return terms
 

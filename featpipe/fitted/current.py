@@ -29,7 +29,7 @@ def refuse_if_stale(project: Project, fitted: FittedModel, *, allow_stale: bool 
         if not allow_stale:
             raise
         return (UNCHECKED,)
-    reasons = tuple(staleness(fitted, models.get(fitted.model)))
+    reasons = tuple(staleness(fitted, models.get(fitted.model), project.inputs))
     if reasons and not allow_stale:
         raise FeatpipeError(
             f"fitted/{fitted.model}.yaml is stale: {'; '.join(reasons)}; run `featpipe fit -p {project.root} "

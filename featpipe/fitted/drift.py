@@ -36,11 +36,12 @@ from ..sqlgen.drift import (
     EMPTY_SHARE,
     Monitored,
     drift_query,
-    expected_shares,
     output_names,
+    unseen_levels_query,
 )
 from . import FittedModel, file_hash
 from .current import refuse_if_stale
+from .learned import UNSEEN, learned_monitored
 from .scoring import (
     fitted_source,
     load_fitted,
@@ -68,6 +69,7 @@ class Bin:
     expected: float  # share of the training rows (NULLs included)
     actual: float  # share of the batch's rows
     rows: int  # the batch's rows in the bin
+    label: str | None = None  # a LEVELS term's bin: a level, `other` or `unseen` (low and high None)
 
 
 @dataclass(frozen=True)
@@ -82,10 +84,11 @@ class DriftRow:
     training_null_share: float
     below_min_share: float  # batch rows below the training minimum
     above_max_share: float  # batch rows above the training maximum
-    mean: float | None  # of the batch's non-NULL values (None: all NULL)
-    training_mean: float
+    mean: float | None  # of the batch's non-NULL values (None: all NULL, or a LEVELS term)
+    training_mean: float | None  # None for a LEVELS term
     shift: float | None  # terms: the batch's mean contribution (0 in training); score: mean minus training mean
     rank: int | None = None  # terms: 1 for the term that moved the scores most (largest |shift|)
+    unseen: tuple[tuple[str, int], ...] = ()  # a LEVELS term: the batch's levels never seen in training, with rows
 
     def as_dict(self) -> dict:
         return {
@@ -93,7 +96,11 @@ class DriftRow:
             "mean": self.mean, "training_mean": self.training_mean,
             "null_share": self.null_share, "training_null_share": self.training_null_share,
             "below_min_share": self.below_min_share, "above_max_share": self.above_max_share,
-            "bins": [vars(item) for item in self.bins],
+            "bins": [{key: value for key, value in vars(item).items() if key != "label" or value is not None}
+                     for item in self.bins],
+            # A LEVELS term's bins carry a label; its batch's levels never seen in training are listed.
+            **({"unseen": [{"level": level, "rows": rows} for level, rows in self.unseen]}
+               if any(item.label for item in self.bins) else {}),
         }
 
 
@@ -125,11 +132,16 @@ class DriftReport:
 
 
 def monitored(fitted: FittedModel) -> tuple[Monitored, ...]:
-    """Every term in model order, then the linear predictor; refuses a fitted file without profiles."""
-    items = [Monitored(term.name, term.profile, term.estimate) for term in fitted.model_terms]
+    """Every term in model order, then the linear predictor; refuses a fitted file without profiles.
+
+    A learned term is monitored as one term: CAPPED as its one column, BINS and SPLINE by their
+    argument over its training deciles, LEVELS by its levels (featpipe.fitted.learned.learned_monitored).
+    """
+    items = [Monitored(term.name, term.profile, term.estimate) if term.learned is None
+             else learned_monitored(term, fitted.rows.get("train")) for term in fitted.model_terms]
     items.append(Monitored(LINEAR_PREDICTOR, fitted.linear_predictor))
     for item in items:
-        if item.profile is None:
+        if item.profile is None and not item.categories:
             raise FeatpipeError(f"{fitted_source(fitted)}: {item.name} has no training profile; run `featpipe fit` again")
     return tuple(items)
 
@@ -147,6 +159,9 @@ def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
          f"({psi_column('')})."),
         "Bins: bin 1 is value <= first edge, bin i is previous edge < value <= edge i, the last is above the last edge;",
         "expected shares are the training rows' (NULLs included), written below as literals.",
+        *(["A LEVELS term's bins are its levels (the reference and each level with a column), then `other` (the",
+           "pooled levels) when it has pooled levels, then `unseen` (levels no training row had; expected share 0)."]
+          if any(term.learned and term.learned["function"] == "LEVELS" for term in fitted.model_terms) else []),
         f"PSI = SUM over bins of (actual - expected) * LN(actual / expected); a share below {EMPTY_SHARE:g} counts as {EMPTY_SHARE:g}.",
         (f"Reading (common practice in credit scoring): below {MODERATE_FROM} stable, {MODERATE_FROM} to {MAJOR_ABOVE} "
          f"a moderate shift, above {MAJOR_ABOVE} a major shift."),
@@ -154,14 +169,17 @@ def drift_header(fitted: FittedModel, fitted_hash: str) -> str:
     return sql_comment(lines)
 
 
-def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple) -> DriftReport:
-    """The report from the drift query's one row (`names`: its column names, see output_names)."""
+def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple, unseen: tuple = ()) -> DriftReport:
+    """The report from the drift query's one row (`names`: its column names, see output_names) and the
+    rows of the unseen-levels query (term, level, rows)."""
     values = dict(zip(names, row, strict=True))
     rows = int(values[ROWS])
     if rows == 0:
         raise FeatpipeError(f"table '{table}' has no rows; there is no batch to compare with the training rows")
     items = monitored(fitted)
-    terms = [_row(item, values, rows) for item in items[:-1]]
+    terms = [replace(_row(item, values, rows), unseen=tuple((str(level), int(count)) for term, level, count in unseen
+                                                            if term == item.name))
+             for item in items[:-1]]
     ranked = sorted(range(len(terms)), key=lambda index: -abs(terms[index].shift or 0.0))
     for rank, index in enumerate(ranked, start=1):
         terms[index] = replace(terms[index], rank=rank)
@@ -170,16 +188,17 @@ def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple) ->
 
 def _row(item: Monitored, values: dict, rows: int) -> DriftRow:
     profile = item.profile
-    expected = expected_shares(profile)
-    lows = (None, *profile.edges)
-    highs = (*profile.edges, None)
+    expected = item.expected()
+    edges = () if item.categories else profile.edges
+    lows, highs = (None, *edges), (*edges, None)
+    labels = (*(category.label for category in item.categories), UNSEEN) if item.categories else (None,) * item.bins
     bins = tuple(
-        Bin(lows[index - 1], highs[index - 1], expected[index - 1],
-            int(values[bin_column(item.name, index)]) / rows, int(values[bin_column(item.name, index)]))
+        Bin(lows[index - 1] if edges else None, highs[index - 1] if edges else None, expected[index - 1],
+            int(values[bin_column(item.name, index)]) / rows, int(values[bin_column(item.name, index)]), labels[index - 1])
         for index in range(1, item.bins + 1)
     )
     mean = _optional(values[mean_column(item.name)])
-    if item.estimate is not None:
+    if item.estimate is not None or item.parts:
         shift = _optional(values[mean_contribution_column(item.name)])
     else:
         shift = None if mean is None else mean - profile.mean
@@ -189,7 +208,7 @@ def _row(item: Monitored, values: dict, rows: int) -> DriftRow:
         null_share=int(values[bin_column(item.name, NULL_BIN)]) / rows, training_null_share=expected[-1],
         below_min_share=int(values[below_column(item.name)]) / rows,
         above_max_share=int(values[above_column(item.name)]) / rows,
-        mean=mean, training_mean=profile.mean, shift=shift,
+        mean=mean, training_mean=None if profile is None else profile.mean, shift=shift,
     )
 
 
@@ -208,13 +227,16 @@ def drift(
     fitted = load_fitted(project, model)
     stale = refuse_if_stale(project, fitted, allow_stale=allow_stale)
     contract = scoring_contract(project.inputs[fitted.input], fitted)
-    query = drift_query(scoring_model(fitted), monitored(fitted), table=table)
+    items = monitored(fitted)
+    query = drift_query(scoring_model(fitted), items, table=table)
+    levels = unseen_levels_query(scoring_model(fitted), items, table=table)
     with connect(project) as engine:
         check_contract(contract, table, engine.describe(table), engine.name)
         if progress:
             progress(f"comparing {table} with the training rows of {model} in {engine.name}")
         (row,) = engine.fetch(query)
-    report = read_drift(fitted, table, output_names(query), row)
+        unseen = tuple(engine.fetch(levels)) if levels is not None else ()
+    report = read_drift(fitted, table, output_names(query), row, unseen)
     return replace(report, stale=stale)
 
 

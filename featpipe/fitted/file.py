@@ -20,8 +20,10 @@ import yaml
 from ..atomic import write_text_atomic
 from ..compiler import CompiledModel
 from ..errors import FeatpipeError
+from ..project import InputSpec
 from ..project.yamlfile import read_text
 from ..sqlgen.profile import Profile
+from .learned import check_learned_columns, data_staleness
 from .validate import AGAIN, FORMAT_VERSION, check_integrity, check_values
 
 
@@ -38,7 +40,7 @@ class Effect:
 @dataclass(frozen=True)
 class FittedTerm:
     name: str
-    estimate: float
+    estimate: float | None
     std_error: float | None
     statistic: float | None
     p_value: float | None
@@ -54,6 +56,9 @@ class FittedTerm:
     vif: float | None = None
     profile: Profile | None = None
     notes: tuple[str, ...] = ()
+    # A learned term's constants, one entry per design column and its joint Wald test (fitting/learned.py);
+    # a term of several columns has no single estimate (None).
+    learned: dict | None = None
 
 
 @dataclass(frozen=True)
@@ -105,13 +110,16 @@ def to_yaml(fitted: FittedModel) -> str:
     data = asdict(fitted)
     if not data["crossval"]:
         del data["crossval"]  # a fit without folds writes the file it always did
+    for term in data["terms"]:  # only a learned term has the key: other fits keep their bytes
+        if term["learned"] is None:
+            del term["learned"]
     return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 
 SIGNIFICANT_DIGITS = 12
 ORDER_STATISTICS = {"edges", "min", "median", "max"}
 # Written in full too: the spec's own values, compared with the spec when the fit goes stale.
-WRITTEN_IN_FULL = ORDER_STATISTICS | {"depends_on"}
+WRITTEN_IN_FULL = ORDER_STATISTICS | {"depends_on", "values"}  # values: a learned term's edges, knots or caps
 
 
 def as_written(value: float) -> float:
@@ -140,6 +148,7 @@ def from_yaml(text: str, source: str) -> FittedModel:
     (featpipe.fitted.validate); `source` names the file in messages."""
     data = _yaml_data(text, source)
     check_values(data, source)
+    check_learned_columns(data, text, source)
     fitted = FittedModel(**{
         **data,
         "terms": tuple(_term(item) for item in data["terms"]),
@@ -207,9 +216,10 @@ def file_hash(path: Path) -> str:
 OLDER_FILE = "the file does not record all the fit depended on (an older featpipe wrote it); fit it again to record it"
 
 
-def staleness(fitted: FittedModel, model: CompiledModel | None) -> list[str]:
+def staleness(fitted: FittedModel, model: CompiledModel | None, inputs: dict[str, InputSpec] | None = None) -> list[str]:
     """Why a fitted model no longer matches its current definitions (empty when it is current);
-    `model` None: its spec is gone.
+    `model` None: its spec is gone. Given the project's `inputs`, a model with learned terms is also
+    stale when its input's data file changed since the fit (fitted.learned.data_staleness).
 
     Each reason names what changed between the dependencies recorded in the file (`depends_on`) and
     the model's now. A file written before featpipe recorded them still names its terms' changes,
@@ -217,12 +227,13 @@ def staleness(fitted: FittedModel, model: CompiledModel | None) -> list[str]:
     """
     if model is None:
         return [f"specs/{fitted.model}.yaml no longer exists"]
+    data = data_staleness(fitted, inputs) if inputs is not None else []
     if fitted.fingerprint == model.fingerprint:
-        return []
+        return data
     recorded = fitted.depends_on or {"terms": {term.name: term.fingerprint for term in fitted.terms if term.fingerprint}}
     reasons = [reason for key, now in model.dependencies.items() if key in recorded and not _same(recorded[key], now)
                for reason in _changes(key, recorded[key], now)]
-    return reasons or [OLDER_FILE]
+    return (reasons or [OLDER_FILE]) + data
 
 
 def _same(was, now) -> bool:
@@ -264,7 +275,7 @@ def stale_fits(compiled) -> tuple[str, ...]:
     for name, model in sorted(compiled.models.items()):
         path = compiled.project.fitted_path(name)
         if path.is_file():
-            reasons = staleness(read_fitted(path), model)
+            reasons = staleness(read_fitted(path), model, compiled.project.inputs)
             if reasons:
                 lines.append(f"fitted/{name}.yaml is stale: {'; '.join(reasons)}")
     return tuple(lines)

@@ -39,7 +39,9 @@ from ..sqlgen.score import (
     score_query,
     score_statement,
 )
-from . import FittedModel, file_hash, read_fitted
+from ..compiler.learned import LearnedCall
+from ..sqlgen.learned import LearnedConstants
+from . import FittedModel, FittedTerm, file_hash, read_fitted
 from .current import refuse_if_stale
 
 
@@ -83,14 +85,37 @@ def scoring_model(fitted: FittedModel) -> ScoringModel:
     if repeated:
         raise FeatpipeError(f"{source}: '{repeated[0]}' names two columns of the model; run `featpipe fit` again")
     for term in fitted.model_terms:
-        if term.profile is None:
+        if term.profile is None and term.learned is None:
             raise FeatpipeError(f"{source}: term '{term.name}' has no training profile; run `featpipe fit` again")
+    terms = []
+    for term in fitted.model_terms:
+        if term.learned is None:
+            terms.append(ScoringTerm(term.name, term.sql, term.kind == "boolean", term.estimate, term.profile.mean))
+        else:
+            terms += learned_scoring_terms(term)
     return ScoringModel(
         key=fitted.key, table=fitted.input, family=fitted.family, intercept=fitted.terms[0].estimate,
-        offset=fitted.offset, columns=fitted.columns, source=source,
-        terms=tuple(ScoringTerm(term.name, term.sql, term.kind == "boolean", term.estimate, term.profile.mean)
-                    for term in fitted.model_terms),
+        offset=fitted.offset, columns=fitted.columns, source=source, terms=tuple(terms),
     )
+
+
+def learned_constants(term: FittedTerm) -> LearnedConstants:
+    """A learned term's constants as its fitted file records them."""
+    learned = term.learned
+    call = LearnedCall(learned["function"], tuple(learned["arguments"]))
+    labels = tuple(item["label"] for item in learned["columns"])
+    if call.function == "LEVELS":
+        return LearnedConstants(call, tuple((item["level"], item["rows"]) for item in learned["levels"]),
+                                learned["reference"], labels, tuple(learned["pooled"]))
+    return LearnedConstants(call, values=tuple(learned["values"]))
+
+
+def learned_scoring_terms(term: FittedTerm) -> list[ScoringTerm]:
+    """One scoring column per design column of a learned term, named as the fit named them."""
+    constants = learned_constants(term)
+    return [ScoringTerm(f"_{term.name}__{index + 1}", term.sql, False, item["estimate"], item["mean"],
+                        term=term.name, learned=constants, index=index, kind=term.kind)
+            for index, item in enumerate(term.learned["columns"])]
 
 
 def score_header(fitted: FittedModel, fitted_hash: str) -> str:

@@ -34,6 +34,7 @@ from sqlglot.errors import ParseError, TokenError
 from ..compiler import dependencies_fingerprint
 from ..compiler.allowlist import check_allowed
 from ..compiler.canonical import canonical_sql, fingerprint_of_sql
+from ..compiler.learned import LEARNED_FUNCTIONS, argument_type, call_sql, learned_call
 from ..compiler.types import term_type
 from ..errors import FeatpipeError
 from ..project.load import CROSS_VALIDATED, EXPECTATIONS, LINKS, is_sql_type
@@ -191,15 +192,25 @@ PROFILE = record({
 })
 EFFECT = record({"kind": TEXT, "step": NUMBER, "value": RATIO, "low": optional(RATIO), "high": optional(RATIO)},
                 {"basis": one_of("step", "sd", "indicator")})
+WALD = record({"statistic": NUMBER, "df": COUNT, "p_value": NUMBER})
+LEARNED_COLUMN = record({"label": TEXT, "estimate": NUMBER, "std_error": OPTIONAL_NUMBER, "statistic": OPTIONAL_NUMBER,
+                         "p_value": OPTIONAL_NUMBER, "ci_low": OPTIONAL_NUMBER, "ci_high": OPTIONAL_NUMBER,
+                         "mean": NUMBER, "reading": TEXT})
+LEARNED = record(
+    {"function": one_of(*LEARNED_FUNCTIONS), "arguments": listing(NUMBER), "columns": listing(LEARNED_COLUMN),
+     "wald": optional(WALD)},
+    {"levels": listing(record({"level": TEXT, "rows": COUNT})), "reference": TEXT, "pooled": listing(TEXT),
+     "values": listing(NUMBER), "data": TEXT},
+)
 TERM = record(
-    {"name": TERM_NAME, "estimate": NUMBER, "std_error": OPTIONAL_NUMBER, "statistic": OPTIONAL_NUMBER,
+    {"name": TERM_NAME, "estimate": OPTIONAL_NUMBER, "std_error": OPTIONAL_NUMBER, "statistic": OPTIONAL_NUMBER,
      "p_value": OPTIONAL_NUMBER, "ci_low": OPTIONAL_NUMBER, "ci_high": OPTIONAL_NUMBER},
-    {"fingerprint": optional(FINGERPRINT), "sql": optional(TEXT), "kind": one_of("intercept", "numeric", "boolean"),
+    {"fingerprint": optional(FINGERPRINT), "sql": optional(TEXT), "kind": one_of("intercept", "numeric", "boolean", "text", "whole"),
      "doc": TEXT, "columns": listing(NAME), "built_from": listing(NAME), "effect": optional(EFFECT),
-     "vif": OPTIONAL_NUMBER, "profile": optional(PROFILE), "notes": listing(TEXT)},
+     "vif": OPTIONAL_NUMBER, "profile": optional(PROFILE), "notes": listing(TEXT), "learned": optional(LEARNED)},
 )
 ROWS = record({}, {"input": COUNT, "complete": COUNT, "train": COUNT, "holdout": COUNT, "dropped": mapping(TEXT, COUNT),
-                  "imputed": mapping(NAME, COUNT)})
+                  "imputed": mapping(NAME, COUNT), "unseen": mapping(NAME, COUNT)})
 FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": OPTIONAL_NUMBER,
     "aic": OPTIONAL_NUMBER, "bic": OPTIONAL_NUMBER, "dispersion": NUMBER, "power": TWEEDIE_POWER, "statistic": TEXT, "penalized": FLAG, "passes": COUNT,
@@ -285,15 +296,33 @@ def _check_agreement(fitted) -> None:
     for term in fitted.model_terms:
         if term.name == INTERCEPT or term.name in fitted_terms or term.sql is None or term.fingerprint is None:
             raise Refusal(f"term {term.name} must be listed once, with its SQL and fingerprint")
-        tree = _checked_sql(fitted, f"term {term.name}'s SQL", term.sql, term.fingerprint)
-        if term_type(tree, fitted.columns)[0] != term.kind:
-            raise Refusal(f"term {term.name}'s kind does not match its SQL")
+        if term.learned is not None:
+            _check_learned(fitted, term)
+        else:
+            tree = _checked_sql(fitted, f"term {term.name}'s SQL", term.sql, term.fingerprint)
+            if term_type(tree, fitted.columns)[0] != term.kind or term.estimate is None:
+                raise Refusal(f"term {term.name}'s kind does not match its SQL")
         fitted_terms[term.name] = term.fingerprint
     if fitted.offset is not None:
         _checked_sql(fitted, "the offset", fitted.offset, None)
     _check_terms_recorded(fitted_terms, recorded["terms"])
     if dependencies_fingerprint(recorded) != fitted.fingerprint:
         raise Refusal("the model fingerprint does not match depends_on")
+
+
+def _check_learned(fitted, term) -> None:
+    """A learned term's argument SQL, call and kind against its fingerprint; one estimate only for one column."""
+    tree = _checked_sql(fitted, f"term {term.name}'s SQL", term.sql, None)
+    literals = [exp.Literal.number(value) for value in term.learned["arguments"]]
+    call, problems = learned_call(exp.Anonymous(this=term.learned["function"], expressions=[tree.copy(), *literals]))
+    if problems:
+        raise Refusal(f"term {term.name}: {problems[0][1]}")
+    if fingerprint_of_sql(call_sql(call, tree)) != term.fingerprint:
+        raise Refusal(f"term {term.name}'s SQL does not match its fingerprint")
+    if argument_type(call, tree, fitted.columns)[0] != term.kind:
+        raise Refusal(f"term {term.name}'s kind does not match its SQL")
+    if (term.estimate is None) != (len(term.learned["columns"]) > 1) or not term.learned["columns"]:
+        raise Refusal(f"term {term.name} must have one estimate exactly when it has one column")
 
 
 def _checked_sql(fitted, what: str, sql: str, fingerprint: str | None) -> exp.Expression:

@@ -6,12 +6,14 @@ profiles and the holdout metrics are all queries; only small results come back.
 
 from __future__ import annotations
 
+import dataclasses
 from typing import TYPE_CHECKING
 
 from sqlglot import exp
 
 from ..compiler import CompiledModel, CompiledProject, Term
 from ..engines.base import Engine
+from ..engines.builds import input_signature
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
 from ..fitted.conventions import conventions
@@ -21,6 +23,7 @@ from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor
+from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -64,22 +67,34 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
 
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
-    penalty, l2_choice = chosen_penalty(engine, layout, spec)
-    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power).fit(engine, layout)
+    # Learned terms: constants from the training rows, then a table of their design columns to fit on.
+    constants = learn_constants(engine, model) if any(term.learned for term in model.terms) else {}
+    fit_layout = expand(engine, model, constants) if constants else layout
+    if any(found.call.function == "LEVELS" for found in constants.values()):
+        rows["unseen"] = unseen_holdout_rows(engine, model, constants)
+    penalty, l2_choice = chosen_penalty(engine, fit_layout, spec)
+    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power).fit(engine, fit_layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
-        engine, layout,
-        {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
+        engine, fit_layout,
+        {**{name: column(name) for name in (*fit_layout.terms, *profiled_arguments(constants))},
+         LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
+    metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
                               power=spec.power)
     intercept, *slopes = glm.coefficients
+    by_column = dict(zip(fit_layout.terms, slopes, strict=True))
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
-    fitted_terms += [
-        _fitted_term(coefficient, term, spec, model, profiles[term.name], training.sd)
-        for coefficient, term, training in zip(slopes, model.terms, glm.rows.term_profiles, strict=True)
-    ]
+    training_sd = {name: training.sd for name, training in zip(fit_layout.terms, glm.rows.term_profiles, strict=True)}
+    for term in model.terms:
+        if term.name not in constants:
+            fitted_terms.append(_fitted_term(by_column[term.name], term, spec, model, profiles[term.name], training_sd[term.name]))
+            continue
+        entry = learned_entry(term.name, constants[term.name], glm.coefficients, glm.covariance, glm.names, spec.family,
+                              {name: profiles[name].mean for name in fit_layout.terms},
+                              input_signature(compiled.project.inputs[spec.input]))
+        fitted_terms.append(_learned_term(term, entry, by_column, profiles, training_sd, spec, model))
     return FittedModel(
         model=spec.name,
         fingerprint=model.fingerprint,
@@ -118,7 +133,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
-        crossval=cross_validation(engine, layout, spec, penalty, l2_choice) if spec.folds else {},
+        crossval=cross_validation(engine, fit_layout, spec, penalty, l2_choice) if spec.folds else {},
         warnings=tuple(glm.warnings),
         depends_on=model.dependencies,
     )
@@ -131,6 +146,24 @@ def _read_columns(compiled: CompiledProject, model: CompiledModel) -> dict[str, 
     if model.offset is not None:
         read.update(node.name for node in model.offset.find_all(exp.Column))
     return {name: declared[name] for name in sorted(read)}
+
+
+def _learned_term(term: Term, entry: dict, by_column, profiles, training_sd, spec, model: CompiledModel) -> FittedTerm:
+    """A learned term as one entry: CAPPED (one column) reads like any term; a term of several columns
+    has no single estimate, its columns and joint test are in `learned`."""
+    names = column_names(term.name, len(entry["columns"]))
+    if term.learned.function == "CAPPED":
+        single = _fitted_term(by_column[names[0]], term, spec, model, profiles[names[0]], training_sd[names[0]])
+        return dataclasses.replace(single, learned=entry)
+    notes = tuple(item["reading"] for item in entry["columns"])
+    if entry["wald"] is not None:
+        wald = entry["wald"]
+        notes += (f"joint Wald test of its {wald['df']} columns: chi-square {wald['statistic']:.3g}, "
+                  f"p = {wald['p_value']:.3g}",)
+    return FittedTerm(name=term.name, estimate=None, std_error=None, statistic=None, p_value=None, ci_low=None,
+                      ci_high=None, fingerprint=term.fingerprint, sql=term.sql, kind=term.kind, doc=term.doc,
+                      columns=term.columns, built_from=term.built_from, notes=notes, learned=entry,
+                      profile=profiles.get(term.name))  # BINS, SPLINE: the argument's profile
 
 
 def _fitted_term(coefficient: Coefficient, term: Term | None, spec, model: CompiledModel, profile, training_sd=None) -> FittedTerm:

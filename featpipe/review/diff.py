@@ -30,7 +30,8 @@ from ..compiler import CompiledModel, CompiledProject, Term, compile_project
 from ..compiler.canonical import canonical_sql
 from ..compiler.parse import TERM_DIALECT
 from ..errors import FeatpipeError
-from ..fitted import FittedModel, FittedTerm, from_yaml, staleness
+from ..fitted import FittedModel, from_yaml, staleness
+from ..fitted.learned import constants_changes
 from ..project import load_project
 from .revision import Revision, project_files_at, resolve_revision, write_project_files
 
@@ -157,6 +158,15 @@ class ValueChange:
 
 
 @dataclass(frozen=True)
+class LearnedChange:
+    """A learned term's constants that moved between the two fits: levels added or dropped, the
+    reference, edges, knots or caps (fitted.learned.constants_changes)."""
+
+    term: str
+    changes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
 class FitChange:
     model: str
     file: str
@@ -166,6 +176,7 @@ class FitChange:
     rows: tuple[ValueChange, ...] = ()
     fit: tuple[ValueChange, ...] = ()
     metrics: tuple[ValueChange, ...] = ()
+    learned: tuple[LearnedChange, ...] = ()  # learned terms whose constants moved
 
 
 @dataclass(frozen=True)
@@ -257,7 +268,8 @@ def compare_projects(
                           if path in old_texts and old_texts[path] != text and path not in touched_files))
     fingerprint_moved = {name for name in new.models if name not in old_models
                          or old_models[name].fingerprint != new.models[name].fingerprint}
-    stale = _stale_fits(new.models, old_fitted, new_fitted, fingerprint_moved | (set(old_models) - set(new.models)))
+    stale = _stale_fits(new.models, old_fitted, new_fitted, fingerprint_moved | (set(old_models) - set(new.models)),
+                        new.project.inputs)
     fitted = tuple(_fit_change(name, old_fitted.get(name), new_fitted.get(name))
                    for name in sorted(set(old_fitted) | set(new_fitted))
                    if old_fitted.get(name) != new_fitted.get(name))
@@ -405,14 +417,14 @@ def _model_changes(old_models: dict[str, CompiledModel], new_models: dict[str, C
 
 
 def _stale_fits(models: dict[str, CompiledModel], old_fitted: dict[str, str], new_fitted: dict[str, str],
-                moved: set[str]) -> tuple[StaleFit, ...]:
+                moved: set[str], inputs) -> tuple[StaleFit, ...]:
     """Fitted files present now that no longer match their model. A stale fit is this change's
     doing when the model's fingerprint moved (or the model went away) or the fitted file changed."""
     stale = []
     for name, text in sorted(new_fitted.items()):
         file = f"fitted/{name}.yaml"
         try:
-            reasons = staleness(from_yaml(text, file), models.get(name))
+            reasons = staleness(from_yaml(text, file), models.get(name), inputs)
         except FeatpipeError as error:  # its fit change says `unreadable`; no fit can be current through it
             reasons = [f"it cannot be read ({error})"]
         if reasons:
@@ -435,29 +447,52 @@ def _fit_change(name: str, old_text: str | None, new_text: str | None) -> FitCha
         rows=value_changes(before.rows if before else {}, after.rows),
         fit=value_changes(before.fit if before else {}, after.fit),
         metrics=value_changes(before.metrics if before else {}, after.metrics),
+        learned=_learned_changes(before, after),
     )
 
 
-def _estimate(term: FittedTerm | None) -> Estimate | None:
-    if term is None:
-        return None
-    return Estimate(term.estimate, term.std_error, term.ci_low, term.ci_high, term.p_value)
+def _learned_changes(before: FittedModel | None, after: FittedModel) -> tuple[LearnedChange, ...]:
+    old_terms = {term.name: term for term in before.terms} if before else {}
+    changes = []
+    for term in after.model_terms:
+        old = old_terms.get(term.name)
+        if term.learned and old is not None:
+            moved = constants_changes(old.learned, term.learned)
+            if moved:
+                changes.append(LearnedChange(term.name, tuple(moved)))
+    return tuple(changes)
+
+
+def _coefficients(fitted: FittedModel) -> dict[str, tuple[Estimate, str | None]]:
+    """Every coefficient by name with its term's fingerprint: a learned term of several columns gives
+    one per column, named 'term label'."""
+    found = {}
+    for term in fitted.terms:
+        if term.estimate is None and term.learned:
+            for item in term.learned["columns"]:
+                found[f"{term.name} {item['label']}"] = (
+                    Estimate(item["estimate"], item["std_error"], item["ci_low"], item["ci_high"], item["p_value"]),
+                    term.fingerprint)
+        else:
+            found[term.name] = (Estimate(term.estimate, term.std_error, term.ci_low, term.ci_high, term.p_value),
+                                term.fingerprint)
+    return found
 
 
 def _coefficient_changes(before: FittedModel | None, after: FittedModel) -> tuple[CoefficientChange, ...]:
-    old_terms = {term.name: term for term in before.terms} if before else {}
-    new_terms = {term.name: term for term in after.terms}
+    old_terms = _coefficients(before) if before else {}
+    new_terms = _coefficients(after)
     names = list(new_terms) + [name for name in old_terms if name not in new_terms]
     changes = []
     for name in names:
-        old, new = old_terms.get(name), new_terms.get(name)
+        (old, old_fingerprint), (new, new_fingerprint) = old_terms.get(name, (None, None)), new_terms.get(name, (None, None))
         both = old is not None and new is not None
         changes.append(CoefficientChange(
-            name, _estimate(old), _estimate(new),
+            name, old, new,
             sign_flipped=both and old.estimate * new.estimate < 0,
             outside_old_interval=both and old.ci_low is not None and old.ci_high is not None
             and not old.ci_low <= new.estimate <= old.ci_high,
-            redefined=both and old.fingerprint != new.fingerprint,
+            redefined=both and old_fingerprint != new_fingerprint,
         ))
     return tuple(changes)
 

@@ -177,6 +177,7 @@ def render_text(diff: ProjectDiff) -> str:
                              + (f"  {'; '.join(notes)}" if notes else ""))
             for path, change in value_lines(fit):
                 lines.append(f"    {path}: {change if isinstance(change, str) else value_change(change)}")
+            lines += [f"    learned {change.term}: {'; '.join(change.changes)}" for change in fit.learned]
     footer = stale_footer(diff)
     if footer:
         lines += ["", footer]
@@ -226,6 +227,9 @@ def render_markdown(diff: ProjectDiff) -> str:
                 for change in fit.coefficients:
                     notes = ", ".join(f"**{note}**" for note in coefficient_notes(change))
                     lines.append(_row(_code(change.name), estimate(change.old), estimate(change.new), notes))
+            if fit.learned:
+                lines += ["", "Learned constants that moved:", ""]
+                lines += [f"- {_code(change.term)}: {'; '.join(change.changes)}" for change in fit.learned]
             values = value_lines(fit)
             if values:
                 lines += ["", _row("value", "before", "now", "change"), _row(*["---"] * 4)]

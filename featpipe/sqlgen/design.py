@@ -48,8 +48,22 @@ def holdout_flag(key: str, holdout: Holdout) -> exp.Expression:
 
 
 def term_value(term: Term, source: InputSpec) -> exp.Expression:
-    """A term's value as DOUBLE from its inlined expression; booleans become 1.0/0.0, NULL stays NULL."""
-    return as_number(harden(term.inlined, schema=source.columns), term.kind == "boolean")
+    """A term's value as DOUBLE from its inlined expression; booleans become 1.0/0.0, NULL stays NULL.
+
+    A learned term's value is its argument's (sqlgen/learned.py expands it into columns): for LEVELS
+    the level as text, whole numbers written without a fraction on every engine."""
+    return learned_value(term.kind, harden(term.inlined, schema=source.columns)) if term.learned else \
+        as_number(harden(term.inlined, schema=source.columns), term.kind == "boolean")
+
+
+def learned_value(kind: str, hardened: exp.Expression) -> exp.Expression:
+    """A learned term's hardened argument as stored: VARCHAR for a LEVELS term ('text', or a whole number
+    through BIGINT), DOUBLE otherwise."""
+    if kind == "text":
+        return exp.cast(hardened, exp.DataType.build("VARCHAR"))
+    if kind == "whole":
+        return exp.cast(exp.cast(hardened, exp.DataType.build("BIGINT")), exp.DataType.build("VARCHAR"))
+    return as_number(hardened, False)
 
 
 def target_value(name: str, declared_type: str) -> exp.Expression:

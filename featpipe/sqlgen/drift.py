@@ -59,23 +59,53 @@ from ..project.names import (
 )
 from .common import alias, column, double, number
 from .profile import Profile
-from .score import CONTRIBUTIONS, ScoringModel, score_query
+from .score import CONTRIBUTIONS, TERM_VALUES, ScoringModel, score_query
 
 EMPTY_SHARE = 0.0001
 COUNTS, SHARES = "drift_counts", "drift_shares"
 
 
 @dataclass(frozen=True)
+class Category:
+    """A bin of a LEVELS term: the levels it holds and their share of the training rows."""
+
+    label: str
+    levels: tuple[str, ...]
+    expected: float
+
+
+@dataclass(frozen=True)
 class Monitored:
-    """One profiled quantity of the model: a term (with its coefficient) or the linear predictor."""
+    """One profiled quantity of the model: a term (with its coefficient) or the linear predictor.
+
+    A learned term is read from the scoring query's columns: `value` names the one binned (its argument,
+    or CAPPED's one column) and `parts` its design columns (name, coefficient, training mean), whose
+    centred sum is its contribution. A LEVELS term is binned by `categories` (each level with a column
+    and the reference, then `other`), then the levels never seen in training (`unseen`), instead of
+    deciles; its training NULL share is `null_share`.
+    """
 
     name: str
-    profile: Profile
+    profile: Profile | None
     estimate: float | None = None  # None for the linear predictor
+    value: str | None = None
+    parts: tuple[tuple[str, float, float], ...] = ()
+    categories: tuple[Category, ...] = ()
+    null_share: float = 0.0
 
     @property
     def bins(self) -> int:
-        return len(self.profile.edges) + 1
+        return len(self.categories) + 1 if self.categories else len(self.profile.edges) + 1
+
+    @property
+    def column(self) -> str:
+        return self.value or self.name
+
+    def expected(self) -> tuple[float, ...]:
+        """Training share of every bin, the NULL bin last (`unseen` holds no training row)."""
+        if self.categories:
+            return (*(category.expected for category in self.categories), 0.0, self.null_share)
+        return expected_shares(self.profile)
 
 
 def expected_shares(profile: Profile) -> tuple[float, ...]:
@@ -100,14 +130,15 @@ def drift_query(model: ScoringModel, items: tuple[Monitored, ...], *, table: str
 
     `items` are the model's terms in model order, then the linear predictor.
     """
-    expected = [*(term.name for term in model.terms), LINEAR_PREDICTOR]
+    expected = [*model.groups, LINEAR_PREDICTOR]
     if [item.name for item in items] != expected:
         raise ValueError(f"monitored items {[item.name for item in items]} are not the terms and score {expected}")
     scoring = score_query(model, table=table)
     steps = [(cte.alias, cte.this.copy()) for cte in scoring.ctes]
     if steps[-1][0] != CONTRIBUTIONS:
         raise ValueError(f"the scoring query's last step is {steps[-1][0]}, not {CONTRIBUTIONS}")
-    steps[-1] = (CONTRIBUTIONS, steps[-1][1].select(*(column(item.name) for item in items[:-1]), copy=False))
+    carried_values = dict.fromkeys(name for item in items[:-1] for name in (item.column, *(part[0] for part in item.parts)))
+    steps[-1] = (CONTRIBUTIONS, steps[-1][1].select(*map(column, carried_values), copy=False))
 
     counted = [alias(exp.Count(this=exp.Star()), ROWS)]
     for item in items:
@@ -136,7 +167,9 @@ def _bin_indexes(item: Monitored) -> list[int | str]:
 
 
 def _counts(item: Monitored) -> list[exp.Expression]:
-    value = column(item.name)
+    if item.categories:
+        return _category_counts(item)
+    value = column(item.column)
     edges = item.profile.edges
     counts = []
     for index in range(1, item.bins + 1):
@@ -157,7 +190,64 @@ def _counts(item: Monitored) -> list[exp.Expression]:
         centred = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(item.profile.mean)))
         counts.append(alias(exp.Avg(this=exp.Mul(this=number(item.estimate), expression=centred)),
                             mean_contribution_column(item.name)))
+    elif item.parts:
+        counts.append(_mean_contribution(item))
     return counts
+
+
+def _category_counts(item: Monitored) -> list[exp.Expression]:
+    """A LEVELS term's rows per category, then unseen levels, NULLs; no range and no mean of text."""
+    value = column(item.column)
+    seen = [level for category in item.categories for level in category.levels]
+    counts = [alias(_count_if(_one_of(value, category.levels)), bin_column(item.name, index))
+              for index, category in enumerate(item.categories, start=1)]
+    unseen = exp.and_(value.copy().is_(exp.null()).not_(), exp.Not(this=_one_of(value, seen)))
+    counts.append(alias(_count_if(unseen), bin_column(item.name, len(item.categories) + 1)))
+    counts.append(alias(_count_if(value.copy().is_(exp.null())), bin_column(item.name, NULL_BIN)))
+    counts.append(alias(_count_if(exp.false()), below_column(item.name)))
+    counts.append(alias(_count_if(exp.false()), above_column(item.name)))
+    counts.append(alias(exp.cast(exp.null(), exp.DataType.build("DOUBLE")), mean_column(item.name)))
+    counts.append(_mean_contribution(item))
+    return counts
+
+
+def _one_of(value: exp.Expression, levels: tuple[str, ...] | list[str]) -> exp.Expression:
+    return exp.In(this=value.copy(), expressions=[exp.Literal.string(level) for level in levels])
+
+
+def _mean_contribution(item: Monitored) -> exp.Expression:
+    """The batch mean of a learned term's contribution: its columns' coefficient * (value - training mean),
+    summed, over the rows where they are not NULL (all of a term's columns are NULL together)."""
+    total: exp.Expression | None = None
+    for name, estimate, mean in item.parts:
+        part = exp.Mul(this=number(estimate), expression=exp.Paren(this=exp.Sub(this=column(name), expression=number(mean))))
+        total = part if total is None else exp.Add(this=total, expression=part)
+    return alias(exp.Avg(this=total), mean_contribution_column(item.name))
+
+
+def unseen_levels_query(model: ScoringModel, items: tuple[Monitored, ...], *, table: str | None = None) -> exp.Query | None:
+    """(term, level, rows) of every level of a LEVELS term in the batch that training never saw, most
+    rows first; None when the model has no LEVELS term."""
+    levelled = [item for item in items if item.categories]
+    if not levelled:
+        return None
+    scoring = score_query(model, table=table)
+    values = next(cte.this.copy() for cte in scoring.ctes if cte.alias == TERM_VALUES)
+    branches = []
+    for item in levelled:
+        value = column(item.column)
+        seen = [level for category in item.categories for level in category.levels]
+        branches.append(exp.select(alias(exp.Literal.string(item.name), "term"), alias(value, "level"),
+                                   alias(exp.Count(this=exp.Star()), ROWS))
+                        .from_(exp.to_table(TERM_VALUES))
+                        .where(exp.and_(value.copy().is_(exp.null()).not_(), exp.Not(this=_one_of(value, seen))))
+                        .group_by(value.copy()))
+    query = branches[0]
+    for branch in branches[1:]:
+        query = exp.union(query, branch, distinct=False)
+    ordered = exp.select("*").from_(query.subquery("unseen")).order_by(
+        exp.Ordered(this=column("term")), exp.Ordered(this=column(ROWS), desc=True), exp.Ordered(this=column("level")))
+    return ordered.with_(TERM_VALUES, as_=values, copy=False)
 
 
 def _count_if(condition: exp.Expression) -> exp.Sum:
@@ -172,7 +262,7 @@ def _floored_share(count_name: str) -> exp.Expression:
 
 def _psi(item: Monitored) -> exp.Expression:
     total: exp.Expression | None = None
-    for index, expected in zip(_bin_indexes(item), expected_shares(item.profile), strict=True):
+    for index, expected in zip(_bin_indexes(item), item.expected(), strict=True):
         actual, reference = column(share_column(item.name, index)), number(floored(expected))
         part = exp.Mul(this=exp.Paren(this=exp.Sub(this=actual, expression=reference)),
                        expression=exp.Ln(this=exp.Div(this=actual.copy(), expression=reference.copy())))

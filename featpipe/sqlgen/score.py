@@ -72,7 +72,9 @@ from ..project.names import (
     table_reference,
 )
 from .common import alias, column, number
+from .design import learned_value
 from .harden import as_number, harden
+from .learned import LearnedConstants, design_columns
 from .metrics import linear_predictor, prediction
 
 FITTED_DIALECT = "duckdb"  # the fitted file stores canonical SQL in the duckdb dialect
@@ -91,6 +93,17 @@ class ScoringTerm:
     is_boolean: bool  # booleans count as 1.0 / 0.0
     estimate: float
     mean: float  # the training mean, at which contributions are centred
+    # A design column of a learned term: the term's name, its constants and the column's index; `sql`
+    # is then the term's argument and `name` the column's (fitting/learned.py).
+    term: str | None = None
+    learned: LearnedConstants | None = None
+    index: int = 0
+    kind: str = "numeric"
+
+    @property
+    def group(self) -> str:
+        """The term the column belongs to: its contribution and reason code are the term's."""
+        return self.term or self.name
 
 
 @dataclass(frozen=True)
@@ -110,6 +123,11 @@ class ScoringModel:
     def coefficients(self) -> dict[str, float]:
         return {INTERCEPT: self.intercept, **{term.name: term.estimate for term in self.terms}}
 
+    @property
+    def groups(self) -> list[str]:
+        """The model's terms in order: a learned term's columns count as one term."""
+        return list(dict.fromkeys(term.group for term in self.terms))
+
 
 def missing_status(name: str) -> str:
     return f"missing: {name}"
@@ -128,9 +146,9 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
     They are chosen in K rounds of GREATEST and comparisons (`reason_steps`), about 3 n operations a
     round for n terms rather than n^2 for a full ranking, and the SQL needs no array or window functions.
     """
-    if not 0 <= reasons <= len(model.terms):
-        raise FeatpipeError(f"--reasons must be between 0 and {len(model.terms)}, the number of terms in {model.source}")
-    names = [term.name for term in model.terms]
+    names = model.groups
+    if not 0 <= reasons <= len(names):
+        raise FeatpipeError(f"--reasons must be between 0 and {len(names)}, the number of terms in {model.source}")
     steps = [
         (TERM_VALUES, _term_values(model, table)),
         (CHECKED, _checked_terms(model, names)),
@@ -154,6 +172,8 @@ def _term_values(model: ScoringModel, table: str | None) -> exp.Select:
     """The key, each term's value as DOUBLE and the offset, from `table` (given as --table) or the input table."""
     source = table_reference(table, "--table") if table else table_reference(model.table, f"{model.source}: input")
     values = [column(model.key), *(alias(term_value(model, term), term.name) for term in model.terms)]
+    values += [alias(_learned_argument(model, term), learned_value_column(term.group))
+               for term in model.terms if term.learned is not None and term.index == 0]
     if model.offset is not None:
         values.append(alias(_parsed(model, "offset", model.offset, is_boolean=False), OFFSET_COLUMN))
     return exp.select(*values).from_(source)
@@ -162,8 +182,11 @@ def _term_values(model: ScoringModel, table: str | None) -> exp.Select:
 def _checked_terms(model: ScoringModel, names: list[str]) -> exp.Select:
     """Everything of term_values, plus the row's status."""
     has_offset = model.offset is not None
-    carried = [column(model.key), *map(column, names), *([column(OFFSET_COLUMN)] if has_offset else [])]
-    status = alias(status_expression(names, has_offset), STATUS)
+    columns = [term.name for term in model.terms]
+    columns += [learned_value_column(term.group) for term in model.terms if term.learned is not None and term.index == 0]
+    carried = [column(model.key), *map(column, columns), *([column(OFFSET_COLUMN)] if has_offset else [])]
+    learned = any(term.learned is not None for term in model.terms)
+    status = alias(_status(model, names) if learned else status_expression(names, has_offset), STATUS)
     return exp.select(*carried, status).from_(exp.to_table(TERM_VALUES))
 
 
@@ -180,10 +203,15 @@ def _contributions(model: ScoringModel) -> exp.Select:
     projections = [column(model.key), column(STATUS),
                    alias(linear_predictor(shape, model.coefficients), LINEAR_PREDICTOR)]
     projections += [alias(column(OFFSET_COLUMN), OFFSET)] if has_offset else []
-    for term in model.terms:
-        centred = exp.Paren(this=exp.Sub(this=column(term.name), expression=number(term.mean)))
-        contribution = exp.Case().when(complete.copy(), exp.Mul(this=number(term.estimate), expression=centred))
-        projections.append(alias(contribution, contribution_column(term.name)))
+    for group in model.groups:
+        parts = [exp.Mul(this=number(term.estimate),
+                         expression=exp.Paren(this=exp.Sub(this=column(term.name), expression=number(term.mean))))
+                 for term in model.terms if term.group == group]
+        total = parts[0]
+        for part in parts[1:]:
+            total = exp.Add(this=total, expression=part)
+        contribution = exp.Case().when(complete.copy(), total)
+        projections.append(alias(contribution, contribution_column(group)))
     return exp.select(*projections).from_(exp.to_table(CHECKED))
 
 
@@ -228,8 +256,36 @@ def reason_steps(names: list[str], contributions: exp.Select, reasons: int) -> l
 
 
 def term_value(model: ScoringModel, term: ScoringTerm) -> exp.Expression:
-    """A term's value as DOUBLE from its fitted canonical SQL, hardened like the design table's."""
+    """A term's value as DOUBLE from its fitted canonical SQL, hardened like the design table's; a learned
+    term's column from its argument and constants, as the fit computed it."""
+    if term.learned is not None:
+        return design_columns(term.learned, _learned_argument(model, term))[term.index]
     return _parsed(model, f"term '{term.name}'", term.sql, is_boolean=term.is_boolean)
+
+
+def learned_value_column(term: str) -> str:
+    """The scoring query's column of a learned term's argument (no term name holds '__')."""
+    return f"_{term}__value"
+
+
+def _learned_argument(model: ScoringModel, term: ScoringTerm) -> exp.Expression:
+    return learned_value(term.kind, _hardened(model, f"term '{term.group}'", term.sql))
+
+
+def _status(model: ScoringModel, names: list[str]) -> exp.Expression:
+    """As `status_expression`, where a learned term is 'missing' when its argument is NULL and 'unseen'
+    when it holds a level the training never saw (its columns are NULL then)."""
+    case = exp.Case()
+    for name in names:
+        columns = [term for term in model.terms if term.group == name]
+        if columns[0].learned is None:
+            case = case.when(column(name).is_(exp.null()), exp.Literal.string(missing_status(name)))
+            continue
+        case = case.when(column(learned_value_column(name)).is_(exp.null()), exp.Literal.string(missing_status(name)))
+        case = case.when(column(columns[0].name).is_(exp.null()), exp.Literal.string(f"unseen: {name}"))
+    if model.offset is not None:
+        case = case.when(column(OFFSET_COLUMN).is_(exp.null()), exp.Literal.string(missing_status(OFFSET)))
+    return case.else_(exp.Literal.string(OK))
 
 
 def status_expression(names: list[str], has_offset: bool) -> exp.Expression:
@@ -263,7 +319,12 @@ def score_statement(
 
 
 def _parsed(model: ScoringModel, what: str, sql: str | None, *, is_boolean: bool) -> exp.Expression:
-    """Parse fitted SQL and re-check it against the allow-list: the file may have been edited by hand."""
+    """Parse fitted SQL and re-check it against the allow-list (the file may have been edited by hand), as DOUBLE."""
+    return as_number(_hardened(model, what, sql), is_boolean)
+
+
+def _hardened(model: ScoringModel, what: str, sql: str | None) -> exp.Expression:
+    """Parse fitted SQL, re-check it against the allow-list and harden it."""
     if not sql:
         raise FeatpipeError(f"{model.source}: {what} has no SQL; run `featpipe fit` again")
     try:
@@ -274,7 +335,7 @@ def _parsed(model: ScoringModel, what: str, sql: str | None, *, is_boolean: bool
     problems = check_allowed(tree, model.source)
     if problems:
         raise FeatpipeError(f"{model.source}: {what}: {problems[0].message}; run `featpipe fit` again")
-    return as_number(harden(tree, schema=model.columns), is_boolean)
+    return harden(tree, schema=model.columns)
 
 
 def _prediction(model: ScoringModel, eta: exp.Expression) -> exp.Expression:

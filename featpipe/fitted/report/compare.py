@@ -88,13 +88,18 @@ def likelihood_ratio(fitted: FittedModel, other: FittedModel, shared_rows: tuple
     from scipy.stats import chi2
 
     statistic = 2.0 * (larger.fit["log_likelihood"] - smaller.fit["log_likelihood"])
-    df = len(larger.terms) - len(smaller.terms)
+    df = _coefficient_count(larger) - _coefficient_count(smaller)
     extra = tuple(term.name for term in larger.model_terms if (term.name, term.fingerprint) not in _terms(smaller))
     return LikelihoodRatio(larger.model, smaller.model, statistic, df, float(chi2.sf(statistic, df)), extra)
 
 
 def _terms(fitted: FittedModel) -> frozenset[tuple[str, str | None]]:
     return frozenset((term.name, term.fingerprint) for term in fitted.model_terms)
+
+
+def _coefficient_count(fitted: FittedModel) -> int:
+    """Coefficients, not terms: a learned term of several columns has one per column."""
+    return sum(len(term.learned["columns"]) if term.learned else 1 for term in fitted.terms)
 
 
 def _penalized(fitted: FittedModel) -> bool:

@@ -125,6 +125,7 @@ class ReportData:
     inputs: tuple[str, ...] = field(default=())  # raw inputs the terms read, in model order
     shared_holdout: tuple[int, int, int] | None = None  # held-out rows of the model, of the other, of both
     auc_sums: RankSums | None = None  # DeLong's sums of both models' predictions on the common held-out rows
+    learned: dict = field(default_factory=dict)  # by term: the figure of each learned term (report/learned.py)
 
 
 def term_inputs(fitted: FittedModel) -> list[str]:
@@ -183,8 +184,12 @@ def gather(
         shared = shared_holdout = auc_sums = None
         if other is not None:
             shared, shared_holdout, auc_sums = _shared(engine, rows_table, source, fitted, other)
+        from .learned import learned_figures
+
+        learned = learned_figures(engine, fitted)
     return ReportData(fitted, other, figures, held, ranges, tuple(curves), surface, note, shared, tuple(inputs),
-                      shared_holdout, auc_sums)
+                      shared_holdout, auc_sums, learned)
+
 
 
 def _shared(engine: Engine, rows_table: str, source: InputSpec, fitted: FittedModel, other: FittedModel):

@@ -122,7 +122,7 @@ def render_report(data: ReportData, sources: Sources, comparison: Comparison | N
         "coefficients_reading": readings.coefficients(fitted),
         "interval_svg": Markup(plots.interval_plot(fitted, "intervals")),
         "terms_reading": readings.terms(fitted),
-        "terms": [_term(term, formatter) for term in fitted.model_terms],
+        "terms": [_term(term, formatter, data.learned.get(term.name)) for term in fitted.model_terms],
         "curves_reading": readings.curves(fitted, data.curves, data.held, other),
         "curves": [_curve(curve, models, data.held, index) for index, curve in enumerate(data.curves)],
         "surface_reading": readings.surface(fitted, data.surface, data.surface_note, other),
@@ -239,10 +239,14 @@ def _coefficients(fitted: FittedModel) -> list[dict]:
     return rows
 
 
-def _term(term, formatter: HtmlFormatter) -> dict:
+def _term(term, formatter: HtmlFormatter, learned=None) -> dict:
+    from .learned import learned_plot
+
     return {"name": term.name, "kind": term.kind, "doc": term.doc, "fingerprint": term.fingerprint,
             "sql": Markup(highlight(term.sql, SqlLexer(), formatter)), "notes": term.notes,
-            "columns": term.columns, "built_from": term.built_from}
+            "columns": term.columns, "built_from": term.built_from,
+            "learned": term.learned["function"] if term.learned else None,
+            "learned_svg": Markup(learned_plot(learned, f"learned-{term.name}")) if learned else None}
 
 
 def _curve(curve, models, held, index: int) -> dict:

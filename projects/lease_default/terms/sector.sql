@@ -1,9 +1,8 @@
--- Terms marking the firm's sector; retail, logistics and manufacturing together are the reference group.
+-- The firm's sector, learned from the training leases: one indicator per sector with at least 100
+-- training leases, against the most frequent sector (the reference). Construction (project-based
+-- revenue that can stop between contracts) and food service (thin margins, high turnover of
+-- businesses) are expected above it, health practices (steady, largely contracted revenue) below.
 SELECT
-  -- 1 for construction firms: project-based revenue that can stop between contracts.
-  CASE WHEN sector = 'construction' THEN 1 ELSE 0 END AS sector_construction,
-  -- 1 for food service firms: thin margins and high turnover of businesses.
-  CASE WHEN sector = 'food_service' THEN 1 ELSE 0 END AS sector_food_service,
-  -- 1 for health practices: steady, largely contracted revenue.
-  CASE WHEN sector = 'health' THEN 1 ELSE 0 END AS sector_health
+  -- The firm's sector; a sector never seen in training gets no prediction (status `unseen: sector_level`).
+  LEVELS(sector, 100) AS sector_level
 FROM leases
