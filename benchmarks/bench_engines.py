@@ -220,14 +220,17 @@ def child_measure(root: Path) -> dict:
 
 
 def scan_query(project):
-    """One aggregate scan of the model's design table: the count and the sum of every term."""
+    """One aggregate scan of the model's design table: the count, and the sum of every term (the count of
+    a learned term's column, which holds its argument, text for LEVELS)."""
     from sqlglot import exp
 
     from featpipe import api
     from featpipe.sqlgen.common import column, double
 
-    layout = api.check(project).models[MODEL].layout
-    sums = [exp.Sum(this=double(column(name))) for name in layout.terms]
+    model = api.check(project).models[MODEL]
+    sums = [exp.Count(this=column(term.name)) if term.learned else exp.Sum(this=double(column(term.name)))
+            for term in model.terms]
+    layout = model.layout
     return exp.select(exp.Count(this=exp.Star()), *sums).from_(exp.to_table(layout.table))
 
 

@@ -92,7 +92,10 @@ def test_every_learned_term_fits_scores_and_drifts_alike_on_postgres_and_spark(d
         (their_term,) = [t for t in theirs["fitted"]["terms"] if t["name"] == name]
         for key in ("levels", "reference", "pooled", "values"):
             assert their_term["learned"].get(key) == my_term["learned"].get(key), (engine, name, key)
-    # Everything else in the fitted file to 1e-9.
+    # Everything else in the fitted file to 1e-9, but the passes over the rows: a streamed DuckDB fit
+    # reads them fewer times than SQL aggregates do.
+    for fitted in (mine["fitted"], theirs["fitted"]):
+        fitted["fit"].pop("passes", None)
     assert same_numbers(mine["fitted"], theirs["fitted"]) == [], engine
     # Scores of the batch (an unseen level goes to `other`): the same statuses, numbers to 1e-9.
     left, right = mine["scores"], theirs["scores"]

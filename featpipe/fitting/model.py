@@ -13,7 +13,7 @@ from sqlglot import exp
 
 from ..compiler import CompiledModel, CompiledProject, Term
 from ..engines.base import Engine
-from ..engines.builds import input_signature
+from ..engines.builds import input_signature, read_builds
 from ..errors import FeatpipeError
 from ..fitted import INTERCEPT, FittedModel, FittedTerm, as_written
 from ..fitted.conventions import conventions
@@ -93,7 +93,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             continue
         entry = learned_entry(term.name, constants[term.name], glm.coefficients, glm.covariance, glm.names, spec.family,
                               {name: profiles[name].mean for name in fit_layout.terms},
-                              input_signature(compiled.project.inputs[spec.input]))
+                              input_signature(compiled.project.inputs[spec.input], read_builds(engine)))  # remembered: no re-hash
         fitted_terms.append(_learned_term(term, entry, by_column, profiles, training_sd, spec, model))
     return FittedModel(
         model=spec.name,
