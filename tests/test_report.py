@@ -473,16 +473,27 @@ def test_a_gaussian_model_gets_its_report_with_residuals_by_decile(demos):
 # --- the trade's metrics and honest comparisons ------------------------------------------------
 
 
-def held_out_frame(project, fitted) -> pd.DataFrame:
-    """The held-out complete rows of the model's design table with the prediction computed by numpy."""
+def fitted_design(project, fitted) -> tuple[pd.DataFrame, dict[str, float]]:
+    """The table the model was fitted on and its coefficient per design column: a learned term
+    (sector_level) is fitted on its columns, in the table the fit expands them into."""
+    learned = any(term.learned for term in fitted.model_terms)
     connection = duckdb.connect(str(project.engine.path), read_only=True)
     try:
-        design = connection.execute(f'SELECT * FROM "design_{fitted.model}"').df()
+        design = connection.execute(f'SELECT * FROM "design_{fitted.model}{"__columns" if learned else ""}"').df()
     finally:
         connection.close()
-    names = [term.name for term in fitted.terms[1:]]
+    b = {"(intercept)": fitted.terms[0].estimate}
+    for term in fitted.model_terms:
+        b.update({f"_{term.name}__{i}": item["estimate"] for i, item in enumerate(term.learned["columns"], start=1)}
+                 if term.learned else {term.name: term.estimate})
+    return design, b
+
+
+def held_out_frame(project, fitted) -> pd.DataFrame:
+    """The held-out complete rows of the model's design table with the prediction computed by numpy."""
+    design, b = fitted_design(project, fitted)
+    names = list(b)[1:]
     rows = design[design["_holdout"].astype(bool) & design[[fitted.target, *names]].notna().all(axis=1)]
-    b = fitted.coefficients
     eta = b["(intercept)"] + sum(b[name] * rows[name].to_numpy() for name in names)
     return pd.DataFrame({fitted.key: rows[fitted.key].to_numpy(), "y": rows[fitted.target].to_numpy(),
                          "p": 1 / (1 + np.exp(-eta))})
@@ -562,7 +573,7 @@ def test_the_comparison_says_accuracy_uses_each_models_own_threshold(demos):
     assert differ.thresholds in reading
 
 
-SMALLER_GAUSSIAN_MODEL = GAUSSIAN_MODEL.replace("terms: [firm_age_years, log_revenue, term_months, sector_health]",
+SMALLER_GAUSSIAN_MODEL = GAUSSIAN_MODEL.replace("terms: [firm_age_years, log_revenue, term_months, sector_level]",
                                                 "terms: [log_revenue, term_months]")
 
 
@@ -576,16 +587,12 @@ def test_nested_gaussian_models_get_the_f_test_beside_the_likelihood_ratio(demos
         api.fit(project, list(specs))
         markup = page(write_report(project, "payment_size", against="payment_size_small"))
         big, small = (read_fitted(project.fitted_path(name)) for name in specs)
-        connection = duckdb.connect(str(project.engine.path), read_only=True)
-        try:
-            design = connection.execute('SELECT * FROM "design_payment_size"').df()
-        finally:
-            connection.close()
+        design, b = fitted_design(project, big)
     finally:
         for name in specs:
             (lease.root / "specs" / f"{name}.yaml").unlink()
     shown = {name: float(value) for name, value in re.findall(r'data-f="(\w+)" data-value="([^"]+)"', markup)}
-    names = [term.name for term in big.terms[1:]]
+    names = list(b)[1:]
     rows = design[~design["_holdout"].astype(bool) & design[["monthly_payment", *names]].notna().all(axis=1)]
     assert len(rows) == big.rows["train"] == small.rows["train"]
     # statsmodels' OLS F test of the restricted model on the same rows.
@@ -594,7 +601,8 @@ def test_nested_gaussian_models_get_the_f_test_beside_the_likelihood_ratio(demos
     statistic, p_value, df = larger.compare_f_test(smaller)
     assert shown["statistic"] == pytest.approx(statistic, rel=1e-7)
     assert shown["p_value"] == pytest.approx(p_value, rel=1e-6, abs=1e-300)
-    assert re.search(r'<span data-f="df">(\d+)</span>', markup).group(1) == str(int(df)) == "2"
+    # firm_age_years and the sector's level columns (construction the reference)
+    assert re.search(r'<span data-f="df">(\d+)</span>', markup).group(1) == str(int(df)) == str(1 + len(big.term("sector_level").learned["columns"]))
     assert re.search(r'<span data-f="residual_df">(\d+)</span>', markup).group(1) == str(int(larger.df_resid))
     assert 'id="likelihood-ratio"' in markup and 'id="delong-test"' not in markup  # DeLong is for binomial pairs
 

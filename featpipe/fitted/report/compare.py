@@ -88,7 +88,7 @@ def likelihood_ratio(fitted: FittedModel, other: FittedModel, shared_rows: tuple
     from scipy.stats import chi2
 
     statistic = 2.0 * (larger.fit["log_likelihood"] - smaller.fit["log_likelihood"])
-    df = _coefficient_count(larger) - _coefficient_count(smaller)
+    df = coefficient_count(larger) - coefficient_count(smaller)
     extra = tuple(term.name for term in larger.model_terms if (term.name, term.fingerprint) not in _terms(smaller))
     return LikelihoodRatio(larger.model, smaller.model, statistic, df, float(chi2.sf(statistic, df)), extra)
 
@@ -97,7 +97,7 @@ def _terms(fitted: FittedModel) -> frozenset[tuple[str, str | None]]:
     return frozenset((term.name, term.fingerprint) for term in fitted.model_terms)
 
 
-def _coefficient_count(fitted: FittedModel) -> int:
+def coefficient_count(fitted: FittedModel) -> int:
     """Coefficients, not terms: a learned term of several columns has one per column."""
     return sum(len(term.learned["columns"]) if term.learned else 1 for term in fitted.terms)
 
@@ -180,7 +180,7 @@ def _f_test(fitted: FittedModel, other: FittedModel, test: LikelihoodRatio) -> F
     from scipy.stats import f
 
     larger, smaller = (fitted, other) if test.larger == fitted.model else (other, fitted)
-    residual_df = larger.rows["train"] - len(larger.terms)
+    residual_df = larger.rows["train"] - coefficient_count(larger)
     if residual_df <= 0 or not larger.fit["deviance"] > 0:
         return None
     statistic = ((smaller.fit["deviance"] - larger.fit["deviance"]) / test.df) / (larger.fit["deviance"] / residual_df)

@@ -20,7 +20,7 @@ from .. import FittedModel
 from ..evaluations import Evaluation, stability_row
 from ..notes import figure
 from . import plots, readings
-from .compare import Comparison
+from .compare import Comparison, coefficient_count
 from .data import INTEGER, LEVELS, ReportData, roc_points
 
 CURVES_ID = "effect-curves"
@@ -200,7 +200,7 @@ def _comparison(fitted: FittedModel, other: FittedModel, comparison: Comparison)
         metrics.append(("threshold", "threshold of accuracy, precision and recall", metric_text(fitted.threshold),
                         metric_text(other.threshold)))
     fit = [(key, label, metric_text(fitted.fit.get(key)), metric_text(other.fit.get(key))) for key, label in FIT_FIGURES]
-    fit.insert(0, ("coefficients", "coefficients", metric_text(len(fitted.terms)), metric_text(len(other.terms))))
+    fit.insert(0, ("coefficients", "coefficients", metric_text(coefficient_count(fitted)), metric_text(coefficient_count(other))))
     fit.insert(1, ("train", "training rows", metric_text(fitted.rows["train"]), metric_text(other.rows["train"])))
     test, f_test, auc_test = comparison.likelihood_ratio, comparison.f_test, comparison.auc_test
     return {"reading": readings.comparison(fitted, other, comparison), "metrics": metrics, "fit": fit, "test": test,
