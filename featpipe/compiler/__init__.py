@@ -23,6 +23,7 @@ from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
 from ..errors import Diagnostic, raise_if_errors
 from ..project import PROJECT_FILE, ModelSpec, Project
 from ..project.names import (
+    CLUSTER_COLUMN,
     NAME_PATTERN,
     OFFSET_COLUMN,
     WEIGHT_COLUMN,
@@ -104,6 +105,8 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         "weights": {"column": spec.weights, "kind": spec.weight_kind} if spec.weight_kind == "frequency" else spec.weights,
         "holdout": spec.holdout.record(),
         "penalty": spec.penalty.record(),
+        # only when set, so fits with the model's own standard errors keep their fingerprint
+        **({"errors": {"cluster": spec.cluster} if spec.cluster else spec.errors} if spec.errors != "model" else {}),
         **({"folds": spec.folds} if spec.folds else {}),  # only when set, so fits without folds keep their fingerprint
         "threshold": spec.threshold,
         "max_dropped": spec.max_dropped,
@@ -340,6 +343,7 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
         terms=tuple(term.name for term in chosen),
         offset=OFFSET_COLUMN if offset_tree is not None else None,
         weight=WEIGHT_COLUMN if spec.weights else None,
+        cluster=CLUSTER_COLUMN if spec.cluster else None,
     )
     return CompiledModel(spec, tuple(chosen), offset_tree, offset_sql, layout,
                          model_fingerprint(spec, layout.key, chosen, offset_sql))

@@ -26,7 +26,9 @@ better; X'WX, the deviance and the standard errors are those of the final coeffi
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import KW_ONLY, dataclass, field
+from functools import partial
 
 import numpy as np
 import pyarrow as pa
@@ -52,6 +54,7 @@ from .linalg import inverse_spd, variance_inflation
 from .penalty import ScaledPenalty
 from .problems import DataNames
 from .result import Coefficient, Convergence, GlmResult, GoodnessOfFit, TrainingRows
+from .sandwich import KINDS, Middle, engine_middle, sandwich
 from .sources import (
     Batch,
     BatchSource,
@@ -81,6 +84,8 @@ class Glm:
     different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     `power`: the tweedie variance power, in (1, 2); None for the other families.
+    `errors`: "model" (from the information matrix), "robust" (sandwich, HC1) or "cluster" (sandwich over
+    the design table's cluster column); see `sandwich`. Engine fits only; one more pass over the rows.
     """
 
     family: str
@@ -93,6 +98,7 @@ class Glm:
     batch_rows: int = BATCH_ROWS
     frequency_weights: bool = False
     power: float | None = None
+    errors: str = "model"
 
     def __post_init__(self) -> None:
         get_family(self.family, self.power)  # raises on an unknown family or a power it does not take
@@ -108,6 +114,10 @@ class Glm:
             raise ValueError("sample_rows must be at least 100: the sample also sets the working scaling")
         if self.batch_rows < 1:
             raise ValueError(f"batch_rows must be at least 1, not {self.batch_rows!r}")
+        if self.errors not in KINDS:
+            raise ValueError(f"unknown errors {self.errors!r}; use one of {', '.join(KINDS)}")
+        if self.errors != "model" and (self.penalty.l2 > 0 or self.penalty.l1 > 0):
+            raise ValueError("a penalized fit has no Wald inference, robust or not; drop errors or the penalty")
 
     def fit(self, engine: Engine, layout: DesignLayout) -> GlmResult:
         """Fit on the training rows of a design table in `engine`."""
@@ -129,13 +139,19 @@ class Glm:
         # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
         filled = len(sample.y) >= self.sample_rows
         warm = BatchSource("sample", in_memory_batches(sample, self.batch_rows), family, scaling) if filled else None
+        if self.errors == "cluster" and layout.cluster is None:
+            raise ValueError(f"errors 'cluster' needs a cluster column in design table {layout.table}")
+        middle = None if self.errors == "model" else partial(engine_middle, engine, layout, family, scaling, self.errors == "cluster")
         return self._solve(
-            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes)
+            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes,
+                     middle=middle)
         )
 
     def fit_arrays(self, X, y, offset=None, weights=None, names: tuple[str, ...] | None = None) -> GlmResult:
         """The same fit on in-memory arrays: X (rows x terms, no intercept column), y, optional offset and
         weights; `names` name the terms (x1, x2, ... by default)."""
+        if self.errors != "model":
+            raise ValueError("robust standard errors are computed in an engine: use Glm.fit on a design table")
         family = get_family(self.family, self.power)
         terms = np.asarray(X, dtype=float)
         terms = terms.reshape(len(terms), -1)
@@ -175,7 +191,7 @@ class Glm:
         except AliasedTerms as error:
             raise FeatpipeError(problems.aliased_message(error.aliases, problem.data, problem.scaling)) from None
         solution = _Solution(model=model, null=null, profile=profile, constant=constant, penalty=penalty, warnings=tuple(warnings),
-                             variance_weighted=problem.data.weight is not None and not self.frequency_weights)
+                             variance_weighted=problem.data.weight is not None and not self.frequency_weights, errors=self.errors)
         return _result(problem, solution, self.max_iter)
 
     def _warm_starts(self, problem: _Problem, starts: list[Request]) -> list[Request]:
@@ -205,6 +221,7 @@ class _Problem:
     warm: BatchSource | None  # the sample as a source, when fitting it first gives a warm start
     known: tuple[TrainingProfile, float] | None  # profile and poisson constant, unless the first pass gathers them
     passes: int  # full reads of the training rows before IRLS
+    middle: Callable[[tuple[int, ...], np.ndarray], Middle] | None = None  # the sandwich's middle term at working coefficients
 
 
 @dataclass(frozen=True)
@@ -218,6 +235,7 @@ class _Solution:
     penalty: ScaledPenalty
     warnings: tuple[str, ...]  # from the checks of the training rows
     variance_weighted: bool = False  # weights that weigh precision rather than count rows
+    errors: str = "model"  # the standard errors asked for (see `sandwich`)
 
 
 def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling) -> tuple[tuple[TrainingProfile, float], int]:
@@ -268,8 +286,14 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     df_residual = profile.rows - size
     dispersion = estimated_dispersion(family, statistics.deviance, statistics.pearson, df_residual)
     inverse = inverse_spd(statistics.xtwx)
-    covariance = inference = None
-    if not penalty.active:
+    covariance = inference = robust = None
+    sandwich_passes = 0
+    if not penalty.active and problem.middle is not None:
+        working, robust = sandwich(inverse, problem.middle(model.terms, model.beta), solution.errors, profile.weight_sum)
+        sandwich_passes = 1
+        covariance = transform @ working @ transform.T
+        inference = wald(coef, covariance, family, df_residual, normal=True)
+    elif not penalty.active:
         covariance = transform @ (dispersion * inverse) @ transform.T
         inference = wald(coef, covariance, family, df_residual)
     warnings = list(solution.warnings)
@@ -304,7 +328,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     return GlmResult(
         family=family.name,
         link=family.link,
-        statistic_name=family.statistic_name,
+        statistic_name="z" if robust is not None else family.statistic_name,
         penalized=penalty.active,
         coefficients=_coefficients((INTERCEPT, *data.terms), coef, inference, variance_inflation(statistics.xtwx, inverse)),
         covariance=None if covariance is None else tuple(tuple(float(v) for v in row) for row in covariance),
@@ -322,10 +346,11 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         convergence=Convergence(
             converged=model.converged,
             iterations=model.iterations,
-            passes_over_data=problem.passes + problem.statistics.passes,
+            passes_over_data=problem.passes + problem.statistics.passes + sandwich_passes,
             source=problem.statistics.name,
         ),
         warnings=tuple(warnings),
+        robust_errors=robust,
     )
 
 

@@ -31,12 +31,13 @@ class Wald:
         )
 
 
-def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: int) -> Wald:
-    """Standard errors, z (or t with `df_residual` degrees of freedom), two-sided p-values, 95% intervals."""
+def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: int, *, normal: bool = False) -> Wald:
+    """Standard errors, z (or t with `df_residual` degrees of freedom), two-sided p-values, 95% intervals;
+    `normal` takes z whatever the family (sandwich standard errors are a large-sample result)."""
     stderr = np.sqrt(np.clip(np.diag(covariance), 0.0, None))
     with np.errstate(divide="ignore", invalid="ignore"):
         statistic = coef / stderr
-    if family.estimates_dispersion:
+    if family.estimates_dispersion and not normal:
         p_value = 2.0 * stats.t.sf(np.abs(statistic), df_residual)
         quantile = stats.t.ppf(0.5 + LEVEL / 2, df_residual)
     else:

@@ -1,7 +1,7 @@
 """The terms and design-table queries of a model, as sqlglot trees.
 
-The design table holds the key, the target as DOUBLE, the offset and weight when the model has
-them, the holdout flag and one DOUBLE column per term, every term computed from input columns only
+The design table holds the key, the target as DOUBLE, the offset, weight and cluster column when the
+model has them, the holdout flag and one DOUBLE column per term, every term computed from input columns only
 (references inlined) with the portable-SQL hardening applied.
 """
 
@@ -80,6 +80,8 @@ def design_query(model: CompiledModel, source: InputSpec, table: str | None = No
         projections.append(alias(as_number(harden(model.offset, schema=source.columns), False), layout.offset))
     if spec.weights:
         projections.append(alias(double(column(spec.weights)), layout.weight))
+    if layout.cluster:
+        projections.append(alias(column(spec.cluster), layout.cluster))
     projections.append(alias(holdout_flag(source.key, spec.holdout), layout.holdout))
     projections += [alias(term_value(term, source), term.name) for term in model.terms]
     return exp.select(*projections).from_(_source_table(source, table))
