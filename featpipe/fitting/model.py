@@ -65,7 +65,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     spec, layout = model.spec, model.layout
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
     penalty, l2_choice = chosen_penalty(engine, layout, spec)
-    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power).fit(engine, layout)
+    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
+              errors=spec.errors).fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
@@ -112,7 +113,11 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "observations": float(glm.rows.n),
             "pearson_chi2": float(glm.goodness_of_fit.pearson_chi2),
             "pearson_dispersion": float(pearson_ratio(glm.goodness_of_fit.pearson_chi2, glm.rows.df_residual)),
-            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active, family=spec.family),
+            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active, family=spec.family,
+                                       errors=spec.errors),
+            # how the sandwich standard errors were made; left out for the model's own
+            **({"errors": {**glm.robust_errors.record(), **({"column": spec.cluster} if spec.cluster else {})}}
+               if glm.robust_errors is not None else {}),
             **({"power": spec.power} if spec.power is not None else {}),
         },
         terms=tuple(fitted_terms),

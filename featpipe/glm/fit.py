@@ -289,7 +289,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     covariance = inference = robust = None
     sandwich_passes = 0
     if not penalty.active and problem.middle is not None:
-        working, robust = sandwich(inverse, problem.middle(model.terms, model.beta), solution.errors, profile.weight_sum)
+        working, robust = sandwich(inverse, problem.middle(model.terms, model.beta), solution.errors, profile.rows)
         sandwich_passes = 1
         covariance = transform @ working @ transform.T
         inference = wald(coef, covariance, family, df_residual, normal=True)

@@ -444,6 +444,13 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         if value == 0:
             diagnostics.append(document.at(("step", term), "a step must not be zero"))
     notes = {term: str(value) for term, value in _term_map(document, "notes", data, terms, diagnostics).items()}
+    if errors != "model" and penalty.active:
+        diagnostics.append(document.at(("errors",), "a penalized fit has no Wald inference, robust or not: "
+                                                    "drop errors or the penalty"))
+    if errors == "robust" and weight_kind == "frequency":
+        diagnostics.append(document.at(("errors",), "errors: robust sums each row's own score, but a frequency-weighted row "
+                                                    "stands for several rows: use errors: {cluster: c} with a column "
+                                                    "that groups them, or variance weights"))
 
     if len(diagnostics) > before:
         return None
