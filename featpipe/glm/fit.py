@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import KW_ONLY, dataclass, field
+from dataclasses import KW_ONLY, dataclass, field, replace
 from functools import partial
 
 import numpy as np
@@ -45,6 +45,7 @@ from ..sqlgen.statistics import (
     read_profile,
     target_counts_query,
 )
+from ..sqlgen.trials import trial_counts_query
 from . import problems
 from .dispersion import estimated_dispersion, overdispersion_warning, pearson_ratio
 from .families import Family, get_family
@@ -55,6 +56,7 @@ from .penalty import ScaledPenalty
 from .problems import DataNames
 from .result import Coefficient, Convergence, GlmResult, GoodnessOfFit, TrainingRows
 from .sandwich import KINDS, Middle, engine_middle, sandwich
+from .trials import grouped_constant
 from .sources import (
     Batch,
     BatchSource,
@@ -84,6 +86,8 @@ class Glm:
     different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     `power`: the tweedie variance power, in (1, 2); None for the other families.
+    `trials`: binomial successes out of trials: the target is the proportion and the weights are the trials
+    (see `trials`); the log-likelihood then includes the binomial constant.
     `errors`: "model" (from the information matrix), "robust" (sandwich, HC1) or "cluster" (sandwich over
     the design table's cluster column); see `sandwich`. Engine fits only; one more pass over the rows.
     """
@@ -99,6 +103,7 @@ class Glm:
     frequency_weights: bool = False
     power: float | None = None
     errors: str = "model"
+    trials: bool = False
 
     def __post_init__(self) -> None:
         get_family(self.family, self.power)  # raises on an unknown family or a power it does not take
@@ -114,6 +119,8 @@ class Glm:
             raise ValueError("sample_rows must be at least 100: the sample also sets the working scaling")
         if self.batch_rows < 1:
             raise ValueError(f"batch_rows must be at least 1, not {self.batch_rows!r}")
+        if self.trials and (self.family != "binomial" or self.frequency_weights):
+            raise ValueError("trials go with family binomial, the weights holding the trials")
         if self.errors not in KINDS:
             raise ValueError(f"unknown errors {self.errors!r}; use one of {', '.join(KINDS)}")
         if self.errors != "model" and (self.penalty.l2 > 0 or self.penalty.l1 > 0):
@@ -142,9 +149,13 @@ class Glm:
         if self.errors == "cluster" and layout.cluster is None:
             raise ValueError(f"errors 'cluster' needs a cluster column in design table {layout.table}")
         middle = None if self.errors == "model" else partial(engine_middle, engine, layout, family, scaling, self.errors == "cluster")
+        pairs = None
+        if self.trials:
+            pairs = np.array([[float(v) for v in row] for row in engine.fetch(trial_counts_query(layout))]).reshape(-1, 3)
+            passes += 1
         return self._solve(
             _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes,
-                     middle=middle)
+                     middle=middle, trial_pairs=pairs)
         )
 
     def fit_arrays(self, X, y, offset=None, weights=None, names: tuple[str, ...] | None = None) -> GlmResult:
@@ -165,8 +176,13 @@ class Glm:
         scaling = Scaling.of(rows.terms)
         statistics = BatchSource("arrays", in_memory_batches(rows, self.batch_rows), family, scaling)
         data = DataNames(names, "the arrays", "y", None if weights is None else "weights")
+        pairs = None
+        if self.trials:
+            pairs, counts = np.unique(np.column_stack([rows.y, rows.weight]), axis=0, return_counts=True)
+            pairs = np.column_stack([pairs, counts.astype(float)])
         return self._solve(
-            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, known=None, passes=0)
+            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, known=None, passes=0,
+                     trial_pairs=pairs)
         )
 
     def _solve(self, problem: _Problem) -> GlmResult:
@@ -181,7 +197,11 @@ class Glm:
             profile, constant = problem.known
         if self.frequency_weights:
             profile = as_repeated_rows(profile, problem.data.where)
-        warnings = problems.check_training_rows(profile, problem.family, problem.data)
+        checked = profile
+        if problem.trial_pairs is not None:  # proportions of trials: the counts are checked, then each trial counts as a row
+            constant = grouped_constant(problem.trial_pairs, problem.data.where, problem.data.target)
+            checked = replace(profile, not_binary=0, rows=profile.weight_sum, target_sum=profile.weighted_target_sum)
+        warnings = problems.check_training_rows(checked, problem.family, problem.data)
         penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
         try:
             model, null = run_irls(
@@ -222,6 +242,7 @@ class _Problem:
     known: tuple[TrainingProfile, float] | None  # profile and poisson constant, unless the first pass gathers them
     passes: int  # full reads of the training rows before IRLS
     middle: Callable[[tuple[int, ...], np.ndarray], Middle] | None = None  # the sandwich's middle term at working coefficients
+    trial_pairs: np.ndarray | None = None  # grouped binomial: (proportion, trials, rows) per distinct pair
 
 
 @dataclass(frozen=True)
@@ -231,7 +252,7 @@ class _Solution:
     model: IrlsResult
     null: IrlsResult
     profile: TrainingProfile
-    constant: float  # the poisson or gamma log-likelihood constant (0 for the other families)
+    constant: float  # the poisson, gamma or grouped binomial log-likelihood constant (0 for the other families)
     penalty: ScaledPenalty
     warnings: tuple[str, ...]  # from the checks of the training rows
     variance_weighted: bool = False  # weights that weigh precision rather than count rows

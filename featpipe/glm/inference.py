@@ -62,9 +62,8 @@ def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: f
     if family.name == "gaussian":
         scale = deviance / rows
         return -0.5 * (rows * math.log(2.0 * math.pi * scale) + rows - log_weight_sum)
-    if family.name == "poisson":
-        return -0.5 * deviance + constant
-    return -0.5 * deviance
+    # poisson: its data term; binomial: 0 for a 0/1 target, the binomial constant for successes out of trials
+    return -0.5 * deviance + constant
 
 
 def information_criteria(llf: float | None, parameters: float, rows: float) -> tuple[float | None, float | None]:
