@@ -104,6 +104,7 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         # A bare column is a variance weight, as written before frequency weights existed.
         "weights": {"column": spec.weights, "kind": spec.weight_kind} if spec.weight_kind == "frequency" else spec.weights,
         "holdout": spec.holdout.record(),
+        **({"trials": spec.trials} if spec.trials else {}),  # only when set, as errors below
         "penalty": spec.penalty.record(),
         # only when set, so fits with the model's own standard errors keep their fingerprint
         **({"errors": {"cluster": spec.cluster} if spec.cluster else spec.errors} if spec.errors != "model" else {}),
@@ -333,6 +334,10 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
         declared = exp.DataType.build(columns[spec.weights], dialect=TERM_DIALECT)
         if not declared.is_type(*exp.DataType.REAL_TYPES, *exp.DataType.INTEGER_TYPES):
             diagnostics.append(spec.at(("weights",), f"weights column '{spec.weights}' must be numeric, not {columns[spec.weights]}"))
+    if spec.trials is not None:
+        declared = exp.DataType.build(columns[spec.trials], dialect=TERM_DIALECT)
+        if not declared.is_type(*exp.DataType.REAL_TYPES, *exp.DataType.INTEGER_TYPES):
+            diagnostics.append(spec.at(("trials",), f"trials column '{spec.trials}' must hold whole numbers, not {columns[spec.trials]}"))
     if len([d for d in diagnostics if d.severity == "error"]) > before:
         return None
 
@@ -342,7 +347,7 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
         target=spec.target,
         terms=tuple(term.name for term in chosen),
         offset=OFFSET_COLUMN if offset_tree is not None else None,
-        weight=WEIGHT_COLUMN if spec.weights else None,
+        weight=WEIGHT_COLUMN if spec.weights or spec.trials else None,
         cluster=CLUSTER_COLUMN if spec.cluster else None,
     )
     return CompiledModel(spec, tuple(chosen), offset_tree, offset_sql, layout,

@@ -230,6 +230,7 @@ DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "power": TWEEDIE_POWER, "offset": optional(TEXT), "weights": WEIGHTS,
     "holdout": HOLDOUT, "penalty": PENALTY, "folds": COUNT, "threshold": NUMBER, "max_dropped": NUMBER,
     "errors": either(one_of("robust"), record({"cluster": NAME})),
+    "trials": NAME,
     "expect": mapping(NAME, one_of(*EXPECTATIONS)), "step": mapping(NAME, NUMBER), "notes": mapping(NAME, TEXT),
 })
 FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads

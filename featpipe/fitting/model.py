@@ -20,8 +20,9 @@ from ..project import InputSpec
 from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
-from ..sqlgen.metrics import linear_predictor
-from .metrics import holdout_metrics, training_profiles
+from ..sqlgen.metrics import linear_predictor, scored_holdout
+from ..sqlgen.trials import as_trials
+from .metrics import holdout_metrics, scored_rows_metrics, training_profiles
 
 if TYPE_CHECKING:
     from ..glm import Coefficient
@@ -66,15 +67,19 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     rows = account_rows(engine, model, compiled.project.inputs[spec.input])
     penalty, l2_choice = chosen_penalty(engine, layout, spec)
     glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
-              errors=spec.errors).fit(engine, layout)
+              errors=spec.errors, trials=spec.trials is not None).fit(engine, layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
         engine, layout,
         {**{name: column(name) for name in layout.terms}, LINEAR_PREDICTOR: linear_predictor(layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
-                              power=spec.power)
+    if spec.trials:  # each trial read as a 0/1 row: the successes as events, the failures as non-events
+        metrics = scored_rows_metrics(engine, as_trials(scored_holdout(layout, coefficients, counted=True)), spec.family,
+                                      spec.threshold, counted=True)
+    else:
+        metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
+                                  power=spec.power)
     intercept, *slopes = glm.coefficients
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     fitted_terms += [

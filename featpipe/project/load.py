@@ -123,6 +123,7 @@ class ModelSpec:
     power: float | None = None  # the tweedie variance power, in (1, 2)
     errors: str = "model"  # "model", "robust" (sandwich, HC1) or "cluster" (sandwich over clusters of `cluster`)
     cluster: str | None = None  # the column whose values group rows into clusters, with errors: cluster
+    trials: str | None = None  # binomial successes (the target) out of this many trials per row
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
 
     def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
@@ -338,7 +339,7 @@ def is_sql_type(kind: str) -> bool:
 
 MODEL_KEYS = {
     "input", "target", "family", "offset", "weights", "terms", "penalty",
-    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power", "errors",
+    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power", "errors", "trials",
 }
 MAX_FOLDS = 20
 
@@ -380,6 +381,19 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     if weights is not None and columns and weights not in columns:
         diagnostics.append(document.at(("weights",), f"weights column '{weights}' is not a column of input '{input_name}'"))
     errors, cluster = _errors(document, data.get("errors", "model"), columns, input_name, diagnostics)
+    trials = data.get("trials")
+    if trials is not None:
+        if not isinstance(trials, str) or (columns and trials not in columns):
+            diagnostics.append(document.at(("trials",), f"trials must name the column of input '{input_name}' holding each "
+                                                        f"row's number of trials, not {trials!r}"))
+        elif family != "binomial":
+            diagnostics.append(document.at(("trials",), f"trials count binomial successes out of trials; family is {family}: "
+                                                        "use family: binomial (or drop trials)"))
+        elif weights is not None:
+            diagnostics.append(document.at(("trials",), "trials are the binomial weights already; drop weights"))
+        elif data.get("folds") or data.get("penalty"):
+            diagnostics.append(document.at(("trials",), "trials do not go with folds or a penalty yet: fit the grouped "
+                                                        "model without them"))
     offset = data.get("offset")
     if offset is not None and not isinstance(offset, str):
         diagnostics.append(document.at(("offset",), "offset must be a SQL expression, e.g. LN(exposure_years)"))
@@ -458,7 +472,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
         offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
         expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, power=power, document=document,
-        errors=errors, cluster=cluster,
+        errors=errors, cluster=cluster, trials=trials,
     )
 
 

@@ -72,14 +72,17 @@ def terms_query(terms: list[Term], source: InputSpec, table: str | None = None) 
 def design_query(model: CompiledModel, source: InputSpec, table: str | None = None) -> exp.Select:
     """The query that builds `design_<model>` from the input table."""
     spec, layout = model.spec, model.layout
+    target = target_value(spec.target, source.columns[spec.target])
+    if spec.trials:  # the share of successes, with the trials as the weight
+        target = exp.Div(this=target, expression=exp.Nullif(this=double(column(spec.trials)), expression=number(0.0)))
     projections = [
         alias(column(source.key), source.key),
-        alias(target_value(spec.target, source.columns[spec.target]), layout.target),
+        alias(target, layout.target),
     ]
     if model.offset is not None:
         projections.append(alias(as_number(harden(model.offset, schema=source.columns), False), layout.offset))
-    if spec.weights:
-        projections.append(alias(double(column(spec.weights)), layout.weight))
+    if spec.weights or spec.trials:
+        projections.append(alias(double(column(spec.weights or spec.trials)), layout.weight))
     if layout.cluster:
         projections.append(alias(column(spec.cluster), layout.cluster))
     projections.append(alias(holdout_flag(source.key, spec.holdout), layout.holdout))
