@@ -340,7 +340,7 @@ def _family_parts(family: str, y: exp.Expression, eta: exp.Expression, mu: exp.E
         inside = exp.and_(exp.GT(this=y.copy(), expression=zero.copy()), exp.LT(this=y.copy(), expression=one.copy()))
         failures = exp.Paren(this=_sub(one.copy(), y.copy()))
         saturated = _add(_mul(y.copy(), exp.Ln(this=y.copy())), _mul(failures, exp.Ln(this=failures.copy())))
-        deviance = _add(deviance, _case(inside, _mul(two.copy(), exp.Paren(this=saturated)), zero.copy()))
+        deviance = exp.Paren(this=_add(deviance, _case(inside, _mul(two.copy(), exp.Paren(this=saturated)), zero.copy())))
         flag = exp.or_(flag, exp.GT(this=eta.copy(), expression=number(boundary_eta)))
     return weight, _sub(y.copy(), mu.copy()), deviance, _case(flag, exp.Literal.number(1), exp.Literal.number(0))
 
