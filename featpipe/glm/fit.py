@@ -56,7 +56,6 @@ from .penalty import ScaledPenalty
 from .problems import DataNames
 from .result import Coefficient, Convergence, GlmResult, GoodnessOfFit, TrainingRows
 from .sandwich import KINDS, Middle, engine_middle, sandwich
-from .trials import grouped_constant
 from .sources import (
     Batch,
     BatchSource,
@@ -68,6 +67,7 @@ from .sources import (
     engine_batches,
     in_memory_batches,
 )
+from .trials import grouped_constant
 from .weights import as_repeated_rows
 
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
@@ -163,6 +163,8 @@ class Glm:
         weights; `names` name the terms (x1, x2, ... by default)."""
         if self.errors != "model":
             raise ValueError("robust standard errors are computed in an engine: use Glm.fit on a design table")
+        if self.trials and weights is None:
+            raise ValueError("trials need weights: each row's number of trials, y its share of successes")
         family = get_family(self.family, self.power)
         terms = np.asarray(X, dtype=float)
         terms = terms.reshape(len(terms), -1)
