@@ -24,6 +24,7 @@ from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
 from ..errors import Diagnostic, raise_if_errors
 from ..project import PROJECT_FILE, ModelSpec, Project
 from ..project.names import (
+    CLUSTER_COLUMN,
     NAME_PATTERN,
     OFFSET_COLUMN,
     WEIGHT_COLUMN,
@@ -108,7 +109,10 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         # A bare column is a variance weight, as written before frequency weights existed.
         "weights": {"column": spec.weights, "kind": spec.weight_kind} if spec.weight_kind == "frequency" else spec.weights,
         "holdout": spec.holdout.record(),
+        **({"trials": spec.trials} if spec.trials else {}),  # only when set, as errors below
         "penalty": spec.penalty.record(),
+        # only when set, so fits with the model's own standard errors keep their fingerprint
+        **({"errors": {"cluster": spec.cluster} if spec.cluster else spec.errors} if spec.errors != "model" else {}),
         **({"folds": spec.folds} if spec.folds else {}),  # only when set, so fits without folds keep their fingerprint
         "threshold": spec.threshold,
         "max_dropped": spec.max_dropped,
@@ -376,6 +380,10 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
         declared = exp.DataType.build(columns[spec.weights], dialect=TERM_DIALECT)
         if not declared.is_type(*exp.DataType.REAL_TYPES, *exp.DataType.INTEGER_TYPES):
             diagnostics.append(spec.at(("weights",), f"weights column '{spec.weights}' must be numeric, not {columns[spec.weights]}"))
+    if spec.trials is not None:
+        declared = exp.DataType.build(columns[spec.trials], dialect=TERM_DIALECT)
+        if not declared.is_type(*exp.DataType.REAL_TYPES, *exp.DataType.INTEGER_TYPES):
+            diagnostics.append(spec.at(("trials",), f"trials column '{spec.trials}' must hold whole numbers, not {columns[spec.trials]}"))
     if len([d for d in diagnostics if d.severity == "error"]) > before:
         return None
 
@@ -385,7 +393,8 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
         target=spec.target,
         terms=tuple(term.name for term in chosen),
         offset=OFFSET_COLUMN if offset_tree is not None else None,
-        weight=WEIGHT_COLUMN if spec.weights else None,
+        weight=WEIGHT_COLUMN if spec.weights or spec.trials else None,
+        cluster=CLUSTER_COLUMN if spec.cluster else None,
     )
     return CompiledModel(spec, tuple(chosen), offset_tree, offset_sql, layout,
                          model_fingerprint(spec, layout.key, chosen, offset_sql))

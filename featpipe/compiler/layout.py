@@ -9,7 +9,7 @@ from ..project.names import HOLDOUT_COLUMN
 
 @dataclass(frozen=True)
 class DesignLayout:
-    """Columns of `design_<model>`: key, target (DOUBLE), optional offset and weight, holdout flag, terms.
+    """Columns of `design_<model>`: key, target (DOUBLE), optional offset, weight and cluster, holdout flag, terms.
 
     Every term column is DOUBLE (booleans become 1.0/0.0, NULL stays NULL).
     """
@@ -20,6 +20,7 @@ class DesignLayout:
     terms: tuple[str, ...]
     offset: str | None = None
     weight: str | None = None
+    cluster: str | None = None  # the column grouping rows for cluster-robust standard errors, as read
     holdout: str = HOLDOUT_COLUMN
 
     @property

@@ -11,10 +11,22 @@ NO_LIKELIHOOD = {
 }
 
 
-def conventions(*, statistic: str, penalized: bool, family: str = "") -> dict[str, str]:
+ROBUST = ("sandwich standard errors: bread (X'WX)^-1, the expected information at the fitted coefficients, "
+          "around the sum of outer products of the rows' score contributions, times n / (n - p): HC1, chosen over "
+          "HC0 because it is the cluster form with every row its own cluster and less optimistic in small samples")
+CLUSTERED = ("cluster-robust sandwich standard errors: bread (X'WX)^-1, the expected information, around the sum over "
+             "clusters of the outer products of each cluster's summed scores, times G / (G - 1) (n - 1) / (n - p)")
+
+
+def conventions(*, statistic: str, penalized: bool, family: str = "", errors: str = "model") -> dict[str, str]:
     """What AIC, BIC, the p-values, the VIF and the effect steps of one fit mean, by key."""
     counted = "the effective degrees of freedom (trace of the hat matrix)" if penalized else "the coefficients, intercept included"
-    if penalized:
+    if errors != "model" and not penalized:
+        p_values = ("two-sided Wald z tests against the normal distribution from the sandwich standard errors (a "
+                    "large-sample result); they assume the model's mean is right and the "
+                    + ("clusters independent, rows within a cluster possibly correlated" if errors == "cluster"
+                       else "rows independent, their variance possibly not the family's"))
+    elif penalized:
         p_values = "none: a penalized fit has no valid Wald inference, so no standard errors, intervals or p-values"
     elif statistic == "t":
         p_values = ("two-sided Wald t tests with n - p degrees of freedom, the dispersion estimated by Pearson chi2 / (n - p); "
@@ -34,8 +46,10 @@ def conventions(*, statistic: str, penalized: bool, family: str = "") -> dict[st
             likelihood["aic"] += "; nor is the gamma dispersion"
             likelihood["log_likelihood"] = ("the full gamma log-likelihood at the Pearson dispersion, as statsmodels gives it "
                                             "(R's logLik takes deviance / n); none with variance weights")
+    robust = {"errors": CLUSTERED if errors == "cluster" else ROBUST} if errors != "model" else {}
     return {
         **likelihood,
+        **robust,
         "p_values": p_values,
         "pearson_dispersion": ("Pearson chi2 / (n - p); above 1.5 (a common screen) poisson counts or binomial successes "
                                "out of several trials are overdispersed; a 0/1 target cannot show overdispersion"),

@@ -233,6 +233,9 @@ def staleness(fitted: FittedModel, model: CompiledModel | None, inputs: dict[str
     recorded = fitted.depends_on or {"terms": {term.name: term.fingerprint for term in fitted.terms if term.fingerprint}}
     reasons = [reason for key, now in model.dependencies.items() if key in recorded and not _same(recorded[key], now)
                for reason in _changes(key, recorded[key], now)]
+    # Dependencies recorded only when set: one set or unset is a change, not an older file.
+    reasons += [f"{key} changed from {_shown(recorded.get(key))} to {_shown(model.dependencies.get(key))}"
+                for key in WHEN_SET if (key in recorded) != (key in model.dependencies) and fitted.depends_on]
     return (reasons or [OLDER_FILE]) + data
 
 
@@ -240,6 +243,9 @@ def _same(was, now) -> bool:
     """Equal, mappings in the same order too: the order of the terms is part of the model."""
     return was == now and (not isinstance(now, dict) or list(was) == list(now))
 
+
+# Dependencies `compiler.fit_dependencies` writes only when the spec sets them.
+WHEN_SET = ("power", "folds", "errors")
 
 # Spec fields that map term names to a setting, and how a reason names the setting.
 PER_TERM = {"expect": "expected sign", "step": "step", "notes": "note"}
@@ -251,7 +257,7 @@ def _changes(key: str, was, now) -> list[str]:
         return _term_changes(was, now)
     if key in PER_TERM:
         return [f"{PER_TERM[key]} of term '{name}' changed" for name in sorted({*was, *now}) if was.get(name) != now.get(name)]
-    if isinstance(now, dict):
+    if isinstance(now, dict) and isinstance(was, dict):
         return [f"{key} {part} changed from {_shown(was.get(part))} to {_shown(value)}"
                 for part, value in now.items() if was.get(part) != value]
     return [f"{key} changed from {_shown(was)} to {_shown(now)}"]

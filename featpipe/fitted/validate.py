@@ -215,6 +215,7 @@ FIT = record({}, {
     "converged": FLAG, "iterations": COUNT, "deviance": NUMBER, "null_deviance": NUMBER, "log_likelihood": OPTIONAL_NUMBER,
     "aic": OPTIONAL_NUMBER, "bic": OPTIONAL_NUMBER, "dispersion": NUMBER, "power": TWEEDIE_POWER, "statistic": TEXT, "penalized": FLAG, "passes": COUNT,
     "effective_df": NUMBER, "observations": NUMBER, "conventions": mapping(NAME, TEXT), "pearson_chi2": NUMBER, "pearson_dispersion": NUMBER,
+    "errors": record({"kind": one_of("HC1", "cluster"), "clusters": COUNT, "correction": NUMBER}, {"column": NAME}),
 })
 CALIBRATION = record({}, {"decile": COUNT, "rows": COUNT, "mean_predicted": NUMBER, "mean_observed": NUMBER})
 GAINS = record({"decile": COUNT, "rows": COUNT, "events": COUNT, "event_rate": NUMBER,
@@ -239,6 +240,8 @@ CROSSVAL = record(
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "power": TWEEDIE_POWER, "offset": optional(TEXT), "weights": WEIGHTS,
     "holdout": HOLDOUT, "penalty": PENALTY, "folds": COUNT, "threshold": NUMBER, "max_dropped": NUMBER,
+    "errors": either(one_of("robust"), record({"cluster": NAME})),
+    "trials": NAME,
     "expect": mapping(NAME, one_of(*EXPECTATIONS)), "step": mapping(NAME, NUMBER), "notes": mapping(NAME, TEXT),
 })
 FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads
@@ -283,6 +286,8 @@ def _check_agreement(fitted) -> None:
         raise Refusal(f"link {fitted.link} is not the link of family {fitted.family} ({LINKS[fitted.family]})")
     if (fitted.family == "tweedie") != ("power" in fitted.fit) or fitted.fit.get("power") != fitted.depends_on.get("power"):
         raise Refusal("fit.power must be given for a tweedie fit only, equal to depends_on.power")
+    if _errors_asked(fitted.depends_on.get("errors")) != _errors_made(fitted.fit.get("errors")):
+        raise Refusal("fit.errors must record the standard errors depends_on.errors asks for")
     recorded = fitted.depends_on
     for name in (field.name for field in fields(fitted)):
         if name in recorded and name != "terms" and getattr(fitted, name) != recorded[name]:
@@ -323,6 +328,17 @@ def _check_learned(fitted, term) -> None:
         raise Refusal(f"term {term.name}'s kind does not match its SQL")
     if (term.estimate is None) != (len(term.learned["columns"]) > 1) or not term.learned["columns"]:
         raise Refusal(f"term {term.name} must have one estimate exactly when it has one column")
+
+
+def _errors_asked(errors) -> tuple[str, str | None] | None:
+    """depends_on.errors as (kind, cluster column); None for the model's own standard errors."""
+    if errors is None:
+        return None
+    return ("HC1", None) if errors == "robust" else ("cluster", errors["cluster"])
+
+
+def _errors_made(record: dict | None) -> tuple[str, str | None] | None:
+    return None if record is None else (record["kind"], record.get("column"))
 
 
 def _checked_sql(fitted, what: str, sql: str, fingerprint: str | None) -> exp.Expression:

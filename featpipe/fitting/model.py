@@ -22,9 +22,10 @@ from ..project import InputSpec
 from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
-from ..sqlgen.metrics import linear_predictor
+from ..sqlgen.metrics import linear_predictor, scored_holdout
+from ..sqlgen.trials import as_trials
 from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
-from .metrics import holdout_metrics, training_profiles
+from .metrics import holdout_metrics, scored_rows_metrics, training_profiles
 
 if TYPE_CHECKING:
     from ..glm import Coefficient
@@ -73,7 +74,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     if any(found.call.function == "LEVELS" for found in constants.values()):
         rows["unseen"] = unseen_holdout_rows(engine, model, constants)
     penalty, l2_choice = chosen_penalty(engine, fit_layout, spec)
-    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power).fit(engine, fit_layout)
+    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
+              errors=spec.errors, trials=spec.trials is not None).fit(engine, fit_layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
     profiles = training_profiles(
@@ -81,8 +83,12 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         {**{name: column(name) for name in (*fit_layout.terms, *profiled_arguments(constants))},
          LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)},
     )
-    metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
-                              power=spec.power)
+    if spec.trials:  # each trial read as a 0/1 row: the successes as events, the failures as non-events
+        metrics = scored_rows_metrics(engine, as_trials(scored_holdout(fit_layout, coefficients, counted=True)), spec.family,
+                                      spec.threshold, counted=True)
+    else:
+        metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
+                                  power=spec.power)
     intercept, *slopes = glm.coefficients
     by_column = dict(zip(fit_layout.terms, slopes, strict=True))
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
@@ -127,7 +133,11 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
             "observations": float(glm.rows.n),
             "pearson_chi2": float(glm.goodness_of_fit.pearson_chi2),
             "pearson_dispersion": float(pearson_ratio(glm.goodness_of_fit.pearson_chi2, glm.rows.df_residual)),
-            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active, family=spec.family),
+            "conventions": conventions(statistic=glm.statistic_name, penalized=spec.penalty.active, family=spec.family,
+                                       errors=spec.errors),
+            # how the sandwich standard errors were made; left out for the model's own
+            **({"errors": {**glm.robust_errors.record(), **({"column": spec.cluster} if spec.cluster else {})}}
+               if glm.robust_errors is not None else {}),
             **({"power": spec.power} if spec.power is not None else {}),
         },
         terms=tuple(fitted_terms),

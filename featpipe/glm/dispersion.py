@@ -39,5 +39,6 @@ def overdispersion_warning(family: str, ratio: float, binary: bool) -> str | Non
             f"{'counts' if family == 'poisson' else 'successes'} vary more than the {family} family allows "
             "(overdispersion), so the standard errors are too small and the p-values too optimistic; read each "
             f"standard error as about {math.sqrt(ratio):.2f} times larger (the quasi-{family} correction, the square "
-            f"root of the ratio): refit with family: quasi{family}, which scales them so, or add "
-            "the terms that explain the extra variation")
+            f"root of the ratio): refit with family: quasi{family}, which scales them so, or with errors: robust "
+            "(sandwich standard errors, which do not assume the family's variance), or add the terms that explain the "
+            "extra variation")

@@ -24,7 +24,7 @@ import math
 from abc import ABC, abstractmethod
 
 import numpy as np
-from scipy.special import expit, gammaln
+from scipy.special import expit, gammaln, xlogy
 
 from ..project.load import LINKS
 
@@ -101,7 +101,8 @@ class Binomial(Family):
 
     def unit_deviance(self, y, eta, mu):
         softplus = np.maximum(eta, 0.0) + np.log1p(np.exp(-np.abs(eta)))  # ln(1 + e^eta) without overflow
-        return 2.0 * (softplus - y * eta)
+        # A proportion's saturated term y ln y + (1 - y) ln(1 - y), exactly 0 for a 0/1 target.
+        return 2.0 * (softplus - y * eta) + 2.0 * (xlogy(y, y) + xlogy(1.0 - y, 1.0 - y))
 
     def boundary(self, eta):
         return np.abs(eta) > BOUNDARY_ETA

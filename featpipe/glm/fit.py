@@ -26,7 +26,9 @@ better; X'WX, the deviance and the standard errors are those of the final coeffi
 from __future__ import annotations
 
 import math
-from dataclasses import KW_ONLY, dataclass, field
+from collections.abc import Callable
+from dataclasses import KW_ONLY, dataclass, field, replace
+from functools import partial
 
 import numpy as np
 import pyarrow as pa
@@ -43,6 +45,7 @@ from ..sqlgen.statistics import (
     read_profile,
     target_counts_query,
 )
+from ..sqlgen.trials import trial_counts_query
 from . import problems
 from .dispersion import estimated_dispersion, overdispersion_warning, pearson_ratio
 from .families import Family, get_family
@@ -52,6 +55,7 @@ from .linalg import inverse_spd, variance_inflation
 from .penalty import ScaledPenalty
 from .problems import DataNames
 from .result import Coefficient, Convergence, GlmResult, GoodnessOfFit, TrainingRows
+from .sandwich import KINDS, Middle, engine_middle, sandwich
 from .sources import (
     Batch,
     BatchSource,
@@ -63,6 +67,7 @@ from .sources import (
     engine_batches,
     in_memory_batches,
 )
+from .trials import grouped_constant
 from .weights import as_repeated_rows
 
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
@@ -81,6 +86,10 @@ class Glm:
     different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     `power`: the tweedie variance power, in (1, 2); None for the other families.
+    `trials`: binomial successes out of trials: the target is the proportion and the weights are the trials
+    (see `trials`); the log-likelihood then includes the binomial constant.
+    `errors`: "model" (from the information matrix), "robust" (sandwich, HC1) or "cluster" (sandwich over
+    the design table's cluster column); see `sandwich`. Engine fits only; one more pass over the rows.
     """
 
     family: str
@@ -93,6 +102,8 @@ class Glm:
     batch_rows: int = BATCH_ROWS
     frequency_weights: bool = False
     power: float | None = None
+    errors: str = "model"
+    trials: bool = False
 
     def __post_init__(self) -> None:
         get_family(self.family, self.power)  # raises on an unknown family or a power it does not take
@@ -108,6 +119,12 @@ class Glm:
             raise ValueError("sample_rows must be at least 100: the sample also sets the working scaling")
         if self.batch_rows < 1:
             raise ValueError(f"batch_rows must be at least 1, not {self.batch_rows!r}")
+        if self.trials and (self.family != "binomial" or self.frequency_weights):
+            raise ValueError("trials go with family binomial, the weights holding the trials")
+        if self.errors not in KINDS:
+            raise ValueError(f"unknown errors {self.errors!r}; use one of {', '.join(KINDS)}")
+        if self.errors != "model" and (self.penalty.l2 > 0 or self.penalty.l1 > 0):
+            raise ValueError("a penalized fit has no Wald inference, robust or not; drop errors or the penalty")
 
     def fit(self, engine: Engine, layout: DesignLayout) -> GlmResult:
         """Fit on the training rows of a design table in `engine`."""
@@ -129,13 +146,25 @@ class Glm:
         # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
         filled = len(sample.y) >= self.sample_rows
         warm = BatchSource("sample", in_memory_batches(sample, self.batch_rows), family, scaling) if filled else None
+        if self.errors == "cluster" and layout.cluster is None:
+            raise ValueError(f"errors 'cluster' needs a cluster column in design table {layout.table}")
+        middle = None if self.errors == "model" else partial(engine_middle, engine, layout, family, scaling, self.errors == "cluster")
+        pairs = None
+        if self.trials:
+            pairs = np.array([[float(v) for v in row] for row in engine.fetch(trial_counts_query(layout))]).reshape(-1, 3)
+            passes += 1
         return self._solve(
-            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes)
+            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes,
+                     middle=middle, trial_pairs=pairs)
         )
 
     def fit_arrays(self, X, y, offset=None, weights=None, names: tuple[str, ...] | None = None) -> GlmResult:
         """The same fit on in-memory arrays: X (rows x terms, no intercept column), y, optional offset and
         weights; `names` name the terms (x1, x2, ... by default)."""
+        if self.errors != "model":
+            raise ValueError("robust standard errors are computed in an engine: use Glm.fit on a design table")
+        if self.trials and weights is None:
+            raise ValueError("trials need weights: each row's number of trials, y its share of successes")
         family = get_family(self.family, self.power)
         terms = np.asarray(X, dtype=float)
         terms = terms.reshape(len(terms), -1)
@@ -149,8 +178,13 @@ class Glm:
         scaling = Scaling.of(rows.terms)
         statistics = BatchSource("arrays", in_memory_batches(rows, self.batch_rows), family, scaling)
         data = DataNames(names, "the arrays", "y", None if weights is None else "weights")
+        pairs = None
+        if self.trials:
+            pairs, counts = np.unique(np.column_stack([rows.y, rows.weight]), axis=0, return_counts=True)
+            pairs = np.column_stack([pairs, counts.astype(float)])
         return self._solve(
-            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, known=None, passes=0)
+            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, known=None, passes=0,
+                     trial_pairs=pairs)
         )
 
     def _solve(self, problem: _Problem) -> GlmResult:
@@ -165,7 +199,11 @@ class Glm:
             profile, constant = problem.known
         if self.frequency_weights:
             profile = as_repeated_rows(profile, problem.data.where)
-        warnings = problems.check_training_rows(profile, problem.family, problem.data)
+        checked = profile
+        if problem.trial_pairs is not None:  # proportions of trials: the counts are checked, then each trial counts as a row
+            constant = grouped_constant(problem.trial_pairs, problem.data.where, problem.data.target)
+            checked = replace(profile, not_binary=0, rows=profile.weight_sum, target_sum=profile.weighted_target_sum)
+        warnings = problems.check_training_rows(checked, problem.family, problem.data)
         penalty = ScaledPenalty(self.penalty.l2, self.penalty.l1, _penalty_factors(profile, problem.scaling))
         try:
             model, null = run_irls(
@@ -175,7 +213,7 @@ class Glm:
         except AliasedTerms as error:
             raise FeatpipeError(problems.aliased_message(error.aliases, problem.data, problem.scaling)) from None
         solution = _Solution(model=model, null=null, profile=profile, constant=constant, penalty=penalty, warnings=tuple(warnings),
-                             variance_weighted=problem.data.weight is not None and not self.frequency_weights)
+                             variance_weighted=problem.data.weight is not None and not self.frequency_weights, errors=self.errors)
         return _result(problem, solution, self.max_iter)
 
     def _warm_starts(self, problem: _Problem, starts: list[Request]) -> list[Request]:
@@ -205,6 +243,8 @@ class _Problem:
     warm: BatchSource | None  # the sample as a source, when fitting it first gives a warm start
     known: tuple[TrainingProfile, float] | None  # profile and poisson constant, unless the first pass gathers them
     passes: int  # full reads of the training rows before IRLS
+    middle: Callable[[tuple[int, ...], np.ndarray], Middle] | None = None  # the sandwich's middle term at working coefficients
+    trial_pairs: np.ndarray | None = None  # grouped binomial: (proportion, trials, rows) per distinct pair
 
 
 @dataclass(frozen=True)
@@ -214,10 +254,11 @@ class _Solution:
     model: IrlsResult
     null: IrlsResult
     profile: TrainingProfile
-    constant: float  # the poisson or gamma log-likelihood constant (0 for the other families)
+    constant: float  # the poisson, gamma or grouped binomial log-likelihood constant (0 for the other families)
     penalty: ScaledPenalty
     warnings: tuple[str, ...]  # from the checks of the training rows
     variance_weighted: bool = False  # weights that weigh precision rather than count rows
+    errors: str = "model"  # the standard errors asked for (see `sandwich`)
 
 
 def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling) -> tuple[tuple[TrainingProfile, float], int]:
@@ -268,8 +309,14 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     df_residual = profile.rows - size
     dispersion = estimated_dispersion(family, statistics.deviance, statistics.pearson, df_residual)
     inverse = inverse_spd(statistics.xtwx)
-    covariance = inference = None
-    if not penalty.active:
+    covariance = inference = robust = None
+    sandwich_passes = 0
+    if not penalty.active and problem.middle is not None:
+        working, robust = sandwich(inverse, problem.middle(model.terms, model.beta), solution.errors, profile.rows)
+        sandwich_passes = 1
+        covariance = transform @ working @ transform.T
+        inference = wald(coef, covariance, family, df_residual, normal=True)
+    elif not penalty.active:
         covariance = transform @ (dispersion * inverse) @ transform.T
         inference = wald(coef, covariance, family, df_residual)
     warnings = list(solution.warnings)
@@ -304,7 +351,7 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
     return GlmResult(
         family=family.name,
         link=family.link,
-        statistic_name=family.statistic_name,
+        statistic_name="z" if robust is not None else family.statistic_name,
         penalized=penalty.active,
         coefficients=_coefficients((INTERCEPT, *data.terms), coef, inference, variance_inflation(statistics.xtwx, inverse)),
         covariance=None if covariance is None else tuple(tuple(float(v) for v in row) for row in covariance),
@@ -322,10 +369,11 @@ def _result(problem: _Problem, solution: _Solution, max_iter: int) -> GlmResult:
         convergence=Convergence(
             converged=model.converged,
             iterations=model.iterations,
-            passes_over_data=problem.passes + problem.statistics.passes,
+            passes_over_data=problem.passes + problem.statistics.passes + sandwich_passes,
             source=problem.statistics.name,
         ),
         warnings=tuple(warnings),
+        robust_errors=robust,
     )
 
 

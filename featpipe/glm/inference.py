@@ -31,12 +31,13 @@ class Wald:
         )
 
 
-def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: int) -> Wald:
-    """Standard errors, z (or t with `df_residual` degrees of freedom), two-sided p-values, 95% intervals."""
+def wald(coef: np.ndarray, covariance: np.ndarray, family: Family, df_residual: int, *, normal: bool = False) -> Wald:
+    """Standard errors, z (or t with `df_residual` degrees of freedom), two-sided p-values, 95% intervals;
+    `normal` takes z whatever the family (sandwich standard errors are a large-sample result)."""
     stderr = np.sqrt(np.clip(np.diag(covariance), 0.0, None))
     with np.errstate(divide="ignore", invalid="ignore"):
         statistic = coef / stderr
-    if family.estimates_dispersion:
+    if family.estimates_dispersion and not normal:
         p_value = 2.0 * stats.t.sf(np.abs(statistic), df_residual)
         quantile = stats.t.ppf(0.5 + LEVEL / 2, df_residual)
     else:
@@ -61,9 +62,8 @@ def log_likelihood(family: Family, deviance: float, rows: int, log_weight_sum: f
     if family.name == "gaussian":
         scale = deviance / rows
         return -0.5 * (rows * math.log(2.0 * math.pi * scale) + rows - log_weight_sum)
-    if family.name == "poisson":
-        return -0.5 * deviance + constant
-    return -0.5 * deviance
+    # poisson: its data term; binomial: 0 for a 0/1 target, the binomial constant for successes out of trials
+    return -0.5 * deviance + constant
 
 
 def information_criteria(llf: float | None, parameters: float, rows: float) -> tuple[float | None, float | None]:

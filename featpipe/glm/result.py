@@ -66,6 +66,18 @@ class Convergence:
 
 
 @dataclass(frozen=True)
+class RobustErrors:
+    """How a fit's sandwich standard errors were made, as the fitted file records it."""
+
+    kind: str  # "HC1" or "cluster"
+    clusters: int  # rows for HC1
+    correction: float  # the small-sample factor the sandwich was multiplied by
+
+    def record(self) -> dict:
+        return {"kind": self.kind, "clusters": self.clusters, "correction": self.correction}
+
+
+@dataclass(frozen=True)
 class GlmResult:
     """A fitted GLM. `coefficients` and the rows and columns of `covariance` follow the same order."""
 
@@ -79,6 +91,7 @@ class GlmResult:
     rows: TrainingRows
     convergence: Convergence
     warnings: tuple[str, ...]
+    robust_errors: RobustErrors | None = None  # how sandwich standard errors were made; None: the model's own
 
     @property
     def names(self) -> tuple[str, ...]:

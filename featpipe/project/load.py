@@ -121,6 +121,9 @@ class ModelSpec:
     max_dropped: float = 0.05  # largest share of rows that may be dropped for NULLs before a fit refuses
     weight_kind: str = "variance"  # "frequency": a row stands for `weights` identical rows
     power: float | None = None  # the tweedie variance power, in (1, 2)
+    errors: str = "model"  # "model", "robust" (sandwich, HC1) or "cluster" (sandwich over clusters of `cluster`)
+    cluster: str | None = None  # the column whose values group rows into clusters, with errors: cluster
+    trials: str | None = None  # binomial successes (the target) out of this many trials per row
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
 
     def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
@@ -336,7 +339,7 @@ def is_sql_type(kind: str) -> bool:
 
 MODEL_KEYS = {
     "input", "target", "family", "offset", "weights", "terms", "penalty",
-    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power",
+    "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power", "errors", "trials",
 }
 MAX_FOLDS = 20
 
@@ -377,6 +380,20 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
     weights, weight_kind = _weights(document, data.get("weights"), diagnostics)
     if weights is not None and columns and weights not in columns:
         diagnostics.append(document.at(("weights",), f"weights column '{weights}' is not a column of input '{input_name}'"))
+    errors, cluster = _errors(document, data.get("errors", "model"), columns, input_name, diagnostics)
+    trials = data.get("trials")
+    if trials is not None:
+        if not isinstance(trials, str) or (columns and trials not in columns):
+            diagnostics.append(document.at(("trials",), f"trials must name the column of input '{input_name}' holding each "
+                                                        f"row's number of trials, not {trials!r}"))
+        elif family != "binomial":
+            diagnostics.append(document.at(("trials",), f"trials count binomial successes out of trials; family is {family}: "
+                                                        "use family: binomial (or drop trials)"))
+        elif weights is not None:
+            diagnostics.append(document.at(("trials",), "trials are the binomial weights already; drop weights"))
+        elif data.get("folds") or data.get("penalty"):
+            diagnostics.append(document.at(("trials",), "trials do not go with folds or a penalty yet: fit the grouped "
+                                                        "model without them"))
     offset = data.get("offset")
     if offset is not None and not isinstance(offset, str):
         diagnostics.append(document.at(("offset",), "offset must be a SQL expression, e.g. LN(exposure_years)"))
@@ -441,6 +458,13 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         if value == 0:
             diagnostics.append(document.at(("step", term), "a step must not be zero"))
     notes = {term: str(value) for term, value in _term_map(document, "notes", data, terms, diagnostics).items()}
+    if errors != "model" and penalty.active:
+        diagnostics.append(document.at(("errors",), "a penalized fit has no Wald inference, robust or not: "
+                                                    "drop errors or the penalty"))
+    if errors == "robust" and weight_kind == "frequency":
+        diagnostics.append(document.at(("errors",), "errors: robust sums each row's own score, but a frequency-weighted row "
+                                                    "stands for several rows: use errors: {cluster: c} with a column "
+                                                    "that groups them, or variance weights"))
 
     if len(diagnostics) > before:
         return None
@@ -448,6 +472,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
         offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
         expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, power=power, document=document,
+        errors=errors, cluster=cluster, trials=trials,
     )
 
 
@@ -526,6 +551,25 @@ def _weights(document, value, diagnostics) -> tuple[str | None, str]:
                                                             f"identical rows) or variance (a precision weight), not {kind!r}"))
         kind = "variance"
     return column, kind
+
+
+def _errors(document, value, columns: dict[str, str], input_name: str, diagnostics) -> tuple[str, str | None]:
+    """The standard errors asked for: `errors: model` (the default), `errors: robust` or `errors: {cluster: c}`."""
+    if value in ("model", "robust"):
+        return value, None
+    if isinstance(value, dict):
+        _unknown_keys(document, ("errors",), value, {"cluster"}, diagnostics)
+        name = value.get("cluster")
+        if not isinstance(name, str):
+            diagnostics.append(document.at(("errors",), "errors: {cluster: c} needs the column whose values group the rows"))
+        elif columns and name not in columns:
+            diagnostics.append(document.at(("errors", "cluster"), f"cluster column '{name}' is not a column of input '{input_name}'"))
+        else:
+            return "cluster", name
+        return "model", None
+    diagnostics.append(document.at(("errors",), f"errors must be model, robust (sandwich standard errors) or {{cluster: column}}, "
+                                                f"not {value!r}"))
+    return "model", None
 
 
 def _term_map(document, key: str, data: dict, terms: list[str], diagnostics) -> dict:

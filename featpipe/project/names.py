@@ -24,6 +24,7 @@ INTERCEPT = "(intercept)"
 HOLDOUT_COLUMN = "_holdout"
 OFFSET_COLUMN = "_offset"
 WEIGHT_COLUMN = "_weight"
+CLUSTER_COLUMN = "_cluster"  # the cluster of a row, with errors: {cluster: c}
 
 
 def table_reference(text: str, option: str) -> exp.Table:

@@ -1,7 +1,7 @@
 """The terms and design-table queries of a model, as sqlglot trees.
 
-The design table holds the key, the target as DOUBLE, the offset and weight when the model has
-them, the holdout flag and one DOUBLE column per term, every term computed from input columns only
+The design table holds the key, the target as DOUBLE, the offset, weight and cluster column when the
+model has them, the holdout flag and one DOUBLE column per term, every term computed from input columns only
 (references inlined) with the portable-SQL hardening applied.
 """
 
@@ -86,14 +86,19 @@ def terms_query(terms: list[Term], source: InputSpec, table: str | None = None) 
 def design_query(model: CompiledModel, source: InputSpec, table: str | None = None) -> exp.Select:
     """The query that builds `design_<model>` from the input table."""
     spec, layout = model.spec, model.layout
+    target = target_value(spec.target, source.columns[spec.target])
+    if spec.trials:  # the share of successes, with the trials as the weight
+        target = exp.Div(this=target, expression=exp.Nullif(this=double(column(spec.trials)), expression=number(0.0)))
     projections = [
         alias(column(source.key), source.key),
-        alias(target_value(spec.target, source.columns[spec.target]), layout.target),
+        alias(target, layout.target),
     ]
     if model.offset is not None:
         projections.append(alias(as_number(harden(model.offset, schema=source.columns), False), layout.offset))
-    if spec.weights:
-        projections.append(alias(double(column(spec.weights)), layout.weight))
+    if spec.weights or spec.trials:
+        projections.append(alias(double(column(spec.weights or spec.trials)), layout.weight))
+    if layout.cluster:
+        projections.append(alias(column(spec.cluster), layout.cluster))
     projections.append(alias(holdout_flag(source.key, spec.holdout), layout.holdout))
     projections += [alias(term_value(term, source), term.name) for term in model.terms]
     return exp.select(*projections).from_(_source_table(source, table))

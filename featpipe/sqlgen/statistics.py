@@ -336,6 +336,11 @@ def _family_parts(family: str, y: exp.Expression, eta: exp.Expression, mu: exp.E
             exp.Ln(this=_add(one.copy(), exp.Exp(this=eta.copy()))),
         )
         deviance = _mul(two, exp.Paren(this=_sub(softplus, _mul(y.copy(), eta.copy()))))
+        # A proportion (successes out of trials) adds its saturated term; 0 for a 0/1 target.
+        inside = exp.and_(exp.GT(this=y.copy(), expression=zero.copy()), exp.LT(this=y.copy(), expression=one.copy()))
+        failures = exp.Paren(this=_sub(one.copy(), y.copy()))
+        saturated = _add(_mul(y.copy(), exp.Ln(this=y.copy())), _mul(failures, exp.Ln(this=failures.copy())))
+        deviance = exp.Paren(this=_add(deviance, _case(inside, _mul(two.copy(), exp.Paren(this=saturated)), zero.copy())))
         flag = exp.or_(flag, exp.GT(this=eta.copy(), expression=number(boundary_eta)))
     return weight, _sub(y.copy(), mu.copy()), deviance, _case(flag, exp.Literal.number(1), exp.Literal.number(0))
 
