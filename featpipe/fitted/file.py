@@ -77,6 +77,7 @@ class FittedModel:
     linear_predictor: Profile | None = None
     metrics: dict = field(default_factory=dict)
     crossval: dict = field(default_factory=dict)  # k-fold cross-validation (featpipe.fitting.crossval); empty without folds
+    group_tables: dict = field(default_factory=dict)  # featpipe.fitting.groups tables on the holdout; empty without groups
     warnings: tuple[str, ...] = ()
     depends_on: dict = field(default_factory=dict)  # compiler.fit_dependencies at the fit, to name what changed since
     format: int = FORMAT_VERSION
@@ -105,6 +106,8 @@ def to_yaml(fitted: FittedModel) -> str:
     data = asdict(fitted)
     if not data["crossval"]:
         del data["crossval"]  # a fit without folds writes the file it always did
+    if not data["group_tables"]:
+        del data["group_tables"]  # so does a fit without groups
     return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 

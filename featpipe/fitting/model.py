@@ -20,7 +20,8 @@ from ..project import InputSpec
 from ..project.names import LINEAR_PREDICTOR
 from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_terms, row_accounting_query
 from ..sqlgen.common import column
-from ..sqlgen.metrics import linear_predictor
+from ..sqlgen.metrics import linear_predictor, scored_holdout
+from .groups import group_tables
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -119,6 +120,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
         crossval=cross_validation(engine, layout, spec, penalty, l2_choice) if spec.folds else {},
+        group_tables=group_tables(engine, scored_holdout(layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
+                            spec.threshold),
         warnings=tuple(glm.warnings),
         depends_on=model.dependencies,
     )

@@ -121,6 +121,7 @@ class ModelSpec:
     max_dropped: float = 0.05  # largest share of rows that may be dropped for NULLs before a fit refuses
     weight_kind: str = "variance"  # "frequency": a row stands for `weights` identical rows
     power: float | None = None  # the tweedie variance power, in (1, 2)
+    groups: tuple[str, ...] = ()  # input columns whose groups the report tabulates; never terms
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
 
     def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
@@ -337,6 +338,7 @@ def is_sql_type(kind: str) -> bool:
 MODEL_KEYS = {
     "input", "target", "family", "offset", "weights", "terms", "penalty",
     "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power",
+    "groups",
 }
 MAX_FOLDS = 20
 
@@ -441,14 +443,33 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         if value == 0:
             diagnostics.append(document.at(("step", term), "a step must not be zero"))
     notes = {term: str(value) for term, value in _term_map(document, "notes", data, terms, diagnostics).items()}
+    groups = _groups(document, data.get("groups"), columns, input_name, target, diagnostics)
 
     if len(diagnostics) > before:
         return None
     return ModelSpec(
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
         offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
-        expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, power=power, document=document,
+        expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, power=power, groups=groups,
+        document=document,
     )
+
+
+def _groups(document, data, columns: dict[str, str], input_name: str, target: str, diagnostics) -> tuple[str, ...]:
+    """`groups: [column, ...]`: distinct input columns other than the target, whose groups are tabulated."""
+    if data is None:
+        return ()
+    if not isinstance(data, list) or not all(isinstance(name, str) for name in data):
+        diagnostics.append(document.at(("groups",), "groups must be a list of input column names, e.g. [region]"))
+        return ()
+    for index, name in enumerate(data):
+        if columns and name not in columns:
+            diagnostics.append(document.at(("groups", index), f"group column '{name}' is not a column of input '{input_name}'"))
+        elif name == target:
+            diagnostics.append(document.at(("groups", index), f"'{name}' is the model's target; it cannot also be a group column"))
+        elif name in data[:index]:
+            diagnostics.append(document.at(("groups", index), f"group column '{name}' is listed twice"))
+    return tuple(data)
 
 
 def _out_of_time(document, data: dict, columns: dict[str, str], input_name: str, diagnostics) -> Holdout:
