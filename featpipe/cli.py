@@ -377,14 +377,17 @@ def drift(
     table: Annotated[str, typer.Option("--table", "-t", help="The batch to compare with the model's training rows.")],
     project: ProjectOption = None,
     json_output: JsonOption = False,
-    fail_above: Annotated[Optional[float], typer.Option(
-        "--fail-above", help="Exit 1 when any term's or the score's PSI is above this (0.25: a major shift).")] = None,
+    fail_above: Annotated[Optional[list[str]], typer.Option(
+        "--fail-above", help="Exit 1 when a figure is above a limit: LIMIT for any term's or the score's PSI (0.25: a "
+        "major shift), or NAME=LIMIT for shift, outside, null_rise or unseen; repeat for several.")] = None,
     allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Compare even if the model's terms changed since its fit.")] = False,
 ) -> None:
     """Stability of each term and of the score in a batch against the training rows (population stability index)."""
     from .fitted.drift import drift as compare
+    from .fitted.drift import parse_limits
     from .project import load_project
 
+    limits = parse_limits(fail_above or [])
     report = compare(load_project(project), model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
     if json_output:
         _print_json(report.as_dict())
@@ -392,14 +395,32 @@ def drift(
         out.print(drift_table(report))
         out.print("terms ranked by how far their mean contribution to the linear predictor moved (0 in training); "
                   "PSI over the training deciles with NULL as a bin of its own, empty bins counted as 0.0001; "
-                  "below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice)")
+                  "below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice); "
+                  "a reading is also moderate from 1% and major from 5% of rows outside the training range, and for "
+                  "the score from a mean shift of 0.1 and 0.25 training sd (rules of thumb)")
+        if report.score.reasons:
+            out.print(f"score: {report.score.reading} ({'; '.join(report.score.reasons)})", markup=False)
+        out.print(input_health_table(report) if report.inputs is not None else
+                  "input columns: the fitted file records no input profiles; fit again to compare NULL rates and levels")
         for reason in report.stale:
             out.print(f"[red]stale:[/red] {reason}")
-    if fail_above is not None:
-        over = report.exceeding(fail_above)
-        if over:
-            err.print(f"PSI above {fail_above:g}: {', '.join(over)}", markup=False)
-            raise typer.Exit(1)
+    over = report.over_limits(limits)
+    if over:
+        err.print("\n".join(over), markup=False)
+        raise typer.Exit(1)
+
+
+def input_health_table(report) -> Table:
+    """One line per input column a term reads: its NULL rate against training and (text) the unseen levels."""
+    from rich.table import Table
+
+    table = Table(title="input columns against the training rows")
+    for heading in ("column", "NULL (training)", "NULL rise", "unseen levels"):
+        table.add_column(heading, justify="left" if heading == "column" else "right")
+    for item in report.inputs:
+        table.add_row(item.name, f"{item.null_share:.1%} ({item.training_null_share:.1%})", f"{item.null_rise:+.1%}",
+                      "" if item.unseen_share is None else f"{item.unseen_share:.1%}")
+    return table
 
 
 def drift_table(report) -> Table:

@@ -18,6 +18,7 @@ from featpipe import api
 from featpipe.fitted import read_fitted
 from featpipe.fitted.evaluations import read_evaluation
 from featpipe.fitted.report import write_report
+from featpipe.fitted.report.render import metric_text
 from featpipe.project import load_project
 
 GROUPED = SPEC + "threshold: 0.3\ngroups: [region, month_index]\n"
@@ -139,6 +140,11 @@ def test_the_report_shows_the_group_table_with_its_cautions(tmp_path):
     assert "Outcomes across groups" in page
     assert "too small to read" in page
     assert "calls for review" in page and "does not prove" in page
-    assert "local law" in page
+    assert "Local law and the organisation" in page
     assert "29 CFR 1607.4(D)" in page
-    assert "loans_2026" in page
+    assert "region on the table loans_2026" in page and "month_index on the held-out rows" in page
+    fitted = read_fitted(root / "fitted/risk.yaml")
+    for entry in fitted.group_tables["region"]:
+        assert f'<td class="num">{metric_text(entry["auc"])}</td>' in page
+        review = min(entry["flagged_ratio"], entry["unflagged_ratio"]) < 0.8
+        assert (f'<td>{entry["group"]} (review)</td>' in page) == review

@@ -77,6 +77,7 @@ class FittedModel:
     linear_predictor: Profile | None = None
     metrics: dict = field(default_factory=dict)
     crossval: dict = field(default_factory=dict)  # k-fold cross-validation (featpipe.fitting.crossval); empty without folds
+    input_profiles: dict = field(default_factory=dict)  # featpipe.fitting.inputs: NULLs and text levels of the columns read
     group_tables: dict = field(default_factory=dict)  # featpipe.fitting.groups tables on the holdout; empty without groups
     warnings: tuple[str, ...] = ()
     depends_on: dict = field(default_factory=dict)  # compiler.fit_dependencies at the fit, to name what changed since
@@ -108,6 +109,8 @@ def to_yaml(fitted: FittedModel) -> str:
         del data["crossval"]  # a fit without folds writes the file it always did
     if not data["group_tables"]:
         del data["group_tables"]  # so does a fit without groups
+    if not data["input_profiles"]:
+        del data["input_profiles"]  # files fitted before input profiles were recorded read back the same
     return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 

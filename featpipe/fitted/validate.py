@@ -230,6 +230,8 @@ GROUP = record({"group": optional(TEXT), "rows": COUNT, "too_small": FLAG}, {
     "flagged_share": NUMBER, "auc": OPTIONAL_NUMBER, "flagged_ratio": OPTIONAL_NUMBER, "unflagged_ratio": OPTIONAL_NUMBER,
 })
 GROUPS = mapping(NAME, listing(GROUP))
+# featpipe.fitting.inputs: per input column a term reads, its NULLs on the training rows and (text) the levels seen.
+INPUT_PROFILES = record({"rows": COUNT, "columns": mapping(NAME, record({"nulls": COUNT}, {"levels": optional(listing(TEXT))}))})
 # compiler.fit_dependencies as written; files fitted before a dependency was recorded lack it.
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "power": TWEEDIE_POWER, "offset": optional(TEXT), "weights": WEIGHTS,
@@ -244,7 +246,8 @@ FITTED = record(
      "link": one_of(*dict.fromkeys(LINKS.values())), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
-    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "group_tables": GROUPS, "warnings": listing(TEXT),
+    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "input_profiles": INPUT_PROFILES,
+     "group_tables": GROUPS, "warnings": listing(TEXT),
      "format": FORMAT},
 )
 

@@ -22,6 +22,7 @@ from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_te
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor, scored_holdout
 from .groups import group_tables
+from .inputs import input_profiles
 from .metrics import holdout_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -76,6 +77,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     metrics = holdout_metrics(engine, layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
                               power=spec.power)
     intercept, *slopes = glm.coefficients
+    declared = compiled.project.inputs[spec.input].columns
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     fitted_terms += [
         _fitted_term(coefficient, term, spec, model, profiles[term.name], training.sd)
@@ -120,6 +122,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
         crossval=cross_validation(engine, layout, spec, penalty, l2_choice) if spec.folds else {},
+        input_profiles=input_profiles(engine, spec.input, layout.key, spec.holdout,
+                                      {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})}),
         group_tables=group_tables(engine, scored_holdout(layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
                             spec.threshold),
         warnings=tuple(glm.warnings),

@@ -19,7 +19,7 @@ from pygments.lexers import SqlLexer
 from .. import FittedModel
 from ..evaluations import Evaluation, stability_row
 from ..notes import figure
-from . import plots, readings
+from . import groups, plots, readings
 from .compare import Comparison
 from .data import INTEGER, LEVELS, ReportData, roc_points
 
@@ -134,6 +134,9 @@ def render_report(data: ReportData, sources: Sources, comparison: Comparison | N
         "gains_columns": GAINS,
         "cautions_reading": readings.cautions(fitted, data.inputs),
         "cautions": CAUTIONS,
+        "group_tables": groups.group_tables(fitted, sources.evaluations, sources.fitted_hash),
+        "group_reading": groups.reading(fitted),
+        "group_columns": groups.COLUMNS,
         "pygments_css": Markup(formatter.get_style_defs(".sql")),
         "curves_json": Markup(_curves_json(data)),
         "curves_id": CURVES_ID,
