@@ -381,14 +381,24 @@ def drift(
         "--fail-above", help="Exit 1 when a figure is above a limit: LIMIT for any term's or the score's PSI (0.25: a "
         "major shift), or NAME=LIMIT for shift, outside, null_rise or unseen; repeat for several.")] = None,
     allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Compare even if the model's terms changed since its fit.")] = False,
+    history: Annotated[Optional[str], typer.Option(
+        "--history", help="Add the batch under this period (2026-06 or 2026-06-30) to fitted/MODEL.drift.yaml.")] = None,
 ) -> None:
     """Stability of each term and of the score in a batch against the training rows (population stability index)."""
     from .fitted.drift import drift as compare
     from .fitted.drift import parse_limits
+    from .fitted.drift_history import check_period, record_drift
     from .project import load_project
 
     limits = parse_limits(fail_above or [])
-    report = compare(load_project(project), model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
+    if history is not None:
+        check_period(history)
+    loaded = load_project(project)
+    report = compare(loaded, model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
+    if history is not None:
+        written = record_drift(loaded, report, history)
+        if not json_output:
+            out.print(f"added {history} to {written}")
     if json_output:
         _print_json(report.as_dict())
     else:
