@@ -148,3 +148,22 @@ def test_the_report_shows_the_group_table_with_its_cautions(tmp_path):
         assert f'<td class="num">{metric_text(entry["auc"])}</td>' in page
         review = min(entry["flagged_ratio"], entry["unflagged_ratio"]) < 0.8
         assert (f'<td>{entry["group"]} (review)</td>' in page) == review
+
+
+@pytest.mark.parametrize("kind", ["postgres", pytest.param("spark", marks=pytest.mark.spark)])
+def test_group_tables_and_input_profiles_are_the_same_on_every_engine(tmp_path, request, kind):
+    from test_splits import PROJECT, assert_close, engine_block
+
+    reference = loans_project(tmp_path / "duckdb", GROUPED)
+    api.fit(load_project(reference))
+    api.evaluate(load_project(reference), "risk", "loans_2026")
+    root = loans_project(tmp_path / kind, GROUPED)
+    (root / "featpipe.yaml").write_text(PROJECT.replace("{kind: duckdb, path: build/loans.duckdb}", engine_block(kind, request)))
+    api.fit(load_project(root))
+    api.evaluate(load_project(root), "risk", "loans_2026")
+    # DuckDB's run, which the tests above check against pandas and scikit-learn, is the reference.
+    mine, theirs = read_fitted(root / "fitted/risk.yaml"), read_fitted(reference / "fitted/risk.yaml")
+    assert_close(mine.group_tables, theirs.group_tables, "group_tables")
+    assert_close(mine.input_profiles, theirs.input_profiles, "input_profiles")
+    evaluated = [read_evaluation(path / "fitted/risk.evaluations/loans_2026.yaml") for path in (root, reference)]
+    assert_close(evaluated[0].group_tables, evaluated[1].group_tables, "evaluation group_tables")
