@@ -8,11 +8,13 @@ invented (seeded numpy).
 
 from __future__ import annotations
 
+import hashlib
+
 import pandas as pd
 import pytest
 from conftest import run_featpipe
 from sklearn.metrics import roc_auc_score
-from test_splits import SPEC, TERMS, features, loans_project, predicted
+from test_splits import SPEC, TERMS, csv_rows, features, loans_project, predicted
 
 from featpipe import api
 from featpipe.fitted import read_fitted
@@ -59,12 +61,9 @@ def assert_matches(found: list[dict], expected: dict) -> None:
             assert entry[key] == pytest.approx(value, abs=1e-10), (entry["group"], key)
 
 
-def holdout_rows(root, fitted_file) -> list[dict]:
-    """The held-out rows, by the design table's flag recomputed as tests/test_splits.py does: MD5 of salt:key."""
-    import hashlib
-    from test_splits import csv_rows
-
-    limit = int(round(0.3 * 16**8))
+def holdout_rows(root) -> list[dict]:
+    """The held-out rows, the spec's hash split recomputed with Python's hashlib: MD5 of "salt:key"."""
+    limit = round(0.3 * 16**8)
     return [r for r in csv_rows(root / "data/loans.csv")
             if int(hashlib.md5(f"v1:{r['loan_id']}".encode()).hexdigest()[:8], 16) < limit]
 
@@ -73,7 +72,7 @@ def test_groups_are_tabulated_on_the_holdout_as_pandas_and_scikit_learn_give_the
     root = loans_project(tmp_path / "loans", GROUPED)
     api.fit(load_project(root))
     fitted = read_fitted(root / "fitted/risk.yaml")
-    frame = scored_frame(root, holdout_rows(root, fitted))
+    frame = scored_frame(root, holdout_rows(root))
     assert len(frame) == fitted.rows["holdout"]
     assert_matches(fitted.group_tables["region"], expected_table(frame, "region", 0.3))
     months = fitted.group_tables["month_index"]
@@ -87,8 +86,6 @@ def test_an_evaluated_batch_gets_the_same_group_table(tmp_path):
     result = run_featpipe("evaluate", "risk", "--table", "loans_2026", "-p", str(root))
     assert result.returncode == 0, result.stderr
     evaluation = read_evaluation(root / "fitted/risk.evaluations/loans_2026.yaml")
-    from test_splits import csv_rows
-
     frame = scored_frame(root, csv_rows(root / "data/loans_2026.csv"))
     assert_matches(evaluation.group_tables["region"], expected_table(frame, "region", 0.3))
     assert_matches(evaluation.group_tables["month_index"], expected_table(frame, "month_index", 0.3))
@@ -167,3 +164,22 @@ def test_group_tables_and_input_profiles_are_the_same_on_every_engine(tmp_path, 
     assert_close(mine.input_profiles, theirs.input_profiles, "input_profiles")
     evaluated = [read_evaluation(path / "fitted/risk.evaluations/loans_2026.yaml") for path in (root, reference)]
     assert_close(evaluated[0].group_tables, evaluated[1].group_tables, "evaluation group_tables")
+
+
+def test_a_ratio_below_four_fifths_is_marked_for_review_and_small_groups_are_not_read():
+    from featpipe.fitted.report.groups import _row
+    from featpipe.fitting.groups import read_groups
+
+    # Worked by hand: group a flags 20 of 100 rows (0.2), b 10 of 100 (0.1), c has 29 rows (too small).
+    # flagged ratio: a 0.2 / 0.2 = 1, b 0.1 / 0.2 = 0.5 (below 0.8, 29 CFR 1607.4(D)); not-flagged: a 0.8 / 0.9.
+    # AUC of a (Mann-Whitney): twice the events' rank sum 1000, 10 events and 90 non-events: (1000 - 10 * 11) / (2 * 900).
+    found = read_groups([("b", 100, 10.0, 12.0, 10, 1300), ("a", 100, 10.0, 10.0, 20, 1000), ("c", 29, 3.0, 3.0, 9, 100)],
+                        "binomial")
+    assert [entry["group"] for entry in found] == ["a", "b", "c"]
+    a, b, c = found
+    assert (a["flagged_ratio"], b["flagged_ratio"]) == (1.0, 0.5)
+    assert a["unflagged_ratio"] == pytest.approx(0.8 / 0.9) and b["unflagged_ratio"] == 1.0
+    assert a["auc"] == pytest.approx((1000 - 110) / 1800) and b["observed_to_predicted"] == pytest.approx(10 / 12)
+    assert c == {"group": "c", "rows": 29, "too_small": True}
+    assert [_row(entry)[2] for entry in found] == [False, True, False]
+    assert _row(c)[1] == ("29", "too small to read")

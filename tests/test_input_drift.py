@@ -29,7 +29,7 @@ READ = ["firm_age_years", "monthly_payment", "monthly_revenue", "past_late_payme
 
 def training_rows(leases: pd.DataFrame) -> pd.DataFrame:
     """The rows not held out: MD5("v1:" key) at or above 0.3 of the hex range (the spec's holdout)."""
-    limit = int(round(0.3 * 16**8))
+    limit = round(0.3 * 16**8)
     held = leases["lease_id"].map(lambda key: int(hashlib.md5(f"v1:{key}".encode()).hexdigest()[:8], 16) < limit)
     return leases[~held]
 
