@@ -387,22 +387,41 @@ def drift(
     table: Annotated[str, typer.Option("--table", "-t", help="The batch to compare with the model's training rows.")],
     project: ProjectOption = None,
     json_output: JsonOption = False,
-    fail_above: Annotated[Optional[float], typer.Option(
-        "--fail-above", help="Exit 1 when any term's or the score's PSI is above this (0.25: a major shift).")] = None,
+    fail_above: Annotated[Optional[list[str]], typer.Option(
+        "--fail-above", help="Exit 1 when a figure is above a limit: LIMIT for any term's or the score's PSI (0.25: a "
+        "major shift), or NAME=LIMIT for shift, outside, null_rise or unseen; repeat for several.")] = None,
     allow_stale: Annotated[bool, typer.Option("--allow-stale", help="Compare even if the model's terms changed since its fit.")] = False,
+    history: Annotated[Optional[str], typer.Option(
+        "--history", help="Add the batch under this period (2026-06 or 2026-06-30) to fitted/MODEL.drift.yaml.")] = None,
 ) -> None:
     """Stability of each term and of the score in a batch against the training rows (population stability index)."""
     from .fitted.drift import drift as compare
+    from .fitted.drift import parse_limits
+    from .fitted.drift_history import check_period, record_drift
     from .project import load_project
 
-    report = compare(load_project(project), model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
+    limits = parse_limits(fail_above or [])
+    if history is not None:
+        check_period(history)
+    loaded = load_project(project)
+    report = compare(loaded, model, table, allow_stale=allow_stale, progress=None if json_output else _progress)
+    if history is not None:
+        written = record_drift(loaded, report, history)
+        if not json_output:
+            out.print(f"added {history} to {written}")
     if json_output:
         _print_json(report.as_dict())
     else:
         out.print(drift_table(report))
         out.print("terms ranked by how far their mean contribution to the linear predictor moved (0 in training); "
                   "PSI over the training deciles with NULL as a bin of its own, empty bins counted as 0.0001; "
-                  "below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice)")
+                  "below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice); "
+                  "a reading is also moderate from 1% and major from 5% of rows outside the training range, and for "
+                  "the score from a mean shift of 0.1 and 0.25 training sd (rules of thumb)")
+        if report.score.reasons:
+            out.print(f"score: {report.score.reading} ({'; '.join(report.score.reasons)})", markup=False)
+        out.print(input_health_table(report) if report.inputs is not None else
+                  "input columns: the fitted file records no input profiles; fit again to compare NULL rates and levels")
         for row in report.terms:
             if any(item.label for item in row.bins):  # a LEVELS term: its bins are levels, other and unseen
                 shown = ", ".join(f"{item.label} {item.actual:.1%} ({item.expected:.1%})" for item in row.bins)
@@ -412,11 +431,23 @@ def drift(
                 out.print(f"[yellow]unseen levels of {row.name}:[/yellow] {levels}", highlight=False)
         for reason in report.stale:
             out.print(f"[red]stale:[/red] {reason}")
-    if fail_above is not None:
-        over = report.exceeding(fail_above)
-        if over:
-            err.print(f"PSI above {fail_above:g}: {', '.join(over)}", markup=False)
-            raise typer.Exit(1)
+    over = report.over_limits(limits)
+    if over:
+        err.print("\n".join(over), markup=False)
+        raise typer.Exit(1)
+
+
+def input_health_table(report) -> Table:
+    """One line per input column a term reads: its NULL rate against training and (text) the unseen levels."""
+    from rich.table import Table
+
+    table = Table(title="input columns against the training rows")
+    for heading in ("column", "NULL (training)", "NULL rise", "unseen levels"):
+        table.add_column(heading, justify="left" if heading == "column" else "right")
+    for item in report.inputs:
+        table.add_row(item.name, f"{item.null_share:.1%} ({item.training_null_share:.1%})", f"{item.null_rise:+.1%}",
+                      "" if item.unseen_share is None else f"{item.unseen_share:.1%}")
+    return table
 
 
 def drift_table(report) -> Table:

@@ -371,11 +371,11 @@ def test_the_exported_sql_returns_the_psi_on_the_warehouse(lease, reports):
 
 def test_json_shape(reports):
     shape = reports["doubled"].as_dict()
-    assert list(shape) == ["model", "table", "rows", "stale", "rules", "score", "terms"]
+    assert list(shape) == ["model", "table", "rows", "stale", "rules", "score", "terms", "inputs"]
     assert shape["rules"]["empty_share"] == 0.0001
     assert shape["score"]["name"] == "linear_predictor"
     first = shape["terms"][0]
-    assert list(first) == ["name", "psi", "reading", "rank", "shift", "mean", "training_mean", "null_share",
+    assert list(first) == ["name", "psi", "reading", "reasons", "rank", "shift", "outside_share", "mean", "training_mean", "null_share",
                            "training_null_share", "below_min_share", "above_max_share", "bins"]
     assert list(first["bins"][0]) == ["low", "high", "expected", "actual", "rows"]
     assert first["bins"][0]["low"] is None and first["bins"][-1]["high"] is None

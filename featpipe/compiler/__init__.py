@@ -119,6 +119,7 @@ def fit_dependencies(spec: ModelSpec, key: str, terms: Sequence[Term], offset_sq
         "expect": dict(sorted(spec.expect.items())),
         "step": dict(sorted(spec.step.items())),
         "notes": dict(sorted(spec.notes.items())),
+        **({"groups": list(spec.groups)} if spec.groups else {}),  # only when set, so other fits keep their fingerprint
         "terms": {term.name: term.fingerprint for term in terms},
     }
 
@@ -372,6 +373,12 @@ def _compile_model(project, spec: ModelSpec, terms, uses, raw_by_name, diagnosti
                                               "a term must be known before the outcome"))
         chosen.append(term)
 
+    for index, group in enumerate(spec.groups):
+        for term in chosen:
+            if group in term.columns:
+                diagnostics.append(spec.at(("groups", index), f"group column '{group}' is read by term '{term.name}' "
+                                   f"({term.file}:{term.line}:{term.col}); a group is reported, never modelled: remove "
+                                   "the term from the model or the column from groups"))
     offset_tree, offset_sql = None, None
     if spec.offset is not None:
         offset_tree = _compile_offset(spec, columns, diagnostics)

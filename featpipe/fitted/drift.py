@@ -30,6 +30,7 @@ from ..project.names import (
     mean_column,
     mean_contribution_column,
     psi_column,
+    unseen_column,
 )
 from ..sqlgen.common import check_dialect, render
 from ..sqlgen.drift import (
@@ -39,6 +40,7 @@ from ..sqlgen.drift import (
     output_names,
     unseen_levels_query,
 )
+from ..sqlgen.inputs import batch_health_query
 from . import FittedModel, file_hash
 from .current import refuse_if_stale
 from .learned import UNSEEN, learned_monitored
@@ -55,11 +57,61 @@ MODERATE_FROM, MAJOR_ABOVE = 0.1, 0.25
 STABLE, MODERATE, MAJOR = "stable", "moderate shift", "major shift"
 
 
+# Beyond PSI, whose training deciles cannot see values piling up past the training range nor a shift
+# inside one bin (rules of thumb): rows outside the training range, 1% or more moderate and 5% or more
+# major; the score's mean shift in training standard deviations of the linear predictor (a standardised
+# mean difference), 0.1 or more moderate and 0.25 or more major.
+OUTSIDE_MODERATE, OUTSIDE_MAJOR = 0.01, 0.05
+SHIFT_MODERATE, SHIFT_MAJOR = 0.1, 0.25
+SEVERITY = (STABLE, MODERATE, MAJOR)
+# The figures `--fail-above` can gate on, as NAME=LIMIT: what each compares.
+LIMITS = {
+    "psi": "the PSI of a term or of the score",
+    "shift": "the absolute mean shift of the score or of a term's contribution, on the linear predictor's scale",
+    "outside": "the share of a term's or the score's values outside the training range",
+    "null_rise": "the rise of an input column's NULL rate over its training NULL rate",
+    "unseen": "the share of a text input column's values at a level never seen in training",
+}
+
+
+def parse_limits(texts: list[str]) -> dict[str, float]:
+    """`--fail-above` values: NAME=LIMIT for a figure of LIMITS, or a bare LIMIT for the PSI."""
+    limits = {}
+    for text in texts:
+        name, _, value = text.rpartition("=")
+        name = name.strip() or "psi"
+        try:
+            limit = float(value)
+        except ValueError:
+            limit = None
+        if name not in LIMITS or limit is None:
+            raise FeatpipeError(f"--fail-above {text}: give LIMIT (for the PSI) or NAME=LIMIT with NAME one of "
+                                f"{', '.join(LIMITS)}, e.g. --fail-above unseen=0.01")
+        limits[name] = limit
+    return limits
+
+
 def reading(psi: float) -> str:
     """below 0.1 stable, 0.1 to 0.25 a moderate shift, above 0.25 a major shift (common practice)."""
     if psi < MODERATE_FROM:
         return STABLE
     return MODERATE if psi <= MAJOR_ABOVE else MAJOR
+
+
+def _graded(value: float, moderate: float, major: float) -> str:
+    return STABLE if value < moderate else MODERATE if value < major else MAJOR
+
+
+def combined_reading(psi: float, outside: float, standardised_shift: float | None = None) -> tuple[str, tuple[str, ...]]:
+    """The worst of the PSI's reading, the share outside the training range and (the score) its
+    standardised shift, with what made it worse than stable."""
+    figures = [(reading(psi), f"PSI {psi:.3f}"),
+               (_graded(outside, OUTSIDE_MODERATE, OUTSIDE_MAJOR), f"{outside:.1%} of rows outside the training range")]
+    if standardised_shift is not None:
+        figures.append((_graded(abs(standardised_shift), SHIFT_MODERATE, SHIFT_MAJOR),
+                        f"mean moved {standardised_shift:+.2f} training sd"))
+    worst = max((found for found, _ in figures), key=SEVERITY.index)
+    return worst, tuple(why for found, why in figures if found != STABLE)
 
 
 @dataclass(frozen=True)
@@ -89,10 +141,17 @@ class DriftRow:
     shift: float | None  # terms: the batch's mean contribution (0 in training); score: mean minus training mean
     rank: int | None = None  # terms: 1 for the term that moved the scores most (largest |shift|)
     unseen: tuple[tuple[str, int], ...] = ()  # a LEVELS term: the batch's levels never seen in training, with rows
+    reasons: tuple[str, ...] = ()  # what made the reading worse than stable
+
+    @property
+    def outside_share(self) -> float:
+        """Rows below the training minimum or above the training maximum."""
+        return self.below_min_share + self.above_max_share
 
     def as_dict(self) -> dict:
         return {
-            "name": self.name, "psi": self.psi, "reading": self.reading, "rank": self.rank, "shift": self.shift,
+            "name": self.name, "psi": self.psi, "reading": self.reading, "reasons": list(self.reasons),
+            "rank": self.rank, "shift": self.shift, "outside_share": self.outside_share,
             "mean": self.mean, "training_mean": self.training_mean,
             "null_share": self.null_share, "training_null_share": self.training_null_share,
             "below_min_share": self.below_min_share, "above_max_share": self.above_max_share,
@@ -105,6 +164,20 @@ class DriftRow:
 
 
 @dataclass(frozen=True)
+class InputHealth:
+    """One input column a term reads: its NULL rate and (text) the share at a level unseen in training."""
+
+    name: str
+    null_share: float
+    training_null_share: float
+    unseen_share: float | None  # None: not a text column, or too many training levels to keep
+
+    @property
+    def null_rise(self) -> float:
+        return self.null_share - self.training_null_share
+
+
+@dataclass(frozen=True)
 class DriftReport:
     model: str
     table: str
@@ -112,10 +185,31 @@ class DriftReport:
     score: DriftRow
     terms: tuple[DriftRow, ...]  # ranked by |shift|, largest first (ties in model order)
     stale: tuple[str, ...] = ()  # why the model is stale, when drift was allowed anyway
+    inputs: tuple[InputHealth, ...] | None = None  # None: the fitted file has no input profiles (fitted before them)
 
     def exceeding(self, limit: float) -> tuple[str, ...]:
         """Names (terms, then 'linear_predictor' for the score) whose PSI is above `limit`."""
         return tuple(row.name for row in (*self.terms, self.score) if row.psi > limit)
+
+    def over_limits(self, limits: dict[str, float]) -> tuple[str, ...]:
+        """One line per figure of `limits` (names of LIMITS) with a value above its limit, naming each
+        term, score or input column over it: 'PSI above 0.25: a, b', 'unseen above 0.01: sector (2.3%)'."""
+        rows = [*self.terms, self.score]
+        values = {
+            "psi": [(row.name, row.psi) for row in rows],
+            "shift": [(row.name, abs(row.shift)) for row in rows if row.shift is not None],
+            "outside": [(row.name, row.outside_share) for row in rows],
+            "null_rise": [(item.name, item.null_rise) for item in self.inputs or ()],
+            "unseen": [(item.name, item.unseen_share) for item in self.inputs or () if item.unseen_share is not None],
+        }
+        lines = []
+        for figure, limit in limits.items():
+            over = [(name, value) for name, value in values[figure] if value > limit]
+            if figure == "psi" and over:
+                lines.append(f"PSI above {limit:g}: {', '.join(name for name, _ in over)}")
+            elif over:
+                lines.append(f"{figure} above {limit:g}: {', '.join(f'{name} ({value:.4g})' for name, value in over)}")
+        return tuple(lines)
 
     def as_dict(self) -> dict:
         return {
@@ -125,9 +219,15 @@ class DriftReport:
                 "empty_share": EMPTY_SHARE,
                 "readings": {STABLE: f"psi < {MODERATE_FROM}", MODERATE: f"{MODERATE_FROM} <= psi <= {MAJOR_ABOVE}",
                              MAJOR: f"psi > {MAJOR_ABOVE}"},
+                "also": (f"a reading is at least moderate from {OUTSIDE_MODERATE:g} and major from {OUTSIDE_MAJOR:g} of rows "
+                         f"outside the training range; the score's also from a mean shift of {SHIFT_MODERATE:g} and "
+                         f"{SHIFT_MAJOR:g} training sd of the linear predictor (rules of thumb)"),
+                "fail_above": LIMITS,
             },
             "score": self.score.as_dict(),
             "terms": [row.as_dict() for row in self.terms],
+            "inputs": None if self.inputs is None else [
+                {**vars(item), "null_rise": item.null_rise} for item in self.inputs],
         }
 
 
@@ -183,7 +283,27 @@ def read_drift(fitted: FittedModel, table: str, names: list[str], row: tuple, un
     ranked = sorted(range(len(terms)), key=lambda index: -abs(terms[index].shift or 0.0))
     for rank, index in enumerate(ranked, start=1):
         terms[index] = replace(terms[index], rank=rank)
-    return DriftReport(fitted.model, table, rows, _row(items[-1], values, rows), tuple(terms[index] for index in ranked))
+    score = _row(items[-1], values, rows)
+    spread = items[-1].profile.sd
+    standardised = score.shift / spread if score.shift is not None and spread else None
+    score_reading, reasons = combined_reading(score.psi, score.outside_share, standardised)
+    score = replace(score, reading=score_reading, reasons=reasons)
+    return DriftReport(fitted.model, table, rows, score, tuple(terms[index] for index in ranked))
+
+
+def read_inputs(fitted: FittedModel, names: list[str], row: tuple) -> tuple[InputHealth, ...]:
+    """The input health from the batch health query's one row, against the fitted file's input profiles."""
+    values = dict(zip(names, row, strict=True))
+    rows, training = int(values[ROWS]), fitted.input_profiles
+    health = []
+    for name, profile in training["columns"].items():
+        unseen = values.get(unseen_column(name))
+        health.append(InputHealth(
+            name=name, null_share=int(values[bin_column(name, NULL_BIN)]) / rows if rows else 0.0,
+            training_null_share=profile["nulls"] / training["rows"] if training["rows"] else 0.0,
+            unseen_share=None if unseen is None or not rows else int(unseen) / rows,
+        ))
+    return tuple(health)
 
 
 def _row(item: Monitored, values: dict, rows: int) -> DriftRow:
@@ -203,11 +323,12 @@ def _row(item: Monitored, values: dict, rows: int) -> DriftRow:
     else:
         shift = None if mean is None else mean - profile.mean
     psi = float(values[psi_column(item.name)])
+    below, above = int(values[below_column(item.name)]) / rows, int(values[above_column(item.name)]) / rows
+    found, reasons = combined_reading(psi, below + above)
     return DriftRow(
-        name=item.name, psi=psi, reading=reading(psi), bins=bins,
+        name=item.name, psi=psi, reading=found, reasons=reasons, bins=bins,
         null_share=int(values[bin_column(item.name, NULL_BIN)]) / rows, training_null_share=expected[-1],
-        below_min_share=int(values[below_column(item.name)]) / rows,
-        above_max_share=int(values[above_column(item.name)]) / rows,
+        below_min_share=below, above_max_share=above,
         mean=mean, training_mean=None if profile is None else profile.mean, shift=shift,
     )
 
@@ -236,8 +357,14 @@ def drift(
             progress(f"comparing {table} with the training rows of {model} in {engine.name}")
         (row,) = engine.fetch(query)
         unseen = tuple(engine.fetch(levels)) if levels is not None else ()
+        inputs = None
+        if fitted.input_profiles:
+            health = batch_health_query(table, list(fitted.input_profiles["columns"]), {
+                name: profile["levels"] for name, profile in fitted.input_profiles["columns"].items()
+                if profile.get("levels") is not None})
+            inputs = read_inputs(fitted, output_names(health), engine.fetch(health)[0])
     report = read_drift(fitted, table, output_names(query), row, unseen)
-    return replace(report, stale=stale)
+    return replace(report, stale=stale, inputs=inputs)
 
 
 def render_drift_sql(project: Project, model: str, table: str | None = None, dialect: str = "duckdb") -> str:

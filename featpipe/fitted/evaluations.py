@@ -9,7 +9,7 @@ earlier fit from one of the current fit.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import yaml
@@ -19,7 +19,7 @@ from ..errors import FeatpipeError
 from ..project.names import NAME_PATTERN
 from ..project.yamlfile import read_text
 from .file import SAFE_LOADER, _plain
-from .validate import COUNT, FINGERPRINT, METRICS, NAME, TEXT, Refusal, _scalar, listing, optional, record
+from .validate import COUNT, FINGERPRINT, GROUPS, METRICS, NAME, TEXT, Refusal, _scalar, listing, optional, record
 
 AGAIN = "run featpipe evaluate again"
 HASH = _scalar("must be 16 lowercase hexadecimal digits", lambda value: isinstance(value, str) and len(value) == 16
@@ -27,7 +27,7 @@ HASH = _scalar("must be 16 lowercase hexadecimal digits", lambda value: isinstan
 PERIOD = record({"period": TEXT, "metrics": METRICS})
 EVALUATION = record({"model": NAME, "table": TEXT, "fitted": HASH, "fingerprint": FINGERPRINT, "by": optional(TEXT),
                      "table_rows": COUNT,
-                     "metrics": METRICS, "periods": listing(PERIOD)})
+                     "metrics": METRICS, "periods": listing(PERIOD)}, {"group_tables": GROUPS})
 
 
 @dataclass(frozen=True)
@@ -40,6 +40,7 @@ class Evaluation:
     table_rows: int  # rows of the table; the metrics count its complete rows
     metrics: dict  # the holdout metrics (featpipe.fitting.metrics.holdout_metrics) over every complete row
     periods: tuple[dict, ...] = ()  # {"period": label, "metrics": {...}} in period order
+    group_tables: dict = field(default_factory=dict)  # featpipe.fitting.groups tables of the spec's group columns
 
 
 def evaluations_folder(fitted_path: Path) -> Path:
@@ -52,7 +53,10 @@ def evaluation_path(fitted_path: Path, table: str) -> Path:
 
 
 def to_yaml(evaluation: Evaluation) -> str:
-    return yaml.safe_dump(_plain(asdict(evaluation)), sort_keys=False, allow_unicode=True, width=100)
+    data = asdict(evaluation)
+    if not data["group_tables"]:
+        del data["group_tables"]  # an evaluation without groups writes the file it always did
+    return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 
 def from_yaml(text: str, source: str) -> Evaluation:

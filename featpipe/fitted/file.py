@@ -82,6 +82,8 @@ class FittedModel:
     linear_predictor: Profile | None = None
     metrics: dict = field(default_factory=dict)
     crossval: dict = field(default_factory=dict)  # k-fold cross-validation (featpipe.fitting.crossval); empty without folds
+    input_profiles: dict = field(default_factory=dict)  # featpipe.fitting.inputs: NULLs and text levels of the columns read
+    group_tables: dict = field(default_factory=dict)  # featpipe.fitting.groups tables on the holdout; empty without groups
     warnings: tuple[str, ...] = ()
     depends_on: dict = field(default_factory=dict)  # compiler.fit_dependencies at the fit, to name what changed since
     format: int = FORMAT_VERSION
@@ -113,6 +115,10 @@ def to_yaml(fitted: FittedModel) -> str:
     for term in data["terms"]:  # only a learned term has the key: other fits keep their bytes
         if term["learned"] is None:
             del term["learned"]
+    if not data["group_tables"]:
+        del data["group_tables"]  # so does a fit without groups
+    if not data["input_profiles"]:
+        del data["input_profiles"]  # files fitted before input profiles were recorded read back the same
     return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 
@@ -245,7 +251,7 @@ def _same(was, now) -> bool:
 
 
 # Dependencies `compiler.fit_dependencies` writes only when the spec sets them.
-WHEN_SET = ("power", "folds", "errors")
+WHEN_SET = ("power", "folds", "errors", "groups")
 
 # Spec fields that map term names to a setting, and how a reason names the setting.
 PER_TERM = {"expect": "expected sign", "step": "step", "notes": "note"}

@@ -236,6 +236,14 @@ CROSSVAL = record(
      "mean": mapping(NAME, NUMBER), "sd": mapping(NAME, NUMBER)},
     {"l2": record({"grid": listing(NUMBER), "deviance": listing(NUMBER), "chosen": NUMBER})},
 )
+# featpipe.fitting.groups: per group column, its groups (a group under 30 rows gives its rows only).
+GROUP = record({"group": optional(TEXT), "rows": COUNT, "too_small": FLAG}, {
+    "mean_observed": NUMBER, "mean_predicted": NUMBER, "observed_to_predicted": OPTIONAL_NUMBER, "events": COUNT,
+    "flagged_share": NUMBER, "auc": OPTIONAL_NUMBER, "flagged_ratio": OPTIONAL_NUMBER, "unflagged_ratio": OPTIONAL_NUMBER,
+})
+GROUPS = mapping(NAME, listing(GROUP))
+# featpipe.fitting.inputs: per input column a term reads, its NULLs on the training rows and (text) the levels seen.
+INPUT_PROFILES = record({"rows": COUNT, "columns": mapping(NAME, record({"nulls": COUNT}, {"levels": optional(listing(TEXT))}))})
 # compiler.fit_dependencies as written; files fitted before a dependency was recorded lack it.
 DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "input": NAME, "key": NAME, "target": NAME, "family": FAMILY, "power": TWEEDIE_POWER, "offset": optional(TEXT), "weights": WEIGHTS,
@@ -243,6 +251,7 @@ DEPENDS_ON = record({"terms": mapping(NAME, FINGERPRINT)}, {
     "errors": either(one_of("robust"), record({"cluster": NAME})),
     "trials": NAME,
     "expect": mapping(NAME, one_of(*EXPECTATIONS)), "step": mapping(NAME, NUMBER), "notes": mapping(NAME, TEXT),
+    "groups": listing(NAME),
 })
 FORMAT_VERSION = 1  # the format of fitted files this featpipe writes and reads
 FORMAT = one_of(FORMAT_VERSION)
@@ -251,7 +260,9 @@ FITTED = record(
      "link": one_of(*dict.fromkeys(LINKS.values())), "offset": optional(TEXT), "weights": WEIGHTS, "holdout": HOLDOUT,
      "threshold": NUMBER, "penalty": PENALTY, "columns": mapping(NAME, SQL_TYPE), "rows": ROWS, "fit": FIT,
      "terms": listing(TERM), "depends_on": DEPENDS_ON},
-    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "warnings": listing(TEXT), "format": FORMAT},
+    {"linear_predictor": optional(PROFILE), "metrics": METRICS, "crossval": CROSSVAL, "input_profiles": INPUT_PROFILES,
+     "group_tables": GROUPS, "warnings": listing(TEXT),
+     "format": FORMAT},
 )
 
 

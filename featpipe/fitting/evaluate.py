@@ -30,6 +30,8 @@ from ..sqlgen.batches import (
     periods_query,
     row_count_query,
 )
+from ..sqlgen.metrics import scored_holdout
+from .groups import group_tables
 from .metrics import holdout_metrics
 
 
@@ -57,6 +59,9 @@ def evaluate(project: Project, model: str, table: str, by: str | None = None,
         engine.create_table(scratch, evaluation_query(compiled, project.inputs[fitted.input], table, period, periods))
         try:
             evaluation = _measure(engine, fitted, compiled.layout, scratch, table, by, periods, file_hash(path))
+            evaluation = replace(evaluation, group_tables=group_tables(
+                engine, scored_holdout(replace(compiled.layout, table=scratch), fitted.coefficients), table,
+                compiled.layout.key, compiled.spec.groups, fitted.family, fitted.threshold))
         finally:
             engine.drop_table(scratch)
     target = evaluation_path(path, table)

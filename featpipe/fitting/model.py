@@ -25,6 +25,8 @@ from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor, scored_holdout
 from ..sqlgen.trials import as_trials
 from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
+from .groups import group_tables
+from .inputs import input_profiles
 from .metrics import holdout_metrics, scored_rows_metrics, training_profiles
 
 if TYPE_CHECKING:
@@ -91,6 +93,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
                                   power=spec.power)
     intercept, *slopes = glm.coefficients
     by_column = dict(zip(fit_layout.terms, slopes, strict=True))
+    declared = compiled.project.inputs[spec.input].columns
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     training_sd = {name: training.sd for name, training in zip(fit_layout.terms, glm.rows.term_profiles, strict=True)}
     for term in model.terms:
@@ -144,6 +147,10 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
         crossval=cross_validation(engine, fit_layout, spec, penalty, l2_choice) if spec.folds else {},
+        input_profiles=input_profiles(engine, spec.input, layout.key, spec.holdout,
+                                      {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})}),
+        group_tables=group_tables(engine, scored_holdout(fit_layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
+                            spec.threshold),
         warnings=tuple(glm.warnings),
         depends_on=model.dependencies,
     )

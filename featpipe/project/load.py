@@ -124,6 +124,7 @@ class ModelSpec:
     errors: str = "model"  # "model", "robust" (sandwich, HC1) or "cluster" (sandwich over clusters of `cluster`)
     cluster: str | None = None  # the column whose values group rows into clusters, with errors: cluster
     trials: str | None = None  # binomial successes (the target) out of this many trials per row
+    groups: tuple[str, ...] = ()  # input columns whose groups the report tabulates; never terms
     document: YamlDocument | None = field(default=None, compare=False, repr=False)
 
     def at(self, path: tuple, message: str, **kwargs) -> Diagnostic:
@@ -340,6 +341,7 @@ def is_sql_type(kind: str) -> bool:
 MODEL_KEYS = {
     "input", "target", "family", "offset", "weights", "terms", "penalty",
     "holdout", "folds", "threshold", "expect", "step", "notes", "max_dropped", "power", "errors", "trials",
+    "groups",
 }
 MAX_FOLDS = 20
 
@@ -465,6 +467,7 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         diagnostics.append(document.at(("errors",), "errors: robust sums each row's own score, but a frequency-weighted row "
                                                     "stands for several rows: use errors: {cluster: c} with a column "
                                                     "that groups them, or variance weights"))
+    groups = _groups(document, data.get("groups"), columns, input_name, target, diagnostics)
 
     if len(diagnostics) > before:
         return None
@@ -472,8 +475,25 @@ def _model(file: Path, root: Path, inputs: dict[str, InputSpec], diagnostics) ->
         name=name, display=display, input=input_name, target=target, family=family, terms=tuple(terms),
         offset=offset, weights=weights, penalty=penalty, holdout=holdout, folds=folds, threshold=threshold,
         expect=expect, step=step, notes=notes, max_dropped=max_dropped, weight_kind=weight_kind, power=power, document=document,
-        errors=errors, cluster=cluster, trials=trials,
+        errors=errors, cluster=cluster, trials=trials, groups=groups,
     )
+
+
+def _groups(document, data, columns: dict[str, str], input_name: str, target: str, diagnostics) -> tuple[str, ...]:
+    """`groups: [column, ...]`: distinct input columns other than the target, whose groups are tabulated."""
+    if data is None:
+        return ()
+    if not isinstance(data, list) or not all(isinstance(name, str) for name in data):
+        diagnostics.append(document.at(("groups",), "groups must be a list of input column names, e.g. [region]"))
+        return ()
+    for index, name in enumerate(data):
+        if columns and name not in columns:
+            diagnostics.append(document.at(("groups", index), f"group column '{name}' is not a column of input '{input_name}'"))
+        elif name == target:
+            diagnostics.append(document.at(("groups", index), f"'{name}' is the model's target; it cannot also be a group column"))
+        elif name in data[:index]:
+            diagnostics.append(document.at(("groups", index), f"group column '{name}' is listed twice"))
+    return tuple(data)
 
 
 def _out_of_time(document, data: dict, columns: dict[str, str], input_name: str, diagnostics) -> Holdout:

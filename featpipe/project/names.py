@@ -97,6 +97,11 @@ def psi_column(name: str) -> str:
     return _drift_column(name, "psi")
 
 
+def unseen_column(name: str) -> str:
+    """Rows of the batch whose text column `name` holds a level never seen in training."""
+    return _drift_column(name, "unseen")
+
+
 def _drift_column(name: str, what: str) -> str:
     return f"{name}{DRIFT_SEPARATOR}{what}"
 

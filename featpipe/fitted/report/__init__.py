@@ -21,6 +21,7 @@ from ...engines.compute import Progress, connect, prepare_inputs
 from ...project import Project
 from .. import FittedModel, file_hash
 from ..current import refuse_if_stale
+from ..drift_history import DriftHistory, history_path, read_history
 from ..evaluations import read_evaluations
 from ..scoring import load_fitted
 from .compare import check_comparable, compare
@@ -98,8 +99,14 @@ def _build(engine: Engine, project: Project, fitted: FittedModel, other: FittedM
         warnings=warnings,
         other_warnings=other_warnings,
         evaluations=read_evaluations(project.fitted_path(fitted.model)),
+        drift_history=_history(project, fitted.model),
     )
     return render_report(data, sources, comparison)
+
+
+def _history(project: Project, model: str) -> DriftHistory | None:
+    found = read_history(history_path(project.fitted_path(model)), model)
+    return found if found.rows else None
 
 
 def _warnings(fitted: FittedModel, stale: tuple[str, ...], train_rows_now: int) -> tuple[str, ...]:

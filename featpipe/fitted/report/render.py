@@ -17,9 +17,10 @@ from pygments.formatters import HtmlFormatter
 from pygments.lexers import SqlLexer
 
 from .. import FittedModel
+from ..drift_history import DriftHistory
 from ..evaluations import Evaluation, stability_row
 from ..notes import figure
-from . import plots, readings
+from . import groups, history, plots, readings
 from .compare import Comparison, coefficient_count
 from .data import INTEGER, LEVELS, ReportData, roc_points
 
@@ -102,6 +103,7 @@ class Sources:
     warnings: tuple[str, ...]
     other_warnings: tuple[str, ...] = ()
     evaluations: tuple[Evaluation, ...] = ()  # fitted/MODEL.evaluations/*.yaml
+    drift_history: DriftHistory | None = None  # fitted/MODEL.drift.yaml
 
 
 def render_report(data: ReportData, sources: Sources, comparison: Comparison | None) -> str:
@@ -134,6 +136,12 @@ def render_report(data: ReportData, sources: Sources, comparison: Comparison | N
         "gains_columns": GAINS,
         "cautions_reading": readings.cautions(fitted, data.inputs),
         "cautions": CAUTIONS,
+        "group_tables": groups.group_tables(fitted, sources.evaluations, sources.fitted_hash),
+        "group_reading": groups.reading(fitted),
+        "group_columns": groups.COLUMNS,
+        "history_svg": Markup(history.history_plot(sources.drift_history, "drift-history")) if sources.drift_history else None,
+        "history_rows": history.history_rows(sources.drift_history) if sources.drift_history else [],
+        "history_columns": history.COLUMNS,
         "pygments_css": Markup(formatter.get_style_defs(".sql")),
         "curves_json": Markup(_curves_json(data)),
         "curves_id": CURVES_ID,
