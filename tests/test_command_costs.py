@@ -1,21 +1,25 @@
-"""Work the commands no longer do: no hash per row when nothing is held out, and no separate profile scan
-when a fit sums its statistics in SQL (PostgreSQL, Spark, `source="sql"`).
+"""Work the commands no longer do: no hash per row when nothing is held out, no separate profile scan
+when a fit sums its statistics in SQL (PostgreSQL, Spark, `source="sql"`), no scipy.stats import to fit.
 
 References: the rows a hash split holds out are recomputed with Python's hashlib (MD5, RFC 1321); the
 coefficients come from statsmodels' GLM on the same rows; the profile is compared with the one the
-separate profile query returns on the same engine (DuckDB, PostgreSQL), exactly. The reads of the
-design table are counted by wrapping the engine, not taken from featpipe's own counter.
+separate profile query returns on the same engine (DuckDB, PostgreSQL), exactly; p-values and
+intervals with scipy.stats' distributions, exactly. The reads of the design table are counted by
+wrapping the engine, not taken from featpipe's own counter.
 """
 
 from __future__ import annotations
 
 import hashlib
+import os
+import subprocess
+import sys
 
 import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from conftest import write_project
+from conftest import REPO, copy_demo, write_project
 from sqlglot import exp
 
 from featpipe import api
@@ -143,3 +147,24 @@ def test_the_profile_from_the_first_pass_equals_the_profile_query(engine_name, r
         np.testing.assert_array_equal(mine.score, theirs.score)
         np.testing.assert_array_equal(mine.xtwx, theirs.xtwx)
     assert profile.rows == ROWS
+
+
+def test_a_fit_does_not_import_scipy_stats_and_its_figures_are_scipy_stats_own(tmp_path):
+    project = copy_demo("lease_default", tmp_path)
+    script = ("import sys; from featpipe import api; api.fit(api.load_project(sys.argv[1]), ['default_risk']); "
+              "print(sorted(name for name in sys.modules if name.startswith('scipy.stats')))")
+    environment = {**os.environ, "PYTHONPATH": str(REPO)}
+    loaded = subprocess.run([sys.executable, "-c", script, str(project)], capture_output=True, text=True, env=environment, check=True)
+    assert loaded.stdout.strip() == "[]"
+    from scipy import stats
+
+    from featpipe.glm.inference import wald
+
+    coef, covariance = np.array([0.3, -1.2, 4.0]), np.array([[0.04, 0.01, 0.0], [0.01, 0.09, 0.02], [0.0, 0.02, 0.25]])
+    stderr = np.sqrt(np.diag(covariance))
+    z_test = wald(coef, covariance, get_family("binomial"), df_residual=17)  # z: the normal distribution
+    np.testing.assert_array_equal(z_test.p_value, 2.0 * stats.norm.sf(np.abs(coef / stderr)))
+    np.testing.assert_array_equal(z_test.ci_high, coef + stats.norm.ppf(0.975) * stderr)
+    t_test = wald(coef, covariance, get_family("gaussian"), df_residual=17)  # t with 17 df
+    np.testing.assert_array_equal(t_test.p_value, 2.0 * stats.t.sf(np.abs(coef / stderr), 17))
+    np.testing.assert_array_equal(t_test.ci_low, coef - stats.t.ppf(0.975, 17) * stderr)
