@@ -49,7 +49,8 @@ def _class_covariance(totals, products, rows: int) -> np.ndarray:
 def auc_interval(sums: RankSums, level: float = LEVEL) -> tuple[float, float] | None:
     """The normal-approximation interval AUC +- z sqrt(DeLong variance), cut to [0, 1]; None when the
     variance is not defined (fewer than two rows in a class)."""
-    from scipy.special import ndtri  # what scipy.stats' norm.ppf calls, without importing scipy.stats
+    # scipy.stats' norm.ppf is scipy.special's ndtri; importing scipy.stats itself takes seconds
+    from scipy.special import ndtri
 
     covariance = auc_covariance(sums)
     if covariance is None:
@@ -74,7 +75,8 @@ class PairedAuc:
 def paired_test(sums: RankSums) -> PairedAuc | None:
     """The test for the first two scores of `sums`; None when the difference has no variance (fewer
     than two rows in a class, or two scores that order the rows alike)."""
-    from scipy.special import ndtr  # norm.sf(z) is ndtr(-z) in scipy.stats
+    # scipy.stats' norm.sf(z) is scipy.special's ndtr(-z)
+    from scipy.special import ndtr
 
     covariance = auc_covariance(sums)
     if covariance is None:
