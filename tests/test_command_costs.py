@@ -3,7 +3,7 @@ when a fit sums its statistics in SQL (PostgreSQL, Spark, `source="sql"`), no sc
 
 References: the rows a hash split holds out are recomputed with Python's hashlib (MD5, RFC 1321); the
 coefficients come from statsmodels' GLM on the same rows; the profile is compared with the one the
-separate profile query returns on the same engine (DuckDB, PostgreSQL), exactly; p-values and
+separate profile query returns on the same engine (DuckDB, PostgreSQL, Spark), exactly; p-values and
 intervals with scipy.stats' distributions, exactly. The reads of the design table are counted by
 wrapping the engine, not taken from featpipe's own counter.
 """
@@ -129,10 +129,10 @@ def test_postgresql_fit_reads_the_design_table_once_less(postgres_engine, tmp_pa
     np.testing.assert_allclose(fit.estimates, reference.params, rtol=1e-8)
 
 
-@pytest.mark.parametrize("engine_name", ["duckdb", "postgres"])
+@pytest.mark.parametrize("engine_name", ["duckdb", "postgres", pytest.param("spark", marks=pytest.mark.spark)])
 def test_the_profile_from_the_first_pass_equals_the_profile_query(engine_name, request, tmp_path):
     frame, x, _ = design_rows("poisson", seed=9)
-    engine = DuckDBEngine(tmp_path / "design.duckdb") if engine_name == "duckdb" else request.getfixturevalue("postgres_engine")
+    engine = DuckDBEngine(tmp_path / "design.duckdb") if engine_name == "duckdb" else request.getfixturevalue(f"{engine_name}_engine")
     load(engine, frame, tmp_path)
     scaling = Scaling(x[:100].mean(axis=0), x[:100].std(axis=0))
     source = SqlAggregateSource(engine, LAYOUT, get_family("poisson"), scaling)
