@@ -4,9 +4,8 @@ on a design table where the data is and `Glm.fit_arrays` on in-memory arrays. Ea
 
 Both run the same steps: a training profile (counts, domain checks, term means and sds), IRLS over a
 statistics source for the model and its intercept-only null model together, then inference on the
-original scale of the terms. The SQL source reads the profile with one aggregate query first; a batch
-source (streamed or in memory) gathers it during its first IRLS pass and the checks run before that
-pass's statistics are used.
+original scale of the terms. Every source gathers the profile during its first IRLS pass (the SQL
+source in the same aggregate query), and the checks run before that pass's statistics are used.
 
 IRLS works on standardized terms, centered and scaled by the mean and population sd of the sample
 (close to the training ones), which keeps X'WX well conditioned; the penalty is defined on terms
@@ -38,13 +37,7 @@ from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..project import Penalty
 from ..project.names import INTERCEPT
-from ..sqlgen.statistics import (
-    TrainingProfile,
-    design_columns_query,
-    profile_query,
-    read_profile,
-    target_counts_query,
-)
+from ..sqlgen.statistics import TrainingProfile, design_columns_query
 from ..sqlgen.trials import trial_counts_query
 from . import problems
 from .dispersion import estimated_dispersion, overdispersion_warning, pearson_ratio
@@ -136,13 +129,10 @@ class Glm:
         passes = 1 if ordered else 0  # ORDER BY key reads every row once
         scaling = Scaling.of(sample.terms)
         data = DataNames(layout.terms, f"design table {layout.table}", layout.target, layout.weight)
-        known = None  # a streamed source gathers the profile in its first pass
         if streamed:
             statistics: StatisticsSource = BatchSource("stream", engine_batches(engine, layout, self.batch_rows), family, scaling)
         else:
             statistics = SqlAggregateSource(engine, layout, family, scaling)
-            known, read = _profile_in_sql(engine, layout, family, scaling)
-            passes += read
         # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
         filled = len(sample.y) >= self.sample_rows
         warm = BatchSource("sample", in_memory_batches(sample, self.batch_rows), family, scaling) if filled else None
@@ -154,7 +144,7 @@ class Glm:
             pairs = np.array([[float(v) for v in row] for row in engine.fetch(trial_counts_query(layout))]).reshape(-1, 3)
             passes += 1
         return self._solve(
-            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, known=known, passes=passes,
+            _Problem(statistics=statistics, family=family, data=data, sample=sample, scaling=scaling, warm=warm, passes=passes,
                      middle=middle, trial_pairs=pairs)
         )
 
@@ -183,7 +173,7 @@ class Glm:
             pairs, counts = np.unique(np.column_stack([rows.y, rows.weight]), axis=0, return_counts=True)
             pairs = np.column_stack([pairs, counts.astype(float)])
         return self._solve(
-            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, known=None, passes=0,
+            _Problem(statistics=statistics, family=family, data=data, sample=rows, scaling=scaling, warm=None, passes=0,
                      trial_pairs=pairs)
         )
 
@@ -192,11 +182,7 @@ class Glm:
         starts = _starts(problem)
         if problem.warm is not None:
             starts = self._warm_starts(problem, starts)
-        first = None
-        if problem.known is None:
-            first, profile, constant = problem.statistics.evaluate_with_profile(starts, problem.data.terms)
-        else:
-            profile, constant = problem.known
+        first, profile, constant = problem.statistics.evaluate_with_profile(starts, problem.data.terms)
         if self.frequency_weights:
             profile = as_repeated_rows(profile, problem.data.where)
         checked = profile
@@ -241,7 +227,6 @@ class _Problem:
     sample: Batch  # rows in memory: the first training rows, or all of them for arrays
     scaling: Scaling  # the working coordinates of IRLS, from the sample
     warm: BatchSource | None  # the sample as a source, when fitting it first gives a warm start
-    known: tuple[TrainingProfile, float] | None  # profile and poisson constant, unless the first pass gathers them
     passes: int  # full reads of the training rows before IRLS
     middle: Callable[[tuple[int, ...], np.ndarray], Middle] | None = None  # the sandwich's middle term at working coefficients
     trial_pairs: np.ndarray | None = None  # grouped binomial: (proportion, trials, rows) per distinct pair
@@ -259,20 +244,6 @@ class _Solution:
     warnings: tuple[str, ...]  # from the checks of the training rows
     variance_weighted: bool = False  # weights that weigh precision rather than count rows
     errors: str = "model"  # the standard errors asked for (see `sandwich`)
-
-
-def _profile_in_sql(engine: Engine, layout: DesignLayout, family: Family, scaling: Scaling) -> tuple[tuple[TrainingProfile, float], int]:
-    """The training profile and the log-likelihood constant (poisson, gamma) from aggregate queries; and how
-    many full reads that took."""
-    shifts = dict(zip(layout.terms, scaling.centers.tolist(), strict=True))
-    profile = read_profile(engine.fetch(profile_query(layout, shifts))[0], layout, shifts)
-    constant = getattr(family, "likelihood_constant", None)
-    if constant is None:
-        return (profile, 0.0), 1
-    counts = sorted((float(value), float(weight)) for value, weight in engine.fetch(target_counts_query(layout)))
-    values = np.array([value for value, _ in counts])
-    weights = np.array([weight for _, weight in counts])
-    return (profile, float(weights @ constant(values))), 2
 
 
 def _starts(problem: _Problem) -> list[Request]:

@@ -24,11 +24,14 @@ from scipy.linalg.blas import dsyrk
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
+from ..sqlgen.first_pass import first_pass_query, profile_width
 from ..sqlgen.statistics import (
     ModelRequest,
     TrainingProfile,
     design_columns_query,
+    read_profile,
     statistics_query,
+    target_counts_query,
     term_profile,
     upper_pairs,
 )
@@ -85,6 +88,10 @@ class StatisticsSource(Protocol):
 
     def evaluate(self, requests: Sequence[Request]) -> list[Statistics]: ...
 
+    def evaluate_with_profile(self, requests: Sequence[Request], names: Sequence[str]) -> tuple[list[Statistics], TrainingProfile, float]:
+        """The first pass: statistics, the training profile and the log-likelihood constant (0 if none)."""
+        ...
+
 
 class SqlAggregateSource:
     name = "sql"
@@ -96,14 +103,36 @@ class SqlAggregateSource:
         self.passes = 0
 
     def evaluate(self, requests: Sequence[Request]) -> list[Statistics]:
-        models = [
-            ModelRequest(tuple(self.layout.terms[i] for i in request.terms), tuple(request.beta.tolist()))
-            for request in requests
-        ]
-        query = statistics_query(self.layout, self.family.name, self.centers, self.scales, models,
+        query = statistics_query(self.layout, self.family.name, self.centers, self.scales, self._models(requests),
                                  eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA, power=self.family.power)
         (row,) = self.engine.fetch(query)
         self.passes += 1
+        return self._read(row, requests)
+
+    def evaluate_with_profile(self, requests: Sequence[Request], names: Sequence[str]) -> tuple[list[Statistics], TrainingProfile, float]:
+        """Statistics and the training profile (shifted by the centers) from one query, as a batch source
+        gathers them in one pass; for poisson and gamma also the log-likelihood constant, from the
+        weight per distinct target value (one more read: its function has no portable SQL)."""
+        query = first_pass_query(self.layout, self.centers, self.family.name, self.centers, self.scales, self._models(requests),
+                                 eta_limit=self.family.eta_limit, boundary_eta=BOUNDARY_ETA, power=self.family.power)
+        (row,) = self.engine.fetch(query)
+        self.passes += 1
+        width = profile_width(self.layout)
+        profile = read_profile(row[:width], self.layout, self.centers)
+        constant = getattr(self.family, "likelihood_constant", None)
+        if constant is None:
+            return self._read(row[width:], requests), profile, 0.0
+        counts = sorted((float(value), float(weight)) for value, weight in self.engine.fetch(target_counts_query(self.layout)))
+        self.passes += 1
+        values = np.array([value for value, _ in counts])
+        weights = np.array([weight for _, weight in counts])
+        return self._read(row[width:], requests), profile, float(weights @ constant(values))
+
+    def _models(self, requests: Sequence[Request]) -> list[ModelRequest]:
+        return [ModelRequest(tuple(self.layout.terms[i] for i in request.terms), tuple(request.beta.tolist())) for request in requests]
+
+    def _read(self, row: Sequence, requests: Sequence[Request]) -> list[Statistics]:
+        """One `Statistics` per request from the row of `statistics_query`."""
         pearson = [np.nan if value is None else float(value) for value in row[len(row) - len(requests):]]
         unpacked = _unpack(row[: len(row) - len(requests)], [len(request.terms) + 1 for request in requests])
         return [replace(statistics, pearson=chi2) for statistics, chi2 in zip(unpacked, pearson, strict=True)]

@@ -44,7 +44,10 @@ def holdout_flag(key: str, holdout: Holdout) -> exp.Expression:
         else:
             start, period = number(holdout.start), double(column(holdout.column))
         return exp.Coalesce(this=exp.GTE(this=period, expression=start), expressions=[exp.true()])
-    return exp.LT(this=hash_digits(key, holdout.salt), expression=exp.Literal.string(holdout_threshold(holdout.fraction)))
+    threshold = holdout_threshold(holdout.fraction)
+    if threshold == "0" * HASH_DIGITS:  # no digits fall below it: FALSE, without an MD5 per row
+        return exp.false()
+    return exp.LT(this=hash_digits(key, holdout.salt), expression=exp.Literal.string(threshold))
 
 
 def term_value(term: Term, source: InputSpec) -> exp.Expression:

@@ -200,6 +200,7 @@ def statistics_query(
     boundary_eta: float,
     group: exp.Expression | None = None,
     power: float | None = None,
+    carry: Sequence[str] = (),
 ) -> exp.Select:
     """One pass computing, for each model: deviance, boundary rows, score (q), X'WX upper triangle.
 
@@ -210,7 +211,8 @@ def statistics_query(
     standardized as (x - centers[t]) * (1 / scales[t]). The linear predictor is clamped to
     [-eta_limit, eta_limit] before EXP (None: no clamp), and a row whose |eta| exceeds `boundary_eta`
     (binomial; poisson: eta < -boundary_eta) counts as fitted at the boundary; glm.families sets both.
-    `power` is the tweedie variance power (see `families`).
+    `power` is the tweedie variance power (see `families`). `carry` names design columns passed through
+    every level unchanged, so a caller can add its own sums over them to the same pass (`first_pass`).
     """
     if family not in FAMILIES:
         raise ValueError(f"unknown family {family}")
@@ -231,6 +233,8 @@ def statistics_query(
         for t in terms
     ]
     carried += [x[t] for t in terms]
+    level += [column(name) for name in carry]
+    carried += list(carry)
     offset = [_value(layout.offset)] if layout.offset else []
     query = _training(layout, level + ([alias(offset[0], "_o")] if offset else []))
 
@@ -276,7 +280,7 @@ def statistics_query(
             alias(pearson, f"_P{index}"),
         ]
     grouping = [column("_group")] if group is not None else []
-    query = _wrap(query, grouping + [column(x[t]) for t in terms] + per_row, "_working")
+    query = _wrap(query, grouping + [column(x[t]) for t in terms] + [column(name) for name in carry] + per_row, "_working")
 
     # Level 4: the sums; each model's Pearson chi2 last, after every model's block.
     sums: list[exp.Expression] = []
