@@ -130,6 +130,10 @@ def suggest(
     if spec.penalty.active:
         raise FeatpipeError(f"{spec.display}: the model is penalized; score tests need a plain maximum-likelihood fit "
                             "(set penalty l2 and l1 to 0, fit, then suggest)")
+    learned = [term.name for term in model.terms if term.learned]
+    if learned:
+        raise FeatpipeError(f"{spec.display}: the model has learned terms ({', '.join(learned)}), whose columns suggest's "
+                            "score tests do not yet expand; try candidates on a spec without them")
     offset_columns = {node.name for node in model.offset.find_all(exp.Column)} if model.offset is not None else set()
     numeric = numeric_columns(spec, source, offset_columns)
     texts = text_columns(spec, source, offset_columns)
