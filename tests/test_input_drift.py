@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from conftest import copy_demo, run_featpipe
-from test_drift import fresh_leases, lease_terms, numpy_psis
+from test_drift import fresh_leases, lease_terms, levels_contribution, numpy_psis
 
 from featpipe import api
 from featpipe.engines.duckdb import DuckDBEngine
@@ -103,7 +103,8 @@ def test_a_score_moved_with_rows_far_above_the_training_maximum_does_not_read_st
     assert reading(psi) == STABLE
     # ... but 6.7% of the rows lie above the training maximum and the mean moved: not stable
     terms = lease_terms(frames["tail"])
-    linear = fitted.terms[0].estimate + sum(term.estimate * terms[term.name] for term in fitted.terms[1:])
+    linear = fitted.terms[0].estimate + sum(levels_contribution(frames["tail"]["sector"], term.learned) if term.learned
+                                            else term.estimate * terms[term.name] for term in fitted.terms[1:])
     assert score.above_max_share == pytest.approx(np.mean(linear > fitted.linear_predictor.max), abs=1e-15)
     assert score.above_max_share > 0.06 and score.psi < 0.1
     assert score.reading == MAJOR
