@@ -171,9 +171,15 @@ def levels_psi(levels: pd.Series, learned: dict, train_rows: int) -> float:
 
 
 def levels_contribution(levels: pd.Series, learned: dict) -> np.ndarray:
-    """A LEVELS term's part of the linear predictor: each column's estimate times its indicator."""
-    return sum(item["estimate"] * (levels.isin(learned["pooled"]) if item["label"] == "other" else levels == item["label"])
-               .to_numpy(float) for item in learned["columns"])
+    """A LEVELS term's part of the linear predictor: each column's estimate times its indicator. A level
+    training never saw goes to `other` when the model has that column and is NaN (no prediction, as the
+    scoring SQL gives it) otherwise; a NULL level is NaN (missing)."""
+    has_other = any(item["label"] == "other" for item in learned["columns"])
+    unseen = levels.notna() & ~levels.isin([item["level"] for item in learned["levels"]])
+    pooled = levels.isin(learned["pooled"]) | (unseen if has_other else False)
+    part = sum(item["estimate"] * (pooled if item["label"] == "other" else levels == item["label"]).to_numpy(float)
+               for item in learned["columns"])
+    return np.where(levels.isna() | (unseen & (not has_other)), np.nan, part)
 
 
 def numpy_psi(values: np.ndarray, profile: Profile) -> float:
