@@ -24,6 +24,7 @@ from featpipe import api
 from featpipe.engines.compute import build_designs
 from featpipe.fitted import read_fitted
 from featpipe.fitting.suggest import CAUTION
+from featpipe.errors import FeatpipeError
 from featpipe.fitting.suggest import suggest as suggest_in
 from featpipe.glm.score_test import holm
 from featpipe.project import load_project
@@ -316,3 +317,10 @@ def test_statistics_are_equal_on_duckdb_postgres_and_spark(tmp_path, request, ot
     assert found.keys() == reference.keys() and len(found) > 50
     for name, statistic in reference.items():
         assert found[name] == pytest.approx(statistic, rel=1e-9), name  # DuckDB, the engine statsmodels checks above
+
+
+def test_a_model_with_learned_terms_is_refused_with_a_clear_message(tmp_path):
+    root = copy_demo("fleet_claims", tmp_path)  # claim_frequency has the SPLINE vehicle_age_curve
+    project = load_project(root)
+    with pytest.raises(FeatpipeError, match="learned terms \\(vehicle_age_curve\\)"):
+        api.suggest(project, "claim_frequency", top=10)
