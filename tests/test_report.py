@@ -398,18 +398,8 @@ def test_the_report_data_are_the_same_on_postgresql(demos, postgres_engine):
 def holdout_deviance_residual_deciles(project, fitted, family) -> list[dict]:
     """Deciles of the held-out predictions (numpy on the design table, NTILE's split: larger groups first)
     with statsmodels' deviance residuals (reference library) summarised by numpy's linear percentiles."""
-    # A learned term (vehicle_age_curve, sector_level) is read as its design columns, from the table the
-    # fit expands them into, each with its coefficient.
-    learned = any(term.learned for term in fitted.model_terms)
-    connection = duckdb.connect(str(project.engine.path), read_only=True)
-    try:
-        design = connection.execute(f'SELECT * FROM "design_{fitted.model}{"__columns" if learned else ""}"').df()
-    finally:
-        connection.close()
-    b = {"(intercept)": fitted.terms[0].estimate}
-    for term in fitted.model_terms:
-        b.update({f"_{term.name}__{i}": item["estimate"] for i, item in enumerate(term.learned["columns"], start=1)}
-                 if term.learned else {term.name: term.estimate})
+    # A learned term (vehicle_age_curve, sector_level) is read as its design columns with their coefficients.
+    design, b = fitted_design(project, fitted)
     names = list(b)[1:]
     needed = [fitted.target, *names, *(["_offset"] if fitted.offset else [])]
     rows = design[design["_holdout"].astype(bool) & design[needed].notna().all(axis=1)]
