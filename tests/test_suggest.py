@@ -44,6 +44,14 @@ def _lease_project(tmp_path: Path) -> Path:
     return root
 
 
+def _fleet_project(tmp_path: Path) -> Path:
+    """The fleet demo with the vehicle age as a plain column instead of its spline (suggest refuses learned terms)."""
+    root = copy_demo("fleet_claims", tmp_path)
+    spec = root / "specs" / "claim_frequency.yaml"
+    spec.write_text(spec.read_text(encoding="utf-8").replace("- vehicle_age_curve", "- vehicle_age_years"), encoding="utf-8")
+    return root
+
+
 def _training_frame(root: Path, model: str, key: str, input_name: str, candidates: dict[str, str]) -> pd.DataFrame:
     """The model's training rows from its design table, with each candidate computed by DuckDB from its SQL."""
     project = load_project(root)
@@ -71,10 +79,7 @@ def _training_frame(root: Path, model: str, key: str, input_name: str, candidate
     ids=["binomial", "poisson with offset", "gaussian"],
 )
 def test_score_statistics_equal_statsmodels_score_test(tmp_path, demo, model, key, input_name, family):
-    root = _lease_project(tmp_path) if demo == "lease_default" else copy_demo(demo, tmp_path)
-    if demo == "fleet_claims":  # suggest refuses learned terms: the vehicle age as a plain column instead of its spline
-        spec = root / "specs" / f"{model}.yaml"
-        spec.write_text(spec.read_text(encoding="utf-8").replace("- vehicle_age_curve", "- vehicle_age_years"), encoding="utf-8")
+    root = _lease_project(tmp_path) if demo == "lease_default" else _fleet_project(tmp_path)
     project = load_project(root)
     api.fit(project, [model])
     report = api.suggest(project, model, top=10)
@@ -306,8 +311,9 @@ def _statistics_on(engine, root: Path, model: str) -> dict[str, float]:
 
 @pytest.mark.parametrize("other", ["postgres", pytest.param("spark", marks=pytest.mark.spark)])
 def test_statistics_are_equal_on_duckdb_postgres_and_spark(tmp_path, request, other):
-    root = copy_demo("fleet_claims", tmp_path)
+    root = _fleet_project(tmp_path)
     project = load_project(root)
+    api.fit(project, ["claim_frequency"])
     from featpipe.engines.compute import connect
 
     with connect(project) as engine:
