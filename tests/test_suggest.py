@@ -9,7 +9,6 @@ we wrote; PostgreSQL and Spark for the same statistics as DuckDB.
 from __future__ import annotations
 
 import json
-import textwrap
 from pathlib import Path
 
 import duckdb

@@ -23,7 +23,6 @@ from sqlglot import exp
 from sqlglot.optimizer.annotate_types import annotate_types
 from sqlglot.optimizer.qualify import qualify
 
-from .dates import PART_FUNCTIONS
 from .parse import TERM_DIALECT
 
 ARITHMETIC = (

@@ -13,7 +13,6 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
-import yaml
 
 from ..atomic import write_text_atomic
 from ..errors import FeatpipeError
@@ -21,12 +20,12 @@ from ..project import Project
 from ..project.yamlfile import read_text
 from . import file_hash
 from .drift import SEVERITY, DriftReport
-from .file import SAFE_LOADER, _plain
-from .validate import COUNT, NAME, NUMBER, OPTIONAL_NUMBER, TEXT, Refusal, _scalar, listing, one_of, optional, record
+from .file import dump_record, load_record
+from .validate import COUNT, NAME, NUMBER, OPTIONAL_NUMBER, TEXT, check_record, scalar, listing, one_of, optional, record
 
 PERIOD_PATTERN = re.compile(r"^\d{4}-(0[1-9]|1[0-2])(-(0[1-9]|[12]\d|3[01]))?\Z")
 AGAIN = "remove the file (or the row) and run featpipe drift --history again for each period"
-PERIOD = _scalar("must be a month like 2026-06 or a day like 2026-06-30",
+PERIOD = scalar("must be a month like 2026-06 or a day like 2026-06-30",
                  lambda value: isinstance(value, str) and PERIOD_PATTERN.match(value) is not None)
 ROW = record({
     "period": PERIOD, "table": TEXT, "fitted": TEXT, "rows": COUNT, "score_psi": NUMBER, "score_shift": OPTIONAL_NUMBER,
@@ -75,20 +74,13 @@ def with_row(history: DriftHistory, row: dict) -> DriftHistory:
 
 
 def to_yaml(history: DriftHistory) -> str:
-    return yaml.safe_dump(_plain({"model": history.model, "rows": list(history.rows)}), sort_keys=False,
-                          allow_unicode=True, width=100)
+    return dump_record({"model": history.model, "rows": list(history.rows)})
 
 
 def from_yaml(text: str, source: str) -> DriftHistory:
     """The history in `text`, every value checked and the rows' order verified; `source` names the file."""
-    try:
-        data = yaml.load(text, Loader=SAFE_LOADER)
-    except yaml.YAMLError:
-        raise FeatpipeError(f"{source}: not a drift history featpipe can read (a YAML error); {AGAIN}") from None
-    try:
-        HISTORY(data, "")
-    except Refusal as refusal:
-        raise FeatpipeError(f"{source}: {refusal.problem}; {AGAIN}") from None
+    data = load_record(text, source, "a drift history", AGAIN)
+    check_record(data, HISTORY, source, AGAIN)
     periods = [row["period"] for row in data["rows"]]
     if periods != sorted(set(periods)):
         raise FeatpipeError(f"{source}: the rows are not in time order, one per period; {AGAIN}")

@@ -12,17 +12,16 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
-import yaml
 
 from ..atomic import write_text_atomic
 from ..errors import FeatpipeError
 from ..project.names import NAME_PATTERN
 from ..project.yamlfile import read_text
-from .file import SAFE_LOADER, _plain
-from .validate import COUNT, FINGERPRINT, GROUPS, METRICS, NAME, TEXT, Refusal, _scalar, listing, optional, record
+from .file import dump_record, load_record
+from .validate import COUNT, FINGERPRINT, GROUPS, METRICS, NAME, TEXT, check_record, scalar, listing, optional, record
 
 AGAIN = "run featpipe evaluate again"
-HASH = _scalar("must be 16 lowercase hexadecimal digits", lambda value: isinstance(value, str) and len(value) == 16
+HASH = scalar("must be 16 lowercase hexadecimal digits", lambda value: isinstance(value, str) and len(value) == 16
                and all(c in "0123456789abcdef" for c in value))
 PERIOD = record({"period": TEXT, "metrics": METRICS})
 EVALUATION = record({"model": NAME, "table": TEXT, "fitted": HASH, "fingerprint": FINGERPRINT, "by": optional(TEXT),
@@ -56,19 +55,13 @@ def to_yaml(evaluation: Evaluation) -> str:
     data = asdict(evaluation)
     if not data["group_tables"]:
         del data["group_tables"]  # an evaluation without groups writes the file it always did
-    return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
+    return dump_record(data)
 
 
 def from_yaml(text: str, source: str) -> Evaluation:
     """The evaluation in `text`, every value checked first; `source` names the file in messages."""
-    try:
-        data = yaml.load(text, Loader=SAFE_LOADER)
-    except yaml.YAMLError:
-        raise FeatpipeError(f"{source}: not an evaluation file featpipe can read (a YAML error); {AGAIN}") from None
-    try:
-        EVALUATION(data, "")
-    except Refusal as refusal:
-        raise FeatpipeError(f"{source}: {refusal.problem}; {AGAIN}") from None
+    data = load_record(text, source, "an evaluation file", AGAIN)
+    check_record(data, EVALUATION, source, AGAIN)
     if not all(NAME_PATTERN.match(part) for part in data["table"].split(".")):
         raise FeatpipeError(f"{source}: table {data['table']!r} is not a table name; {AGAIN}")
     return Evaluation(**{**data, "periods": tuple(data["periods"])})

@@ -119,6 +119,11 @@ def to_yaml(fitted: FittedModel) -> str:
         del data["group_tables"]  # so does a fit without groups
     if not data["input_profiles"]:
         del data["input_profiles"]  # files fitted before input profiles were recorded read back the same
+    return dump_record(data)
+
+
+def dump_record(data: dict) -> str:
+    """A record featpipe writes (fitted file, evaluation, drift history) as plain, repeatable YAML."""
     return yaml.safe_dump(_plain(data), sort_keys=False, allow_unicode=True, width=100)
 
 
@@ -152,7 +157,7 @@ SAFE_LOADER = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
 def from_yaml(text: str, source: str) -> FittedModel:
     """The fitted model in `text`, every value checked before use and refused if edited by hand
     (featpipe.fitted.validate); `source` names the file in messages."""
-    data = _yaml_data(text, source)
+    data = load_record(text, source, "a fitted file")
     check_values(data, source)
     check_learned_columns(data, text, source)
     fitted = FittedModel(**{
@@ -165,16 +170,18 @@ def from_yaml(text: str, source: str) -> FittedModel:
     return fitted
 
 
-def _yaml_data(text: str, source: str):
+def load_record(text: str, source: str, what: str, again: str = AGAIN):
+    """The YAML in `text`, refused with the line of a syntax error; `what` names the kind of file
+    ("a fitted file"), `source` the file and `again` what to do, in messages."""
     try:
         return yaml.load(text, Loader=SAFE_LOADER)
     except yaml.YAMLError as error:
         mark = getattr(error, "problem_mark", None)
         where = f"YAML error at line {mark.line + 1}" if mark else "YAML error"
         problem = getattr(error, "problem", None) or str(error).splitlines()[0]
-        raise FeatpipeError(f"{source}: not a fitted file featpipe can read ({where}: {problem}); {AGAIN}") from None
+        raise FeatpipeError(f"{source}: not {what} featpipe can read ({where}: {problem}); {again}") from None
     except RecursionError:
-        raise FeatpipeError(f"{source}: not a fitted file featpipe can read (nested too deeply); {AGAIN}") from None
+        raise FeatpipeError(f"{source}: not {what} featpipe can read (nested too deeply); {again}") from None
 
 
 def _profile(data: dict | None) -> Profile | None:

@@ -77,7 +77,7 @@ def _child(path: str, key) -> str:
     return f"{path}[{_shown(key)}]"
 
 
-def _scalar(rule: str, accepts: Callable[[object], bool]) -> Kind:
+def scalar(rule: str, accepts: Callable[[object], bool]) -> Kind:
     def check(value, path: str) -> None:
         if not accepts(value):
             raise Refusal(f"{path} {rule}, not {_shown(value)}")
@@ -105,21 +105,21 @@ def _is_iso_date(value) -> bool:
 
 FINGERPRINT_LENGTH = len(fingerprint_of_sql(""))
 
-NAME = _scalar(NAME_RULE, lambda value: isinstance(value, str) and NAME_PATTERN.match(value) is not None)
-TERM_NAME = _scalar(NAME_RULE, lambda value: value == INTERCEPT or isinstance(value, str) and NAME_PATTERN.match(value) is not None)
-NUMBER = _scalar("must be a finite number", _is_finite)
-RATIO = _scalar("must be a number", lambda value: _is_finite(value) or value in (math.inf, -math.inf))  # exp() may overflow
-COUNT = _scalar("must be a whole number of at least 0", lambda value: isinstance(value, int) and not isinstance(value, bool) and value >= 0)
-TEXT = _scalar("must be text", lambda value: isinstance(value, str))
-FLAG = _scalar("must be true or false", lambda value: isinstance(value, bool))
-FINGERPRINT = _scalar(f"must be {FINGERPRINT_LENGTH} lowercase hexadecimal digits",
+NAME = scalar(NAME_RULE, lambda value: isinstance(value, str) and NAME_PATTERN.match(value) is not None)
+TERM_NAME = scalar(NAME_RULE, lambda value: value == INTERCEPT or isinstance(value, str) and NAME_PATTERN.match(value) is not None)
+NUMBER = scalar("must be a finite number", _is_finite)
+RATIO = scalar("must be a number", lambda value: _is_finite(value) or value in (math.inf, -math.inf))  # exp() may overflow
+COUNT = scalar("must be a whole number of at least 0", lambda value: isinstance(value, int) and not isinstance(value, bool) and value >= 0)
+TEXT = scalar("must be text", lambda value: isinstance(value, str))
+FLAG = scalar("must be true or false", lambda value: isinstance(value, bool))
+FINGERPRINT = scalar(f"must be {FINGERPRINT_LENGTH} lowercase hexadecimal digits",
                       lambda value: isinstance(value, str) and re.fullmatch(f"[0-9a-f]{{{FINGERPRINT_LENGTH}}}", value) is not None)
-SQL_TYPE = _scalar("must be a SQL type such as DOUBLE or VARCHAR", lambda value: isinstance(value, str) and is_sql_type(value))
+SQL_TYPE = scalar("must be a SQL type such as DOUBLE or VARCHAR", lambda value: isinstance(value, str) and is_sql_type(value))
 
 
 def one_of(*allowed) -> Kind:
     rule = f"must be {allowed[0]}" if len(allowed) == 1 else f"must be one of {', '.join(map(str, allowed))}"
-    return _scalar(rule, lambda value: any(value == item and type(value) is type(item) for item in allowed))
+    return scalar(rule, lambda value: any(value == item and type(value) is type(item) for item in allowed))
 
 
 def optional(kind: Kind) -> Kind:
@@ -180,11 +180,11 @@ def record(required: dict[str, Kind], optional_keys: dict[str, Kind] | None = No
 OPTIONAL_NUMBER = optional(NUMBER)
 WEIGHTS = optional(either(NAME, record({"column": NAME, "kind": one_of("frequency")})))
 FAMILY = one_of(*LINKS)
-TWEEDIE_POWER = _scalar("must be a number strictly between 1 and 2", lambda value: _is_finite(value) and 1 < value < 2)
+TWEEDIE_POWER = scalar("must be a number strictly between 1 and 2", lambda value: _is_finite(value) and 1 < value < 2)
 HOLDOUT = record({"salt": TEXT}, {"fraction": NUMBER, "column": NAME,
-                                   "from": _scalar("must be a date like 2025-07-01 or a finite number",
+                                   "from": scalar("must be a date like 2025-07-01 or a finite number",
                                                    lambda value: _is_iso_date(value) or _is_finite(value))})
-PENALTY = record({"l2": _scalar("must be a finite number or cv", lambda value: _is_finite(value) or value == CROSS_VALIDATED),
+PENALTY = record({"l2": scalar("must be a finite number or cv", lambda value: _is_finite(value) or value == CROSS_VALIDATED),
                   "l1": NUMBER})
 PROFILE = record({
     "count": COUNT, "nulls": COUNT, "mean": OPTIONAL_NUMBER, "sd": OPTIONAL_NUMBER, "min": OPTIONAL_NUMBER,
@@ -279,6 +279,15 @@ def check_values(data, source: str) -> None:
         if refusal.shape:
             raise FeatpipeError(f"{source}: not a fitted file featpipe can read ({refusal.problem}); {AGAIN}") from None
         raise FeatpipeError(f"{source}: {refusal.problem}; {AGAIN}") from None
+
+
+def check_record(data, kind: Kind, source: str, again: str) -> None:
+    """Refuse the first key of `data` (a record featpipe wrote, as loaded) that is not of its `kind`;
+    `again` says what to do."""
+    try:
+        kind(data, "")
+    except Refusal as refusal:
+        raise FeatpipeError(f"{source}: {refusal.problem}; {again}") from None
 
 
 def check_integrity(fitted, source: str) -> None:
