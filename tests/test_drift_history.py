@@ -83,6 +83,7 @@ def test_a_run_killed_while_writing_leaves_the_history_as_it_was(lease, monkeypa
 @pytest.mark.parametrize("edit, message", [
     (lambda text: text.replace("score_psi: ", "score_psi: high # ", 1), "rows[0].score_psi must be a finite number"),
     (lambda text: text.replace("2026-05", "2026-09", 1), "the rows are not in time order, one per period"),
+    (lambda text: text.replace("rows:", "rows: [", 1), "not a drift history featpipe can read (YAML error at line "),
 ])
 def test_a_history_edited_by_hand_is_refused_with_the_file_named(lease, edit, message):  # noqa: F811
     root, _ = lease

@@ -183,6 +183,9 @@ def test_evaluation_file_is_deterministic_and_validated_when_read(tmp_path):
     path.write_text(yaml.safe_dump(data, sort_keys=False))
     with pytest.raises(api.FeatpipeError, match=r"risk.evaluations/loans_2026.yaml: periods\[1\].metrics.auc must be a finite number"):
         read_evaluation(path)
+    path.write_text("model: risk\nperiods: [\n")
+    with pytest.raises(api.FeatpipeError, match=r"loans_2026.yaml: not an evaluation file featpipe can read \(YAML error at line 3"):
+        read_evaluation(path)
 
 
 def test_evaluate_refuses_a_stale_fit_and_tables_it_cannot_measure(tmp_path):
