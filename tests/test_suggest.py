@@ -19,6 +19,7 @@ import pytest
 import statsmodels.api as sm
 from conftest import copy_demo, run_featpipe, write_project
 from spline_reference import restricted_cubic_spline
+from test_learned_terms import lease_project
 from statsmodels.stats.multitest import multipletests
 
 from featpipe import api
@@ -75,9 +76,9 @@ def fitted_demos(tmp_path_factory) -> dict[str, Path]:
 
 def _model_design(frame: pd.DataFrame, fitted) -> np.ndarray:
     """The fitted model's design matrix computed by numpy from its training rows (the design table holds a
-    learned term's argument): an intercept, each term's own column, a LEVELS term's indicators (its level's,
-    or `other` for a pooled level) and a SPLINE term's basis (tests/spline_reference.py) from the constants
-    in the fitted file."""
+    learned term's argument): an intercept, each term's own column, and from the constants in the fitted
+    file a LEVELS term's indicators (its level's, or `other` for a pooled level), a SPLINE term's basis
+    (tests/spline_reference.py), a BINS term's bin indicators and a CAPPED term's clipped value."""
     columns = []
     for term in fitted.model_terms:
         learned, value = term.learned, frame[term.name]
@@ -86,9 +87,13 @@ def _model_design(frame: pd.DataFrame, fitted) -> np.ndarray:
         elif learned["function"] == "LEVELS":
             columns += [(value.isin(learned["pooled"]) if item["label"] == "other" else value == item["label"]).to_numpy(float)
                         for item in learned["columns"]]
-        else:
-            assert learned["function"] == "SPLINE", learned["function"]
+        elif learned["function"] == "SPLINE":
             columns += restricted_cubic_spline(value.to_numpy(float), learned["values"])
+        elif learned["function"] == "BINS":  # bin i holds edges[i-1] < v <= edges[i]; bin 0 is the reference
+            bins = np.searchsorted(learned["values"], value.to_numpy(float), side="left")
+            columns += [(bins == i).astype(float) for i in range(1, len(learned["values"]) + 1)]
+        else:
+            columns.append(np.clip(value.to_numpy(float), *learned["values"]))
     return sm.add_constant(np.column_stack(columns), has_constant="add")
 
 
@@ -102,7 +107,21 @@ def _model_design(frame: pd.DataFrame, fitted) -> np.ndarray:
     ids=["binomial with LEVELS", "poisson with offset and SPLINE", "gaussian"],
 )
 def test_score_statistics_equal_statsmodels_score_test(fitted_demos, demo, model, key, input_name, family, columns):
-    root = fitted_demos[demo]
+    _check_against_statsmodels(fitted_demos[demo], model, key, input_name, family, columns)
+
+
+def test_score_statistics_with_pooled_levels_bins_and_caps_equal_statsmodels_score_test(tmp_path):
+    root, _ = lease_project(tmp_path, "SELECT LEVELS(sector, 40) AS sector_level, BINS(income, 4) AS income_band,\n"
+                                      "  CAPPED(income, 0.05, 0.95) AS capped_income FROM leases\n",
+                            ["sector_level", "income_band", "capped_income"])
+    api.fit(load_project(root), ["risk"])
+    labels = [item["label"] for item in read_fitted(load_project(root).fitted_path("risk")).term("sector_level").learned["columns"]]
+    assert labels[-1] == "other"  # mining and fishing pooled (tests/test_learned_terms.py)
+    # four sector columns (other included), three bins above the first, one capped income
+    _check_against_statsmodels(root, "risk", "lease_id", "leases", sm.families.Binomial(), 4 + 3 + 1)
+
+
+def _check_against_statsmodels(root: Path, model: str, key: str, input_name: str, family, columns: int) -> None:
     project = load_project(root)
     report = api.suggest(project, model, top=10)
     chosen = [s for s in report.suggestions if s.null_share == 0][:12]
@@ -111,7 +130,7 @@ def test_score_statistics_equal_statsmodels_score_test(fitted_demos, demo, model
     assert len(frame) == report.training_rows
     layout = api.check(project).models[model].layout
     X = _model_design(frame, read_fitted(project.fitted_path(model)))
-    assert X.shape == (len(frame), 1 + columns)  # the demo's terms, a learned one expanded into its columns
+    assert X.shape == (len(frame), 1 + columns)  # the model's terms, a learned one expanded into its columns
     offset = frame[OFFSET_COLUMN].to_numpy(float) if layout.offset else None
     restricted = sm.GLM(frame[layout.target].to_numpy(float), X, family=family, offset=offset).fit(tol=1e-13)
     for suggestion in chosen:

@@ -1,6 +1,7 @@
 """`featpipe suggest`: candidate terms for a fitted model, ranked by score tests computed in the engine.
 
-Starting from the current fit (its coefficients in fitted/MODEL.yaml), candidates are generated from
+Starting from the current fit (its coefficients in fitted/MODEL.yaml, read as scoring reads them, so a
+learned term is its design columns from the constants there), candidates are generated from
 the input's declared columns (compiler.candidates), compiled like any term file, and tested with
 Rao's score test (glm.score_test) from SUM aggregates over the training rows: a scan for the columns'
 figures, one for the frequent text levels (when the input has text columns), and one per chunk of
