@@ -20,6 +20,7 @@ import pandas as pd
 import pytest
 import yaml
 from conftest import run_featpipe
+from spline_reference import restricted_cubic_spline
 from sqlglot import exp
 from test_learned_terms import lease_project, lease_rows
 
@@ -195,17 +196,12 @@ def test_the_report_draws_curves_for_spline_and_capped_and_points_for_levels_and
     assert figures["income_band"].counts == tuple(np.bincount(
         np.searchsorted(edges, train["income"].to_numpy(), side="left"), minlength=len(edges) + 1).tolist())
     # SPLINE: the curve over the training range is the centred contribution of the restricted cubic
-    # spline written from Harrell's formula (eq. 2.25, normalised by (t_k - t_1)^2) with the fitted estimates.
+    # spline written from Harrell's formula (eq. 2.25; tests/spline_reference.py) with the fitted estimates.
     curve = figures["income_curve"]
     spline = fitted.term("income_curve").learned
-    t, x = np.array(spline["values"]), np.array(curve.x)
+    x = np.array(curve.x)
     assert (x[0], x[-1]) == (train["income"].min(), train["income"].max())
-
-    def plus3(u):
-        return np.where(u > 0, u, 0.0) ** 3
-
-    basis = [x] + [(plus3(x - t[j]) - plus3(x - t[2]) * (t[3] - t[j]) / (t[3] - t[2])
-                    + plus3(x - t[3]) * (t[2] - t[j]) / (t[3] - t[2])) / (t[3] - t[0]) ** 2 for j in range(2)]
+    basis = restricted_cubic_spline(x, spline["values"])
     expected = sum(item["estimate"] * (column - item["mean"]) for item, column in zip(spline["columns"], basis))
     np.testing.assert_allclose(curve.y, expected, rtol=1e-9, atol=1e-12)
     # CAPPED: a line between the caps (numpy's inverted-CDF quantiles), flat nowhere inside them.

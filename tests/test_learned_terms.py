@@ -9,6 +9,7 @@ import pytest
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
 from conftest import run_featpipe, write_project
+from spline_reference import restricted_cubic_spline
 from sqlglot import exp
 
 from featpipe import api
@@ -198,17 +199,8 @@ def test_spline_basis_equals_the_restricted_cubic_spline_formula(tmp_path):
     knots = np.quantile(income, [0.05, 0.35, 0.65, 0.95], method="inverted_cdf")
     assert learned["values"] == knots.tolist()
     # The restricted cubic spline basis written from the published formula (Harrell, Regression
-    # Modeling Strategies, 2nd ed., eq. 2.25), normalised by (t_k - t_1)^2 as Harrell's rcspline.eval does.
-    t, k = knots, len(knots)
-
-    def plus3(u):
-        return np.where(u > 0, u, 0.0) ** 3
-
-    basis = [income] + [
-        (plus3(income - t[j]) - plus3(income - t[k - 2]) * (t[k - 1] - t[j]) / (t[k - 1] - t[k - 2])
-         + plus3(income - t[k - 1]) * (t[k - 2] - t[j]) / (t[k - 1] - t[k - 2])) / (t[k - 1] - t[0]) ** 2
-        for j in range(k - 2)]
-    X = sm.add_constant(np.column_stack(basis))
+    # Modeling Strategies, 2nd ed., eq. 2.25; tests/spline_reference.py).
+    X = sm.add_constant(np.column_stack(restricted_cubic_spline(income, knots)))
     # Reference: statsmodels' GLM on that basis gives the same estimates, so the same linear predictors.
     reference = sm.GLM(frame["defaulted"].to_numpy(), X, family=sm.families.Binomial()).fit()
     estimates = [fitted.terms[0].estimate] + [item["estimate"] for item in learned["columns"]]

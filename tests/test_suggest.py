@@ -1,7 +1,8 @@
 """`featpipe suggest`: candidate terms ranked by score tests computed in the engine.
 
 References outside the project: statsmodels' GLMResults.score_test (Rao's score test at the restricted
-fit) on the same training rows read back from DuckDB; statsmodels' multipletests for Holm's
+fit) on the same training rows read back from DuckDB, a learned term's columns computed by numpy from the
+fitted file's constants (the restricted cubic spline from Harrell's formula); statsmodels' multipletests for Holm's
 adjustment; scikit-learn's roc_auc_score for the true model's holdout AUC on invented data whose log-odds
 we wrote; PostgreSQL and Spark for the same statistics as DuckDB.
 """
@@ -17,13 +18,15 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import copy_demo, run_featpipe, write_project
+from spline_reference import restricted_cubic_spline
+from test_learned_terms import lease_project
 from statsmodels.stats.multitest import multipletests
 
 from featpipe import api
+from featpipe.compiler.candidates import ColumnSummary, ModelTermInfo, generate_candidates
 from featpipe.engines.compute import build_designs
 from featpipe.fitted import read_fitted
 from featpipe.fitting.suggest import CAUTION
-from featpipe.errors import FeatpipeError
 from featpipe.fitting.suggest import suggest as suggest_in
 from featpipe.glm.score_test import holm
 from featpipe.project import load_project
@@ -40,14 +43,6 @@ terms: [term_months, firm_age_years, past_late_payments]
 def _lease_project(tmp_path: Path) -> Path:
     root = copy_demo("lease_default", tmp_path)
     (root / "specs" / "payment_size.yaml").write_text(GAUSSIAN_SPEC, encoding="utf-8")
-    return root
-
-
-def _fleet_project(tmp_path: Path) -> Path:
-    """The fleet demo with the vehicle age as a plain column instead of its spline (suggest refuses learned terms)."""
-    root = copy_demo("fleet_claims", tmp_path)
-    spec = root / "specs" / "claim_frequency.yaml"
-    spec.write_text(spec.read_text(encoding="utf-8").replace("- vehicle_age_curve", "- vehicle_age_years"), encoding="utf-8")
     return root
 
 
@@ -68,26 +63,74 @@ def _training_frame(root: Path, model: str, key: str, input_name: str, candidate
     return design.merge(extra, left_on=key, right_on="_key", how="left")
 
 
+@pytest.fixture(scope="module")
+def fitted_demos(tmp_path_factory) -> dict[str, Path]:
+    """Both demo projects as they are, their main models with a learned term (default_risk's LEVELS
+    sector_level, claim_frequency's SPLINE vehicle_age_curve) and the gaussian payment_size fitted."""
+    folder = tmp_path_factory.mktemp("demos")
+    roots = {"lease_default": _lease_project(folder), "fleet_claims": copy_demo("fleet_claims", folder)}
+    api.fit(load_project(roots["lease_default"]), ["default_risk", "payment_size"])
+    api.fit(load_project(roots["fleet_claims"]), ["claim_frequency"])
+    return roots
+
+
+def _model_design(frame: pd.DataFrame, fitted) -> np.ndarray:
+    """The fitted model's design matrix computed by numpy from its training rows (the design table holds a
+    learned term's argument): an intercept, each term's own column, and from the constants in the fitted
+    file a LEVELS term's indicators (its level's, or `other` for a pooled level), a SPLINE term's basis
+    (tests/spline_reference.py), a BINS term's bin indicators and a CAPPED term's clipped value."""
+    columns = []
+    for term in fitted.model_terms:
+        learned, value = term.learned, frame[term.name]
+        if learned is None:
+            columns.append(value.to_numpy(float))
+        elif learned["function"] == "LEVELS":
+            columns += [(value.isin(learned["pooled"]) if item["label"] == "other" else value == item["label"]).to_numpy(float)
+                        for item in learned["columns"]]
+        elif learned["function"] == "SPLINE":
+            columns += restricted_cubic_spline(value.to_numpy(float), learned["values"])
+        elif learned["function"] == "BINS":  # bin i holds edges[i-1] < v <= edges[i]; bin 0 is the reference
+            bins = np.searchsorted(learned["values"], value.to_numpy(float), side="left")
+            columns += [(bins == i).astype(float) for i in range(1, len(learned["values"]) + 1)]
+        else:
+            columns.append(np.clip(value.to_numpy(float), *learned["values"]))
+    return sm.add_constant(np.column_stack(columns), has_constant="add")
+
+
 @pytest.mark.parametrize(
-    ("demo", "model", "key", "input_name", "family"),
+    ("demo", "model", "key", "input_name", "family", "columns"),
     [
-        ("lease_default", "default_raw", "lease_id", "leases", sm.families.Binomial()),
-        ("fleet_claims", "claim_frequency", "vehicle_year_id", "vehicle_years", sm.families.Poisson()),
-        ("lease_default", "payment_size", "lease_id", "leases", sm.families.Gaussian()),
+        ("lease_default", "default_risk", "lease_id", "leases", sm.families.Binomial(), 8 + 5),
+        ("fleet_claims", "claim_frequency", "vehicle_year_id", "vehicle_years", sm.families.Poisson(), 5 + 3),
+        ("lease_default", "payment_size", "lease_id", "leases", sm.families.Gaussian(), 3),
     ],
-    ids=["binomial", "poisson with offset", "gaussian"],
+    ids=["binomial with LEVELS", "poisson with offset and SPLINE", "gaussian"],
 )
-def test_score_statistics_equal_statsmodels_score_test(tmp_path, demo, model, key, input_name, family):
-    root = _lease_project(tmp_path) if demo == "lease_default" else _fleet_project(tmp_path)
+def test_score_statistics_equal_statsmodels_score_test(fitted_demos, demo, model, key, input_name, family, columns):
+    _check_against_statsmodels(fitted_demos[demo], model, key, input_name, family, columns)
+
+
+def test_score_statistics_with_pooled_levels_bins_and_caps_equal_statsmodels_score_test(tmp_path):
+    root, _ = lease_project(tmp_path, "SELECT LEVELS(sector, 40) AS sector_level, BINS(income, 4) AS income_band,\n"
+                                      "  CAPPED(income, 0.05, 0.95) AS capped_income FROM leases\n",
+                            ["sector_level", "income_band", "capped_income"])
+    api.fit(load_project(root), ["risk"])
+    labels = [item["label"] for item in read_fitted(load_project(root).fitted_path("risk")).term("sector_level").learned["columns"]]
+    assert labels[-1] == "other"  # mining and fishing pooled (tests/test_learned_terms.py)
+    # four sector columns (other included), three bins above the first, one capped income
+    _check_against_statsmodels(root, "risk", "lease_id", "leases", sm.families.Binomial(), 4 + 3 + 1)
+
+
+def _check_against_statsmodels(root: Path, model: str, key: str, input_name: str, family, columns: int) -> None:
     project = load_project(root)
-    api.fit(project, [model])
     report = api.suggest(project, model, top=10)
     chosen = [s for s in report.suggestions if s.null_share == 0][:12]
     assert len(chosen) == 12
     frame = _training_frame(root, model, key, input_name, {s.name: s.sql for s in chosen})
     assert len(frame) == report.training_rows
     layout = api.check(project).models[model].layout
-    X = sm.add_constant(frame[list(layout.terms)].to_numpy(float), has_constant="add")
+    X = _model_design(frame, read_fitted(project.fitted_path(model)))
+    assert X.shape == (len(frame), 1 + columns)  # the model's terms, a learned one expanded into its columns
     offset = frame[OFFSET_COLUMN].to_numpy(float) if layout.offset else None
     restricted = sm.GLM(frame[layout.target].to_numpy(float), X, family=family, offset=offset).fit(tol=1e-13)
     for suggestion in chosen:
@@ -95,6 +138,29 @@ def test_score_statistics_equal_statsmodels_score_test(tmp_path, demo, model, ke
         statistic, p_value = restricted.score_test(exog_extra=frame[[suggestion.name]].to_numpy(float))[:2]
         assert suggestion.statistic == pytest.approx(float(np.squeeze(statistic)), rel=1e-8), suggestion.name
         assert suggestion.p_value == pytest.approx(float(np.squeeze(p_value)), rel=1e-6, abs=1e-300)
+
+
+def test_candidates_a_learned_term_already_spans_are_dropped_as_collinear(fitted_demos):
+    lease = load_project(fitted_demos["lease_default"])
+    levels = [item["level"] for item in read_fitted(lease.fitted_path("default_risk")).term("sector_level").learned["levels"]]
+    report = api.suggest(lease, "default_risk", top=1000)
+    tested = {s.name for s in report.suggestions}
+    # every sector's indicator is a column of LEVELS(sector, 100) or its reference (one minus the others)
+    assert {f"sector_is_{level}" for level in levels}.isdisjoint(tested) and len(levels) == 6
+    assert report.dropped["collinear"] >= len(levels)
+    fleet = api.suggest(load_project(fitted_demos["fleet_claims"]), "claim_frequency", top=1000)
+    # the vehicle age is the first column of SPLINE(vehicle_age_years, 4); its square is a new shape
+    assert "vehicle_age_years" not in {s.name for s in fleet.suggestions}
+    assert "vehicle_age_years_squared" in {s.name for s in fleet.suggestions}
+
+
+def test_a_learned_term_forms_no_interactions_while_other_terms_do():
+    age = ColumnSummary("age", rows=4, count=4, mean=2.5, min=1.0, max=4.0, deciles=(1.0, 2.0, 3.0, 4.0))
+    terms = [ModelTermInfo("age_curve", boolean=False, learned=True), ModelTermInfo("km", boolean=False, learned=False)]
+    found = generate_candidates(terms, [age], {}, taken={"age_curve", "km", "age"})
+    # no term may use a learned term, so a product with it would not even compile
+    assert [c.sql for c in found if c.kind == "interaction"] == [
+        f"km * CASE WHEN age > {q} THEN 1 ELSE 0 END" for q in (1, 2, 3)]
 
 
 def test_holm_adjustment_equals_statsmodels():
@@ -309,10 +375,9 @@ def _statistics_on(engine, root: Path, model: str) -> dict[str, float]:
 
 
 @pytest.mark.parametrize("other", ["postgres", pytest.param("spark", marks=pytest.mark.spark)])
-def test_statistics_are_equal_on_duckdb_postgres_and_spark(tmp_path, request, other):
-    root = _fleet_project(tmp_path)
+def test_statistics_are_equal_on_duckdb_postgres_and_spark(fitted_demos, request, other):
+    root = fitted_demos["fleet_claims"]  # claim_frequency has the SPLINE vehicle_age_curve
     project = load_project(root)
-    api.fit(project, ["claim_frequency"])
     from featpipe.engines.compute import connect
 
     with connect(project) as engine:
@@ -322,10 +387,3 @@ def test_statistics_are_equal_on_duckdb_postgres_and_spark(tmp_path, request, ot
     assert found.keys() == reference.keys() and len(found) > 50
     for name, statistic in reference.items():
         assert found[name] == pytest.approx(statistic, rel=1e-9), name  # DuckDB, the engine statsmodels checks above
-
-
-def test_a_model_with_learned_terms_is_refused_with_a_clear_message(tmp_path):
-    root = copy_demo("fleet_claims", tmp_path)  # claim_frequency has the SPLINE vehicle_age_curve
-    project = load_project(root)
-    with pytest.raises(FeatpipeError, match="learned terms \\(vehicle_age_curve\\)"):
-        api.suggest(project, "claim_frequency", top=10)

@@ -12,7 +12,11 @@ Kinds, in the order they are generated (a cap keeps the first ones):
 - `ratio`: a / NULLIF(b, 0), both orders of every pair; `product`: a * b, every pair;
 - `threshold`: CASE WHEN a > q THEN 1 ELSE 0 END at the distinct training deciles of a below its maximum;
 - `level`: CASE WHEN c = 'v' THEN 1 ELSE 0 END for the frequent levels of text columns;
-- `interaction`: a model term times a threshold indicator (an effect that holds only above a threshold).
+- `interaction`: a model term times a threshold indicator (an effect that holds only above a threshold);
+  never a learned term (LEVELS, BINS, SPLINE, CAPPED): no term may use one, as its constants are
+  learned per model, and most have several columns. Its argument's column still enters the `product`,
+  `ratio` and `threshold` candidates like any column (a candidate the term already spans is dropped as
+  collinear).
 
 The target, the offset's columns, the weights and the key are never used.
 
@@ -61,10 +65,12 @@ class Candidate:
 
 @dataclass(frozen=True)
 class ModelTermInfo:
-    """What an interaction needs of a model term: its name and whether it is boolean."""
+    """What an interaction needs of a model term: its name, whether it is boolean, and whether it is a
+    learned term (which forms none)."""
 
     name: str
     boolean: bool
+    learned: bool
 
 
 def numeric_columns(spec: ModelSpec, source: InputSpec, offset_columns: set[str]) -> list[str]:
@@ -124,7 +130,7 @@ def generate_candidates(
             found.append(_named(f"{column}_is_{_name_part(value)}", taken, "level",
                                 f"CASE WHEN {identifier(column)} = {_string(value)} THEN 1 ELSE 0 END",
                                 f"indicator of {column} = '{value}'"))
-    for term in model_terms:
+    for term in (term for term in model_terms if not term.learned):
         for threshold in thresholds:
             condition = threshold.sql.removeprefix("CASE WHEN ").removesuffix(" THEN 1 ELSE 0 END")
             above = threshold.description.removeprefix("indicator of ")

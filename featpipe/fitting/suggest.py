@@ -1,6 +1,7 @@
 """`featpipe suggest`: candidate terms for a fitted model, ranked by score tests computed in the engine.
 
-Starting from the current fit (its coefficients in fitted/MODEL.yaml), candidates are generated from
+Starting from the current fit (its coefficients in fitted/MODEL.yaml, read as scoring reads them, so a
+learned term is its design columns from the constants there), candidates are generated from
 the input's declared columns (compiler.candidates), compiled like any term file, and tested with
 Rao's score test (glm.score_test) from SUM aggregates over the training rows: a scan for the columns'
 figures, one for the frequent text levels (when the input has text columns), and one per chunk of
@@ -32,6 +33,7 @@ from ..compiler.candidates import (
 from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted import FittedModel
+from ..fitted.scoring import scoring_model
 from ..project import TermFile
 from ..sqlgen.design import term_value
 from ..sqlgen.suggest import (
@@ -130,10 +132,7 @@ def suggest(
     if spec.penalty.active:
         raise FeatpipeError(f"{spec.display}: the model is penalized; score tests need a plain maximum-likelihood fit "
                             "(set penalty l2 and l1 to 0, fit, then suggest)")
-    learned = [term.name for term in model.terms if term.learned]
-    if learned:
-        raise FeatpipeError(f"{spec.display}: the model has learned terms ({', '.join(learned)}), whose columns suggest's "
-                            "score tests do not yet expand; try candidates on a spec without them")
+    fit = scoring_model(fitted)  # the design columns and coefficients of the fit, a learned term's from its constants
     offset_columns = {node.name for node in model.offset.find_all(exp.Column)} if model.offset is not None else set()
     numeric = numeric_columns(spec, source, offset_columns)
     texts = text_columns(spec, source, offset_columns)
@@ -152,7 +151,7 @@ def suggest(
         scans += 1
 
     taken = {name.lower() for name in compiled.terms} | {name.lower() for name in source.columns}
-    model_terms = [ModelTermInfo(term.name, term.kind == "boolean") for term in model.terms]
+    model_terms = [ModelTermInfo(term.name, term.kind == "boolean", term.learned is not None) for term in model.terms]
     generated = generate_candidates(model_terms, summaries, levels, taken)
     considered = generated[:max_candidates]
     terms = _compile_candidates(compiled, spec.input, considered)
@@ -165,16 +164,13 @@ def suggest(
         means = engine.fetch(candidate_means_query(model, source, {name: values[name] for name in chunk}, sample_rows))[0]
         shifts.update({name: 0.0 if mean is None else float(mean) for name, mean in zip(chunk, means, strict=True)})
 
-    size = len(model.terms)
-    coefficients = {term.name: term.estimate for term in fitted.terms}
-    centers = {term.name: term.profile.mean for term in fitted.model_terms}
+    size = len(fit.terms)
     model_width, candidate_width = model_sums_width(size), candidate_sums_width(size)
     chunk_size = max(1, (per_query - model_width) // candidate_width)
     model_sums, candidate_sums = None, []
     chunks = _chunks(aliases, chunk_size) or [[]]
     for index, chunk in enumerate(chunks):
-        query = score_sums_query(model, source, spec.family, coefficients, centers, {name: values[name] for name in chunk},
-                                 shifts, with_model=index == 0)
+        query = score_sums_query(model, source, fit, {name: values[name] for name in chunk}, shifts, with_model=index == 0)
         row = engine.fetch(query)[0]
         scans += 1
         if index == 0:

@@ -10,8 +10,9 @@ the current model read the very same rows. Only sums and a few order statistics 
   columns at once through GROUPING SETS (each result row has one column set, the others NULL);
 - `candidate_means_query`: the mean of each candidate over the first `rows` training rows (a LIMIT, not
   a scan): the shift that keeps the score sums free of cancellation;
-- `score_sums_query`: one scan per chunk of candidates; the current model's linear predictor from
-  its fitted coefficients (as scoring computes it), its fitted mean, working weight and residual, and
+- `score_sums_query`: one scan per chunk of candidates; the current model's design columns (a learned
+  term expanded into its columns from the constants in the fitted file) and linear predictor from its
+  fitted coefficients (as scoring computes them), its fitted mean, working weight and residual, and
   as SUMs: the model's score and X'WX (first chunk only) and per candidate the sums its score test needs.
 
 Portability (sqlgen/harden.py): terms and candidates are hardened DOUBLE expressions, the linear
@@ -20,15 +21,19 @@ predictor is clamped before EXP, every literal is an exact DOUBLE.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 
 from sqlglot import exp
 
 from ..compiler import CompiledModel
 from ..project import InputSpec
+from ..project.names import INTERCEPT
 from .common import alias, column, double, number, training_rows
 from .design import design_query
+from .learned import design_columns
 from .metrics import linear_predictor, prediction
+from .score import ScoringModel, ScoringTerm
 from .statistics import upper_pairs
 
 DECILE_LEVELS = tuple(k / 10 for k in range(1, 10))
@@ -102,21 +107,28 @@ def candidate_means_query(model: CompiledModel, source: InputSpec, candidates: M
     return exp.select(*(exp.Avg(this=column(name)) for name in candidates)).from_(sample.subquery("_sample"))
 
 
+def model_column_values(terms: Sequence[ScoringTerm]) -> list[exp.Expression]:
+    """The fit's design columns over the design query's columns, one per scoring term: a term's own
+    column, or a learned term's column from its argument and the constants in the fitted file (as
+    scoring computes it)."""
+    return [design_columns(term.learned, column(term.group))[term.index] if term.learned is not None else column(term.name)
+            for term in terms]
+
+
 def score_sums_query(
     model: CompiledModel,
     source: InputSpec,
-    family: str,
-    coefficients: Mapping[str, float],
-    centers: Mapping[str, float],
+    fit: ScoringModel,
     candidates: Mapping[str, exp.Expression],
     shifts: Mapping[str, float],
     *,
     with_model: bool,
 ) -> exp.Select:
-    """One scan of the training rows under the current fit (mu from `coefficients`, by name with the intercept).
+    """One scan of the training rows under the current fit `fit` (the fitted file as scoring reads it).
 
     With prior weight w, working weight W = w V(mu), residual R = w (y - mu), model columns x (the
-    intercept, then each term minus its center) and each candidate shifted, z = value - shift:
+    intercept, then each design column of the fit minus its training mean: a learned term gives
+    several) and each candidate shifted, z = value - shift:
 
     - with_model: COUNT(*), SUM(w (y - mu)^2), the score SUM(R x_j) and X'WX SUM(W x_i x_j) (`upper_pairs` order);
     - per candidate: COUNT(z) (its rows with a value), SUM(R z), SUM(W z^2), SUM(W z x_j) for each model column.
@@ -126,23 +138,34 @@ def score_sums_query(
     layout = model.layout
     shifted = {name: exp.Sub(this=expression, expression=number(shifts[name])) for name, expression in candidates.items()}
     rows = training_input(model, source, shifted)
-    terms = [f"_x{i}" for i in range(len(layout.terms))]
+    values = [f"_v{i}" for i in range(len(fit.terms))]
+    terms = [f"_x{i}" for i in range(len(fit.terms))]
     candidate_names = list(candidates)
-    eta = linear_predictor(layout, coefficients)
     weight = double(column(layout.weight)) if layout.weight else None
-    level1 = [alias(double(column(layout.target)), "_y"), alias(eta, "_eta")]
-    level1 += [alias(exp.Sub(this=column(term), expression=number(centers[term])), x) for term, x in zip(layout.terms, terms, strict=True)]
+    offset = [layout.offset] if layout.offset else []
+    level0 = [alias(double(column(layout.target)), "_y"), *(column(name) for name in offset)]
+    level0 += [alias(value, name) for value, name in zip(model_column_values(fit.terms), values, strict=True)]
+    level0 += [column(name) for name in candidate_names]
+    if weight is not None:
+        level0.append(alias(weight, "_w"))
+    expanded = exp.select(*level0).from_(rows.subquery("_rows"))
+
+    columns_layout = dataclasses.replace(layout, terms=tuple(values))
+    coefficients = {INTERCEPT: fit.intercept, **{name: term.estimate for name, term in zip(values, fit.terms, strict=True)}}
+    level1 = [column("_y"), alias(linear_predictor(columns_layout, coefficients), "_eta")]
+    level1 += [alias(exp.Sub(this=column(value), expression=number(term.mean)), x)
+               for value, term, x in zip(values, fit.terms, terms, strict=True)]
     level1 += [column(name) for name in candidate_names]
     if weight is not None:
-        level1.append(alias(weight, "_w"))
-    linear = exp.select(*level1).from_(rows.subquery("_rows"))
+        level1.append(column("_w"))
+    linear = exp.select(*level1).from_(expanded.subquery("_expanded"))
     carried = ["_y", *terms, *candidate_names, *(["_w"] if weight is not None else [])]
-    fitted = exp.select(*(column(name) for name in carried), alias(prediction(family, column("_eta")), "_mu")).from_(
+    fitted = exp.select(*(column(name) for name in carried), alias(prediction(fit.family, column("_eta")), "_mu")).from_(
         linear.subquery("_linear"))
 
     mu = column("_mu")
     variance = {"binomial": exp.Mul(this=mu.copy(), expression=exp.Paren(this=exp.Sub(this=number(1.0), expression=mu.copy()))),
-                "poisson": mu.copy(), "gaussian": number(1.0)}[family]
+                "poisson": mu.copy(), "gaussian": number(1.0)}[fit.family]
     error = exp.Sub(this=column("_y"), expression=exp.Paren(this=mu.copy()))
     level2 = [column(x) for x in terms] + [column(name) for name in candidate_names]
     level2 += [alias(_weighted(variance, weight is not None), WORKING), alias(_weighted(exp.Paren(this=error), weight is not None), RESIDUAL),
