@@ -79,8 +79,13 @@ def design_signature(project: Project, model: CompiledModel, builds: dict[str, s
     """A hash of the design query and the input file's signature: a design table is rebuilt exactly when
     what it holds would change, not when a setting that only the fit reads (threshold, notes) did.
     `builds` (the build record) spares hashing a file it remembers unchanged."""
-    query = render(design_query(model, project.inputs[model.spec.input]), "duckdb", pretty=False)
-    return f"{hashlib.sha256(query.encode()).hexdigest()[:16]}:{input_signature(project.inputs[model.spec.input], builds)}"
+    return query_signature(design_query(model, project.inputs[model.spec.input]), project.inputs[model.spec.input], builds)
+
+
+def query_signature(query: exp.Select, source: InputSpec, builds: dict[str, str] | None = None) -> str:
+    """`design_signature` of a design query already built."""
+    text = render(query, "duckdb", pretty=False)
+    return f"{hashlib.sha256(text.encode()).hexdigest()[:16]}:{input_signature(source, builds)}"
 
 
 def build_designs(
@@ -101,11 +106,13 @@ def build_designs(
     try:
         prepare_inputs(engine, project, inputs, builds, progress)
         for model in models:
-            signature = design_signature(project, model, builds)
+            source = project.inputs[model.spec.input]
+            query = design_query(model, source)
+            signature = query_signature(query, source, builds)
             if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
                 continue
             say(progress, f"building {model.layout.table}")
-            engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
+            engine.create_table(model.layout.table, query)
             builds[model.layout.table] = signature
             rows = engine.fetch(_count(model.layout.table))[0][0]
             built.append(BuiltTable(model.name, model.layout.table, rows))
