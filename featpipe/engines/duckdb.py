@@ -52,7 +52,7 @@ class DuckDBEngine:
                 self.path.parent.mkdir(parents=True, exist_ok=True)
             target = str(self.path)
             config["temp_directory"] = str(self.path.with_name(self.path.name + ".tmp"))
-            config["file_search_path"] = str(self.path.parent)
+            config["file_search_path"] = str(self.path.absolute().parent)
         try:
             self.connection = duckdb.connect(target, read_only=read_only, config=config)
         except duckdb.IOException as error:
@@ -122,7 +122,7 @@ class DuckDBEngine:
             if kept is not None:
                 kept.parent.mkdir(exist_ok=True)
                 shutil.copyfile(path, kept)
-            read = str(kept.relative_to(self.path.parent)) if kept is not None else str(path)
+            read = str(kept.relative_to(kept.parent.parent)) if kept is not None else str(path)
             source = exp.Anonymous(this="read_parquet" if parquet else "read_csv", expressions=[exp.Literal.string(read)])
             self._build_then_swap(name, "VIEW" if kept else "TABLE", exp.select(exp.Star()).from_(source), check)
         except BaseException as error:
@@ -168,7 +168,7 @@ class DuckDBEngine:
         return "VIEW" if rows[0][0] == "VIEW" else "TABLE"
 
     def _copies_folder(self) -> Path:
-        return self.path.with_name(self.path.name + ".files")
+        return self.path.absolute().with_name(self.path.name + ".files")
 
     def _copies(self, name: str) -> list[Path]:
         folder = self._copies_folder() if self.path is not None else None
