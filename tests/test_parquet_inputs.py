@@ -97,3 +97,21 @@ def test_a_refused_parquet_file_keeps_the_old_view_and_its_copy_only(keys, messa
     assert copies(project) == before
     assert orders_in_engine(project) == EXPECTED
     assert statements.building_name("orders") not in relation_kinds(project)
+
+
+@pytest.mark.parametrize("loss", ["kept copies deleted", "input table dropped"])
+def test_an_unchanged_file_whose_input_is_gone_from_the_engine_is_loaded_again(loss, tmp_path):
+    project = parquet_shop(tmp_path / "shop")
+    if loss == "input table dropped":  # the CSV route: a table, dropped by hand
+        (project.root / "featpipe.yaml").write_text(PROJECT_YAML)
+        project = api.load_project(project.root)
+    api.compute(project)
+    if loss == "kept copies deleted":
+        shutil.rmtree(project.root / "build" / "shop.duckdb.files")
+    else:
+        with api.connect(project) as engine:
+            engine.drop_table("orders")
+
+    assert [(table.table, table.rows) for table in api.compute(project)] == [("design_returns", 8)]
+
+    assert orders_in_engine(project) == EXPECTED

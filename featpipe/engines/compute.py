@@ -50,7 +50,8 @@ def prepare_inputs(
     A file is checked (columns, then key) on its temporary table before it replaces the input's table,
     so a bad file leaves the old table, and `builds` gets the file's signature only once it is in. A
     table without `load:` is checked as it is, key included; a loaded one's key was checked at load.
-    A file whose size and modification time `builds` remembers is not hashed again.
+    A file whose size and modification time `builds` remembers is not hashed again; an unchanged file
+    whose table is gone (dropped, or a DuckDB view whose kept copy was deleted) is loaded again.
     """
     for name in sorted(inputs):
         source = project.inputs[name]
@@ -59,12 +60,12 @@ def prepare_inputs(
         if source.load is None:
             check_contract(source, name, engine.describe(name), engine.name)
             check_key(engine, name, source.key, f"{engine.name} table '{name}'")
-        elif builds.get(name) != signature:
+        elif builds.get(name) != signature or (loaded := engine.describe(name)) is None:  # changed, or gone
             shown = source.load.relative_to(project.root) if source.load.is_relative_to(project.root) else source.load
             say(progress, f"loading {shown} into {engine.name} table {name}")
             engine.load_file(name, source.load, partial(check_loaded_file, engine, source, str(shown)))
         else:
-            check_contract(source, name, engine.describe(name), engine.name)
+            check_contract(source, name, loaded, engine.name)
         builds[name] = signature
         remember_signature(builds, source, stamp, signature)
 

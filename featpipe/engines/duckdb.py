@@ -141,9 +141,17 @@ class DuckDBEngine:
             .order_by("ordinal_position")
         )
         rows = self.fetch(query)
-        if not rows:
+        if not rows or (self._kind(name) == "VIEW" and not self._readable(name)):
             return None
         return {column: exp.DataType.build(kind, dialect=self.dialect) for column, kind in rows}
+
+    def _readable(self, name: str) -> bool:
+        """Whether the view `name` can be read: one over a kept Parquet copy cannot once the copy is gone."""
+        try:
+            self._run(statements.select_all(name, limit=0))
+        except EngineError:
+            return False
+        return True
 
     def drop_table(self, name: str) -> None:
         """Drop `name`, a table or a view over a kept Parquet copy (then the copy too), if it exists."""
