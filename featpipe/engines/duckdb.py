@@ -124,7 +124,10 @@ class DuckDBEngine:
                 shutil.copyfile(path, kept)
             read = str(kept.relative_to(kept.parent.parent)) if kept is not None else str(path)
             source = exp.Anonymous(this="read_parquet" if parquet else "read_csv", expressions=[exp.Literal.string(read)])
-            self._build_then_swap(name, "VIEW" if kept else "TABLE", exp.select(exp.Star()).from_(source), check)
+            if kept is not None:
+                self._build_then_swap(name, "VIEW", exp.select(exp.Star()).from_(source), check)
+            else:
+                self.create_table(name, exp.select(exp.Star()).from_(source), check)
         except BaseException as error:
             if kept is not None:  # nothing reads it: the old table or view is still in place
                 kept.unlink(missing_ok=True)
