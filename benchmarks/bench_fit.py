@@ -3,6 +3,7 @@
     .venv/bin/python benchmarks/bench_fit.py --rows 1000000
     .venv/bin/python benchmarks/bench_fit.py --rows 10000000 --keep build/bench10m.duckdb
     .venv/bin/python benchmarks/bench_fit.py --commands --rows 10000000 --keep build/bench10m.duckdb
+    .venv/bin/python benchmarks/bench_fit.py --commands --compute-only --repeat 3 --rows 2000000
 
 A seeded synthetic binomial design table (30% held out, 15 continuous terms on mixed scales with some
 correlation, 10 indicators) is generated inside DuckDB with SQL, so building it never holds the table
@@ -23,9 +24,12 @@ memory <= a fifth.
 With --commands it times what a user runs instead, each a child process with its own peak RSS: the
 same rows (all for training, no holdout) written to a parquet file that a project loads, then
 `featpipe compute` (from an empty engine file) and `featpipe fit`, against DuckDB writing the same
-columns from the file to a table with one CREATE TABLE AS, and fetch + scikit-learn on the design
-table `featpipe compute` built. Targets at 10M rows: compute <= 2x the CREATE TABLE AS; fit <= 0.5x
-fetch + scikit-learn in time and <= 0.2x in peak RSS; coefficients equal to 1e-6.
+terms from the same file to a table with one CREATE TABLE AS (the model's own design query reading the
+parquet file, DuckDB's default settings), and fetch + scikit-learn on the design table `featpipe
+compute` built. Targets at 10M rows: compute <= 2x the CREATE TABLE AS; fit <= 0.5x fetch +
+scikit-learn in time and <= 0.2x in peak RSS; coefficients equal to 1e-6. CPU seconds (all threads of
+the child) are printed beside the wall times: on a machine shared with other work they vary less.
+`--compute-only` times just `featpipe compute` against the CREATE TABLE AS.
 """
 
 from __future__ import annotations
@@ -34,6 +38,8 @@ import argparse
 import json
 import math
 import os
+import resource
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -212,29 +218,46 @@ def child_command(project: Path, words: str) -> dict:
     """`featpipe WORDS -p PROJECT` in this process, as the console script runs it."""
     from featpipe.cli import main
 
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), cpu_seconds()
     try:
         main([*words.split(), "-p", str(project)])
     except SystemExit as done:
         if done.code:
             raise
-    return {"seconds": time.perf_counter() - started, "peak_rss_mb": peak_rss_mb()}
+    return {"seconds": time.perf_counter() - started, "cpu_seconds": cpu_seconds() - cpu, "peak_rss_mb": peak_rss_mb()}
 
 
 def child_create_table(project: Path, db: Path) -> dict:
-    """DuckDB writing the model's columns from the input file to a table with one CREATE TABLE AS."""
+    """DuckDB writing the same terms from the same file to a table with one CREATE TABLE AS: the model's own
+    design query (`featpipe sql --part design`) reading the input's parquet file, in a new database file
+    with DuckDB's default settings."""
     import duckdb
 
-    data = db.with_suffix(".parquet")
+    import featpipe
+    from featpipe.engines.statements import create_table_as
+    from featpipe.sqlgen.common import render
+    from featpipe.sqlgen.design import design_query
+
+    loaded = featpipe.load_project(project)
+    source = loaded.inputs[INPUT]
+    from_file = exp.Anonymous(this="read_parquet", expressions=[exp.Literal.string(str(source.load))])
+    query = design_query(featpipe.check(loaded).models[MODEL], source).from_(from_file)
+    statement = render(create_table_as("reference", query), "duckdb")
     target = project / "reference.duckdb"
     target.unlink(missing_ok=True)
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), cpu_seconds()
     connection = duckdb.connect(str(target))
-    connection.read_parquet(str(data)).select(*(duckdb.ColumnExpression(name) for name in ("id", "y", *layout().terms))).create("reference")
+    connection.execute(statement)
     connection.close()
     seconds = time.perf_counter() - started
     target.unlink()
-    return {"seconds": seconds, "peak_rss_mb": peak_rss_mb()}
+    return {"seconds": seconds, "cpu_seconds": cpu_seconds() - cpu, "peak_rss_mb": peak_rss_mb()}
+
+
+def cpu_seconds() -> float:
+    """User and system CPU time of this process so far, all threads: steadier than wall time on a busy machine."""
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime + usage.ru_stime
 
 
 def child_project_sklearn(project: Path) -> dict:
@@ -261,37 +284,61 @@ def fitted_estimates(project: Path) -> tuple[list[float], int]:
     return [term["estimate"] for term in fitted["terms"]], int(fitted["fit"].get("passes", 0))
 
 
-def commands(path: Path, folder: Path, repeat: int) -> None:
+def commands(path: Path, folder: Path, repeat: int, compute_only: bool = False) -> None:
     """Time `featpipe compute` and `featpipe fit` against their references; print ratios beside the goals."""
     project = write_project(folder, path)
     runs: dict[str, list[dict]] = {"create": [], "compute": [], "fit": [], "sklearn": []}
     for _ in range(repeat):  # interleaved, so a busy spell on the machine hits every route
         runs["create"].append(run_command_child("create", project, path))
-        (project / "build" / "bench.duckdb").unlink(missing_ok=True)  # compute from an empty engine file
+        shutil.rmtree(project / "build", ignore_errors=True)  # compute from an empty engine file
         runs["compute"].append(run_command_child("command", project, path, "compute"))
-        runs["fit"].append(run_command_child("command", project, path, "fit"))
-        runs["sklearn"].append(run_command_child("project-sklearn", project, path))
-    best = {name: min(results, key=lambda result: result["seconds"]) for name, results in runs.items()}
+        if not compute_only:
+            runs["fit"].append(run_command_child("command", project, path, "fit"))
+            runs["sklearn"].append(run_command_child("project-sklearn", project, path))
+    best = {name: min(results, key=lambda result: result["seconds"]) for name, results in runs.items() if results}
+    if compute_only:
+        print_compute(runs, best, repeat)
+        return
     estimates, passes = fitted_estimates(project)
     sklearn = best["sklearn"]
-    print(f"training rows: {sklearn['rows']:,}; fastest of {repeat} interleaved run(s) each; "
-          f"load average at the end {os.getloadavg()[0]:.1f}\n")
-    header = f"{'':40}{'seconds':>9}{'peak RSS MB':>13}   all runs (s)"
-    print(header)
-    print("-" * len(header))
-    labels = [("DuckDB CREATE TABLE AS from the file", "create"), ("featpipe compute", "compute"),
-              ("featpipe fit", "fit"), ("pandas fetch + scikit-learn", "sklearn")]
-    for label, name in labels:
-        every = ", ".join(f"{run['seconds']:.1f}" for run in runs[name])
-        print(f"{label:40}{best[name]['seconds']:9.2f}{best[name]['peak_rss_mb']:13.0f}   {every}")
+    print(f"training rows: {sklearn['rows']:,}; ", end="")
+    print_table(runs, best, repeat, [("featpipe fit", "fit"), ("pandas fetch + scikit-learn", "sklearn")])
     print(f"  (scikit-learn: fetch {sklearn['fetch_seconds']:.2f} s, fit {sklearn['seconds'] - sklearn['fetch_seconds']:.2f} s; "
           f"featpipe fit: {passes} passes over the training rows)")
     print()
-    print(f"time   featpipe compute / CREATE TABLE AS: {best['compute']['seconds'] / best['create']['seconds']:.3f}   (goal <= 2)")
+    print_compute_ratios(best)
     print(f"time   featpipe fit / (fetch + scikit-learn): {best['fit']['seconds'] / sklearn['seconds']:.3f}   (goal <= 0.5)")
     print(f"memory featpipe fit / (fetch + scikit-learn): {best['fit']['peak_rss_mb'] / sklearn['peak_rss_mb']:.3f}   (goal <= 0.2)")
     print(f"coefficients, max relative difference: featpipe fit vs scikit-learn "
           f"{max_relative_difference(estimates, sklearn['coef']):.2e}   (goal <= 1e-6)")
+
+
+COMPUTE_LABELS = [("DuckDB CREATE TABLE AS from the file", "create"), ("featpipe compute", "compute")]
+
+
+def print_table(runs: dict[str, list[dict]], best: dict[str, dict], repeat: int, more: list[tuple[str, str]]) -> None:
+    """Seconds, CPU seconds and peak RSS of the fastest run of each route, with every run's seconds."""
+    print(f"fastest of {repeat} interleaved run(s) each; load average at the end {os.getloadavg()[0]:.1f}\n")
+    header = f"{'':40}{'seconds':>9}{'CPU s':>8}{'peak RSS MB':>13}   all runs (s)"
+    print(header)
+    print("-" * len(header))
+    for label, name in COMPUTE_LABELS + more:
+        every = ", ".join(f"{run['seconds']:.1f}" for run in runs[name])
+        cpu = f"{best[name]['cpu_seconds']:8.2f}" if "cpu_seconds" in best[name] else f"{'':8}"
+        print(f"{label:40}{best[name]['seconds']:9.2f}{cpu}{best[name]['peak_rss_mb']:13.0f}   {every}")
+
+
+def print_compute_ratios(best: dict[str, dict]) -> None:
+    compute, create = best["compute"], best["create"]
+    print(f"time   featpipe compute / CREATE TABLE AS: {compute['seconds'] / create['seconds']:.3f}   (goal <= 2)")
+    print(f"CPU    featpipe compute / CREATE TABLE AS: {compute['cpu_seconds'] / create['cpu_seconds']:.3f}   "
+          "(same runs; steadier on a busy machine)")
+
+
+def print_compute(runs: dict[str, list[dict]], best: dict[str, dict], repeat: int) -> None:
+    print_table(runs, best, repeat, [])
+    print()
+    print_compute_ratios(best)
 
 
 def max_relative_difference(a, b) -> float:
@@ -306,6 +353,7 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=1, help="interleaved runs of each competitor; the fastest is shown")
     parser.add_argument("--commands", action="store_true",
                         help="time `featpipe compute` and `featpipe fit` as a user runs them (see above)")
+    parser.add_argument("--compute-only", action="store_true", help="with --commands: time only `featpipe compute`")
     parser.add_argument("--child", choices=["featpipe", "sklearn", "command", "create", "project-sklearn"], help=argparse.SUPPRESS)
     parser.add_argument("--source", default="auto", help=argparse.SUPPRESS)
     parser.add_argument("--db", type=Path, help=argparse.SUPPRESS)
@@ -336,7 +384,7 @@ def main() -> None:
         print(f"design table: {arguments.rows:,} rows x {len(layout().terms)} terms in {path} "
               f"(built or reused in {time.perf_counter() - started:.1f} s)")
         if arguments.commands:
-            commands(path, Path(folder), arguments.repeat)
+            commands(path, Path(folder), arguments.repeat, arguments.compute_only)
             return
         runs: dict[str, list[dict]] = {"stream": [], "sql": [], "sklearn": []}
         for _ in range(arguments.repeat):  # interleaved, so a busy spell on the machine hits all three

@@ -77,6 +77,15 @@ def test_bench_fit_agrees_with_scikit_learn():
     assert stream_to_sql < 1e-9  # the same IRLS over the same rows; only the order of the sums differs
 
 
+def test_bench_fit_commands_prints_compute_against_one_create_table_as_in_time_and_cpu():
+    lines = run_benchmark("bench_fit.py", "--commands", "--compute-only", "--rows", "3000")
+
+    figures(r"featpipe compute +{n} +{n} +{n}   {n}", lines)  # seconds, CPU seconds, peak RSS, each run
+    figures(r"DuckDB CREATE TABLE AS from the file +{n} +{n} +{n}   {n}", lines)
+    figures(r"time   featpipe compute / CREATE TABLE AS: {n}   \(goal <= 2\)", lines)
+    figures(r"CPU    featpipe compute / CREATE TABLE AS: {n}   \(same runs; steadier on a busy machine\)", lines)
+
+
 def test_bench_score_scores_the_fitted_model_as_pandas_does():
     lines = run_benchmark("bench_score.py", "--rows", "3000")
 

@@ -46,12 +46,14 @@ class Engine(Protocol):
     def load_file(self, name: str, path: Path, check: Check | None = None) -> None:
         """Load a CSV or Parquet file as table `name`, atomically like `create_table` (and checked like it).
 
+        DuckDB keeps a Parquet file as a copy beside its database file and makes `name` a view reading it.
+
         A directory, a missing or empty file and a CSV that is not UTF-8 are refused naming the file
         (`datafiles.check_data_file`).
         """
 
     def describe(self, name: str) -> dict[str, exp.DataType] | None:
-        """Column names and types of table `name`, or None when it does not exist."""
+        """Column names and types of table `name`, or None when it does not exist (or, a view, cannot be read)."""
 
     def drop_table(self, name: str) -> None:
         """Drop table `name` if it exists."""

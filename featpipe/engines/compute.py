@@ -50,7 +50,8 @@ def prepare_inputs(
     A file is checked (columns, then key) on its temporary table before it replaces the input's table,
     so a bad file leaves the old table, and `builds` gets the file's signature only once it is in. A
     table without `load:` is checked as it is, key included; a loaded one's key was checked at load.
-    A file whose size and modification time `builds` remembers is not hashed again.
+    A file whose size and modification time `builds` remembers is not hashed again; an unchanged file
+    whose table is gone (dropped, or a DuckDB view whose kept copy was deleted) is loaded again.
     """
     for name in sorted(inputs):
         source = project.inputs[name]
@@ -59,12 +60,12 @@ def prepare_inputs(
         if source.load is None:
             check_contract(source, name, engine.describe(name), engine.name)
             check_key(engine, name, source.key, f"{engine.name} table '{name}'")
-        elif builds.get(name) != signature:
+        elif builds.get(name) != signature or (loaded := engine.describe(name)) is None:  # changed, or gone
             shown = source.load.relative_to(project.root) if source.load.is_relative_to(project.root) else source.load
             say(progress, f"loading {shown} into {engine.name} table {name}")
             engine.load_file(name, source.load, partial(check_loaded_file, engine, source, str(shown)))
         else:
-            check_contract(source, name, engine.describe(name), engine.name)
+            check_contract(source, name, loaded, engine.name)
         builds[name] = signature
         remember_signature(builds, source, stamp, signature)
 
@@ -79,8 +80,13 @@ def design_signature(project: Project, model: CompiledModel, builds: dict[str, s
     """A hash of the design query and the input file's signature: a design table is rebuilt exactly when
     what it holds would change, not when a setting that only the fit reads (threshold, notes) did.
     `builds` (the build record) spares hashing a file it remembers unchanged."""
-    query = render(design_query(model, project.inputs[model.spec.input]), "duckdb", pretty=False)
-    return f"{hashlib.sha256(query.encode()).hexdigest()[:16]}:{input_signature(project.inputs[model.spec.input], builds)}"
+    return query_signature(design_query(model, project.inputs[model.spec.input]), project.inputs[model.spec.input], builds)
+
+
+def query_signature(query: exp.Select, source: InputSpec, builds: dict[str, str] | None = None) -> str:
+    """`design_signature` of a design query already built."""
+    text = render(query, "duckdb", pretty=False)
+    return f"{hashlib.sha256(text.encode()).hexdigest()[:16]}:{input_signature(source, builds)}"
 
 
 def build_designs(
@@ -101,11 +107,13 @@ def build_designs(
     try:
         prepare_inputs(engine, project, inputs, builds, progress)
         for model in models:
-            signature = design_signature(project, model, builds)
+            source = project.inputs[model.spec.input]
+            query = design_query(model, source)
+            signature = query_signature(query, source, builds)
             if only_stale and builds.get(model.layout.table) == signature and engine.describe(model.layout.table):
                 continue
             say(progress, f"building {model.layout.table}")
-            engine.create_table(model.layout.table, design_query(model, project.inputs[model.spec.input]))
+            engine.create_table(model.layout.table, query)
             builds[model.layout.table] = signature
             rows = engine.fetch(_count(model.layout.table))[0][0]
             built.append(BuiltTable(model.name, model.layout.table, rows))

@@ -12,16 +12,19 @@ def building_name(name: str) -> str:
     return f"{name}{BUILDING_SUFFIX}"
 
 
-def create_table_as(name: str, query: exp.Query) -> exp.Create:
-    return exp.Create(this=exp.to_table(name), kind="TABLE", expression=query)
+def create_table_as(name: str, query: exp.Query, kind: str = "TABLE") -> exp.Create:
+    """CREATE TABLE (or, with `kind` "VIEW", CREATE VIEW) `name` AS `query`."""
+    return exp.Create(this=exp.to_table(name), kind=kind, expression=query)
 
 
-def drop_table(name: str) -> exp.Drop:
-    return exp.Drop(tables=[exp.to_table(name)], kind="TABLE", exists=True)
+def drop_table(name: str, kind: str = "TABLE") -> exp.Drop:
+    return exp.Drop(tables=[exp.to_table(name)], kind=kind, exists=True)
 
 
-def rename_table(old: str, new: str) -> exp.Alter:
-    return exp.rename_table(old, new)
+def rename_table(old: str, new: str, kind: str = "TABLE") -> exp.Alter:
+    statement = exp.rename_table(old, new)
+    statement.set("kind", kind)
+    return statement
 
 
 def select_all(name: str, limit: int | None = None) -> exp.Select:

@@ -48,6 +48,7 @@ Example:
 from __future__ import annotations
 
 from collections.abc import Mapping
+from functools import lru_cache
 
 from sqlglot import exp
 
@@ -76,8 +77,16 @@ def harden(expression: exp.Expression, schema: Mapping[str, str] | None = None) 
     sqlglot (`column.type`) is used, and any other column used as a number is taken to be numeric.
     The tree should have passed `check_allowed`; nodes outside the allow-list are copied unchanged.
     """
-    types = {name: exp.DataType.build(kind, dialect="duckdb") for name, kind in (schema or {}).items()}
+    types = {name: declared_type(kind) for name, kind in (schema or {}).items()}
     return _Hardening(types).rewrite(expression, VALUE)
+
+
+@lru_cache(maxsize=256)
+def declared_type(kind: str) -> exp.DataType:
+    """A declared column type as a tree, parsed once: a design query hardens every term against every
+    column of its input, and parsing the same few type names again was a visible part of `compute`.
+    Shared between calls, so only read (`is_type`), never put into a tree."""
+    return exp.DataType.build(kind, dialect="duckdb")
 
 
 def as_number(expression: exp.Expression, is_boolean: bool) -> exp.Expression:
