@@ -57,7 +57,7 @@ EXPECTED = [(1, 120.5, "north"), (2, 80.0, "south"), (3, 15.25, "north"), (4, 30
             (5, 42.0, "south"), (6, None, "north"), (7, 99.9, "east"), (8, 10.0, "south")]
 
 
-def test_a_parquet_input_is_a_view_over_a_kept_copy_that_outlives_the_file_and_a_moved_project(tmp_path):
+def test_a_parquet_input_is_a_view_over_a_kept_copy_that_outlives_the_file_and_any_session_reads(tmp_path, monkeypatch):
     project = parquet_shop(tmp_path / "shop")
 
     assert [(table.table, table.rows) for table in api.compute(project)] == [("design_returns", 8)]
@@ -65,8 +65,16 @@ def test_a_parquet_input_is_a_view_over_a_kept_copy_that_outlives_the_file_and_a
     assert relation_kinds(project) == {"orders": "VIEW", "design_returns": "BASE TABLE", "featpipe_builds": "BASE TABLE"}
     (kept,) = copies(project)
     assert kept.startswith("orders@") and kept.endswith(".parquet")
+    (project.root / "data" / "orders.parquet").unlink()  # a snapshot: the user's file may go away
+    assert orders_in_engine(project) == EXPECTED
+    monkeypatch.chdir(tmp_path)  # a plain DuckDB session elsewhere, as exported scoring SQL is run outside featpipe
+    with duckdb.connect(str(project.root / "build" / "shop.duckdb"), read_only=True) as connection:
+        assert connection.execute("SELECT order_id, amount, region FROM orders ORDER BY order_id").fetchall() == EXPECTED
+
+    # A moved project cannot read the old copy: compute sees the input missing and loads the file again.
+    write_orders(project.root, ORDERS_CSV)
     moved = api.load_project(shutil.move(project.root, tmp_path / "moved"))
-    (moved.root / "data" / "orders.parquet").unlink()  # a snapshot: the user's file may go away
+    assert [(table.table, table.rows) for table in api.compute(moved)] == [("design_returns", 8)]
     assert orders_in_engine(moved) == EXPECTED
 
     # The same input loaded from a CSV file again is a table, and the copy is gone.

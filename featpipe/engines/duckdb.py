@@ -9,9 +9,10 @@ A Parquet file is loaded as a copy kept in a folder beside the database file (`<
 view reading it: DuckDB reads Parquet about as fast as its own tables, so this spares rewriting every
 row into the database (the larger part of `featpipe compute`, whose design table is the one table it
 must write). The copy is a snapshot: the user's file may change or go away, and the view still reads
-what was checked. The view names the copy relative to the database's folder, which every connection
-of this adapter searches (`file_search_path`), so a project folder can move; another DuckDB session
-reads these views when started in that folder. A CSV file, slow to parse again, is loaded as a table.
+what was checked. The view names the copy by its absolute path, so any DuckDB session on the database
+file reads it (exported scoring SQL run outside featpipe included); after the project folder moves the
+view cannot be read, `describe` says the input is missing and `featpipe compute` loads the file again.
+A CSV file, slow to parse again, is loaded as a table.
 """
 
 from __future__ import annotations
@@ -52,7 +53,6 @@ class DuckDBEngine:
                 self.path.parent.mkdir(parents=True, exist_ok=True)
             target = str(self.path)
             config["temp_directory"] = str(self.path.with_name(self.path.name + ".tmp"))
-            config["file_search_path"] = str(self.path.absolute().parent)
         try:
             self.connection = duckdb.connect(target, read_only=read_only, config=config)
         except duckdb.IOException as error:
@@ -122,7 +122,7 @@ class DuckDBEngine:
             if kept is not None:
                 kept.parent.mkdir(exist_ok=True)
                 shutil.copyfile(path, kept)
-            read = str(kept.relative_to(kept.parent.parent)) if kept is not None else str(path)
+            read = str(kept if kept is not None else path)
             source = exp.Anonymous(this="read_parquet" if parquet else "read_csv", expressions=[exp.Literal.string(read)])
             if kept is not None:
                 self._build_then_swap(name, "VIEW", exp.select(exp.Star()).from_(source), check)
