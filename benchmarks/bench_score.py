@@ -20,6 +20,9 @@ benchmarks/memory.py, in the child) is its own; the time is the work after impor
 - sql, contributions: the whole scoring output, with one contribution column per term;
 - sql, 3 reasons: the same with three reason codes (three rounds of GREATEST and comparisons, about
   3 x 20 operations a round per row);
+- sql, lean reasons: the exported query with three reason codes, as a view, writing what the sql route
+  writes plus the three reasons: the contributions are computed (the reasons read them) but not
+  stored, so this is the reasons' own cost on top of the sql route;
 - pandas: read the Parquet file into pandas, compute the 20 terms with numpy, predict the complete rows
   with scikit-learn's LogisticRegression (coef_ and intercept_ set to the fitted coefficients), giving
   a frame of key and prediction.
@@ -28,7 +31,7 @@ Printed: the package versions, core count and load average (benchmarks/context.p
 side: seconds, rows per second, peak RSS, the ratios against the pandas route, and a check that both
 routes agree (rows scored, relative difference of the sums of predictions).
 Targets: the SQL at least 6 times the pandas route's throughput with at most a quarter of its memory;
-with three reason codes at least 3 times.
+with three reason codes at least 3 times (printed for the whole output and for the lean reasons).
 """
 
 from __future__ import annotations
@@ -223,7 +226,7 @@ def sql_jobs(project, parquet: Path) -> dict[str, dict]:
     from sqlglot import exp
 
     from featpipe.fitted.scoring import render_score_sql
-    from featpipe.project.names import LINEAR_PREDICTOR, PREDICTION, STATUS
+    from featpipe.project.names import LINEAR_PREDICTOR, PREDICTION, STATUS, reason_column
     from featpipe.sqlgen.common import column, render
 
     reader = exp.Anonymous(this="read_parquet", expressions=[exp.Literal.string(str(parquet))])
@@ -232,11 +235,16 @@ def sql_jobs(project, parquet: Path) -> dict[str, dict]:
     checksum = render(exp.select(exp.Count(this=column(PREDICTION)), exp.Sum(this=column(PREDICTION))).from_(exp.to_table("scores")),
                       "duckdb")
     key = project.inputs["leases"].key
-    lean = exp.select(*(column(name) for name in (key, PREDICTION, LINEAR_PREDICTOR, STATUS))).from_(exp.to_table("scored"))
+    lean_columns = [key, PREDICTION, LINEAR_PREDICTOR, STATUS]
+
+    def lean(*extra: str) -> str:
+        query = exp.select(*(column(name) for name in (*lean_columns, *extra))).from_(exp.to_table("scored"))
+        return render(exp.Create(this=exp.to_table("scores"), kind="TABLE", expression=query), "duckdb")
+
     return {
-        "sql": {"setup": [leases, render_score_sql(project, MODEL, as_view="scored")],
-                "score": render(exp.Create(this=exp.to_table("scores"), kind="TABLE", expression=lean), "duckdb"),
-                "checksum": checksum},
+        "sql": {"setup": [leases, render_score_sql(project, MODEL, as_view="scored")], "score": lean(), "checksum": checksum},
+        "sql, lean reasons": {"setup": [leases, render_score_sql(project, MODEL, reasons=3, as_view="scored")],
+                              "score": lean(*(reason_column(rank) for rank in (1, 2, 3))), "checksum": checksum},
         "sql, contributions": {"setup": [leases], "score": render_score_sql(project, MODEL, into="scores"),
                                "checksum": checksum},
         "sql, 3 reasons": {"setup": [leases], "score": render_score_sql(project, MODEL, reasons=3, into="scores"),
@@ -341,7 +349,7 @@ def main() -> None:
             "coefficients": {term.name: term.estimate for term in fitted.model_terms},
         }))
 
-        routes = ("sql", "sql, contributions", "sql, 3 reasons", "pandas")
+        routes = ("sql", "sql, contributions", "sql, 3 reasons", "sql, lean reasons", "pandas")
         results = {route: measure(route, job_file, arguments.repeat) for route in routes}
 
     rows = arguments.rows
@@ -360,8 +368,9 @@ def main() -> None:
     speed, memory = pandas["seconds"] / sql["seconds"], sql["peak_rss_mb"] / pandas["peak_rss_mb"]
     print(f"target: throughput >= 6x pandas: {speed:.2f}x ({'met' if speed >= 6 else 'NOT met'}); "
           f"memory <= 1/4 of pandas: {memory:.3f} ({'met' if memory <= 0.25 else 'NOT met'})")
-    reasons = pandas["seconds"] / results["sql, 3 reasons"]["seconds"]
-    print(f"target: throughput with 3 reasons >= 3x pandas: {reasons:.2f}x ({'met' if reasons >= 3 else 'NOT met'})")
+    for route in ("sql, 3 reasons", "sql, lean reasons"):
+        reasons = pandas["seconds"] / results[route]["seconds"]
+        print(f"target: throughput with 3 reasons >= 3x pandas ({route}): {reasons:.2f}x ({'met' if reasons >= 3 else 'NOT met'})")
 
 
 if __name__ == "__main__":

@@ -91,10 +91,11 @@ def test_bench_score_scores_the_fitted_model_as_pandas_does():
 
     (train,) = figures(r"fitted with featpipe\.api\.fit on {n} training rows in .* converged: True\)", lines)
     assert 0 < train < 3000
-    for route in ("sql", "sql, contributions", "sql, 3 reasons", "pandas"):
+    for route in ("sql", "sql, contributions", "sql, 3 reasons", "sql, lean reasons", "pandas"):
         figures(rf"{re.escape(route)} +{{n}} +{{n}} +{{n}} +{{n}}x +{{n}}x", lines)
     figures(r"target: throughput >= 6x pandas: {n}x \((?:met|NOT met)\); memory <= 1/4 of pandas: {n} \((?:met|NOT met)\)", lines)
-    figures(r"target: throughput with 3 reasons >= 3x pandas: {n}x \((?:met|NOT met)\)", lines)
+    for route in ("sql, 3 reasons", "sql, lean reasons"):
+        figures(rf"target: throughput with 3 reasons >= 3x pandas \({re.escape(route)}\): {{n}}x \((?:met|NOT met)\)", lines)
     sql_rows, pandas_rows, difference = figures(
         r"rows scored: sql {n}, pandas {n}; relative difference of the prediction sums {n}", lines)
     assert sql_rows == pandas_rows

@@ -12,8 +12,9 @@ The query reads in steps (common table expressions), each computing something on
     checked_terms  plus `status`: 'ok', or 'missing: <term>' naming the FIRST NULL term in model order
     contributions  the linear predictor and, for complete rows, one contribution per term
     reason_k_top   (with reasons, per reason k) the largest contribution not yet chosen
-    reason_k_pick  the first term in model order holding it (when positive); the next round sets it aside
-    final SELECT   the prediction through the inverse link, and the reason codes
+    reason_k_pick  `reason_k`: the name of the first term in model order holding it (when positive);
+                   the next round sets that term aside
+    final SELECT   the prediction through the inverse link
 
 The prediction uses the fit's own inverse link (`metrics.prediction`): the linear predictor is clamped
 to [-700, 700] before EXP, so EXP never overflows, nor underflows to an error on PostgreSQL.
@@ -161,7 +162,7 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
     outputs.append(column(STATUS))
     if reasons:
         steps += reason_steps(names, steps[-1][1], reasons)
-        outputs += [alias(reason_expression(names, rank), reason_column(rank)) for rank in range(1, reasons + 1)]
+        outputs += [column(reason_column(rank)) for rank in range(1, reasons + 1)]
     query = exp.select(*outputs).from_(exp.to_table(steps[-1][0]))
     for name, step in steps:
         query = query.with_(name, as_=step)
@@ -219,10 +220,11 @@ def reason_steps(names: list[str], contributions: exp.Select, reasons: int) -> l
     """The steps choosing reasons 1..`reasons`, after `contributions`; each carries every column before it.
 
     Round k takes the largest of the contributions still in play (`_top_k`, GREATEST: a row's
-    contributions are all NULL or none), and picks the first term in model order holding it when it
-    is positive (`_pick_k`, the term's position, 1-based; NULL otherwise). Round k + 1 reads the
-    contributions with that term set aside (SET_ASIDE), so a tie goes to the earlier term first and
-    the later one next.
+    contributions are all NULL or none), and names the first term in model order holding it when it
+    is positive (`reason_k`, NULL otherwise). Round k + 1 reads the contributions with that term set
+    aside (SET_ASIDE), so a tie goes to the earlier term first and the later one next. The pick is the
+    reason column itself: a separate position mapped to a name afterwards cost another comparison
+    chain per reason (benchmarks/bench_score.py).
     """
     carried = [projection.alias_or_name for projection in contributions.expressions]
     in_play = [contribution_column(name) for name in names]
@@ -235,23 +237,23 @@ def reason_steps(names: list[str], contributions: exp.Select, reasons: int) -> l
 
     for rank in range(1, reasons + 1):
         if rank > 1:  # set the last pick aside; the previous round's own columns are no longer needed
-            chosen = column(_pick_column(rank - 1))
+            chosen = column(reason_column(rank - 1))
             left = [_left_column(rank, name) for name in names]
             if rank > 2:
                 carried = [name for name in carried if name not in in_play]
             step(f"reason_{rank}_left", *(
-                alias(exp.Case().when(chosen.eq(exp.Literal.number(position)), number(SET_ASIDE)).else_(column(value)), name)
-                for position, (value, name) in enumerate(zip(in_play, left, strict=True), start=1)))
+                alias(exp.Case().when(chosen.eq(exp.Literal.string(term)), number(SET_ASIDE)).else_(column(value)), name)
+                for term, value, name in zip(names, in_play, left, strict=True)))
             carried += left
             in_play = left
         top = exp.Greatest(this=column(in_play[0]), expressions=[column(name) for name in in_play[1:]], ignore_nulls=True)
         step(f"reason_{rank}_top", alias(top, _top_column(rank)))
         pick = exp.Case()
-        for position, name in enumerate(in_play, start=1):
-            pick = pick.when(column(name).eq(column(_top_column(rank))), exp.Literal.number(position))
+        for term, name in zip(names, in_play, strict=True):
+            pick = pick.when(column(name).eq(column(_top_column(rank))), exp.Literal.string(term))
         step(f"reason_{rank}_pick", alias(exp.Case().when(exp.GT(this=column(_top_column(rank)), expression=number(0.0)), pick),
-                                          _pick_column(rank)))
-        carried.append(_pick_column(rank))
+                                          reason_column(rank)))
+        carried.append(reason_column(rank))
     return steps
 
 
@@ -294,14 +296,6 @@ def status_expression(names: list[str], has_offset: bool) -> exp.Expression:
     for name, internal in [*((name, name) for name in names), *([(OFFSET, OFFSET_COLUMN)] if has_offset else [])]:
         case = case.when(column(internal).is_(exp.null()), exp.Literal.string(missing_status(name)))
     return case.else_(exp.Literal.string(OK))
-
-
-def reason_expression(names: list[str], rank: int) -> exp.Expression:
-    """The name of the term picked in round `rank` (see `reason_steps`), or NULL."""
-    case = exp.Case()
-    for position, name in enumerate(names, start=1):
-        case = case.when(column(_pick_column(rank)).eq(exp.Literal.number(position)), exp.Literal.string(name))
-    return case
 
 
 def score_statement(
@@ -352,8 +346,3 @@ def _left_column(rank: int, term: str) -> str:
 
 def _top_column(rank: int) -> str:
     return f"_top_{rank}"
-
-
-def _pick_column(rank: int) -> str:
-    return f"_pick_{rank}"
-
