@@ -216,7 +216,7 @@ def percentile_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[s
     needed ranks (a query per column on a columnar engine, so memory holds one column's values), then
     the moments with the rows at or below each edge. The same profiles as the portable route."""
     names = list(columns)
-    counts = dict(zip(names, (int(n) for n in engine.fetch(counts_query(layout, columns, engine.dialect))[0]), strict=True))
+    counts = dict(zip(names, (int(n) for n in engine.fetch(counts_query(layout, columns))[0]), strict=True))
     fractions = {name: tuple(rank_fraction(rank, n) for rank in needed_ranks(n)) for name, n in counts.items() if n}
     groups = [[name] for name in fractions] if engine.dialect in COLUMNAR_DIALECTS else [list(fractions)]
     values: dict[str, tuple[float, ...]] = {}
@@ -227,5 +227,5 @@ def percentile_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[s
             values.update(read_percentiles(wanted, engine.fetch(query)[0], engine.dialect))
     order = ranked_values(counts, values)
     shifts = {name: order[name].median() or 0.0 for name in names}
-    (moments,) = engine.fetch(moments_query(layout, columns, shifts, {name: order[name].edges() for name in names}, engine.dialect))
+    (moments,) = engine.fetch(moments_query(layout, columns, shifts, {name: order[name].edges() for name in names}))
     return read_profiles(names, with_edge_counts(order, moments[7 * len(names):]), moments)

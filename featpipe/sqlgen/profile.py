@@ -111,14 +111,13 @@ def order_statistics_query(layout: DesignLayout, columns: Mapping[str, exp.Expre
     )
 
 
-def training_values(layout: DesignLayout, columns: Mapping[str, exp.Expression], dialect: str | None = None
-                    ) -> tuple[exp.Subquery, dict[str, exp.Column]]:
+def training_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> tuple[exp.Subquery, dict[str, exp.Column]]:
     """The not-held-out rows with each column's value (as DOUBLE) computed once, and a reference to each.
 
-    PostgreSQL shares no repeated subexpression and folds a plain subquery into the query around it, so
-    the moments query would compute the linear predictor (a sum over every term) once per aggregate that
-    reads it, some twenty times a row; `OFFSET 0` keeps the subquery apart there. Other engines fold it
-    as before.
+    The moments query reads each value some twenty times; the linear predictor (a sum over every term)
+    written into each of those aggregates was computed that often per row on PostgreSQL, which shares
+    no repeated subexpression. From this subquery (kept apart there by the renderer's fence,
+    `common.fenced`) it is computed once.
     """
     names = {name: f"_v{index}" for index, name in enumerate(columns)}
     rows = (
@@ -126,14 +125,12 @@ def training_values(layout: DesignLayout, columns: Mapping[str, exp.Expression],
         .from_(exp.to_table(layout.table))
         .where(exp.not_(column(layout.holdout)))
     )
-    if dialect == "postgres":
-        rows = rows.offset(0)
     return rows.subquery("_training"), {name: column(inner) for name, inner in names.items()}
 
 
-def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression], dialect: str | None = None) -> exp.Select:
+def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
     """One scan of the not-held-out rows: the non-NULL count of each column, in order."""
-    rows, values = training_values(layout, columns, dialect)
+    rows, values = training_values(layout, columns)
     return exp.select(*(exp.Count(this=value) for value in values.values())).from_(rows)
 
 
@@ -156,7 +153,7 @@ def percentiles_query(
     """One scan of the not-held-out rows: per column, its values at `fractions` (inverted CDF), by the
     dialect's exact aggregate. DuckDB and PostgreSQL answer one list per column, Spark (one fraction
     per call) one value per fraction; `read_percentiles` reads both."""
-    rows, values = training_values(layout, columns, dialect)
+    rows, values = training_values(layout, columns)
     projections = []
     for name, value in values.items():
         wanted = [number(fraction) for fraction in fractions[name]]
@@ -190,7 +187,7 @@ def read_percentiles(fractions: Mapping[str, Sequence[float]], row: Sequence, di
 
 def moments_query(
     layout: DesignLayout, columns: Mapping[str, exp.Expression], shifts: Mapping[str, float],
-    edges: Mapping[str, Sequence[float]] | None = None, dialect: str | None = None,
+    edges: Mapping[str, Sequence[float]] | None = None,
 ) -> exp.Select:
     """One scan of the not-held-out rows; per column (in order) seven values: count (non-NULL), nulls,
     sum, sum of (x - shift), sum of (x - shift)^2, min, max. With `edges`, then per column and edge
@@ -199,7 +196,7 @@ def moments_query(
     With the median as shift the sample variance from the shifted sums keeps its digits, because the
     mean lies within one standard deviation of the median.
     """
-    rows, values = training_values(layout, columns, dialect)
+    rows, values = training_values(layout, columns)
     projections = []
     for name, value in values.items():
         shifted = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(shifts[name])))
