@@ -52,13 +52,13 @@ from .sandwich import KINDS, Middle, engine_middle, sandwich
 from .sources import (
     Batch,
     BatchSource,
+    LocalCopy,
     Request,
     Scaling,
     SqlAggregateSource,
     StatisticsSource,
     batch_from_arrow,
     engine_batches,
-    LocalCopy,
     in_memory_batches,
 )
 from .trials import grouped_constant
@@ -80,10 +80,9 @@ class Glm:
     `source` (engine fits): "sql" (one aggregate query per pass, any engine), "stream" (batches through
     numpy, memory one batch), "local" (batches read from the engine once into a local temporary file,
     then from that file) or "auto" (`AUTO_SOURCES`: stream on DuckDB, local on PostgreSQL and Spark, sql
-    elsewhere). `sample_rows` (engine fits):
-    the first training rows read up front; they set the working scaling and, when the table has more
-    rows, the warm start. A table sorted by a term gives a poorer warm start (more passes), not a
-    different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
+    elsewhere). `sample_rows` (engine fits): the first training rows read up front; they set the working
+    scaling and, when the table has more rows, the warm start. A table sorted by a term gives a poorer
+    warm start (more passes), not a different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     `power`: the tweedie variance power, in (1, 2); None for the other families.
     `trials`: binomial successes out of trials: the target is the proportion and the weights are the trials
