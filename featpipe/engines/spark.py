@@ -117,7 +117,8 @@ class SparkEngine:
         """
         with self._translated():
             table = self._frame(query).toArrow()
-        yield from table.to_batches(max_chunksize=batch_rows)
+        for start in range(0, table.num_rows, batch_rows):  # Spark's chunks follow its partitions: cut anew
+            yield from table.slice(start, batch_rows).combine_chunks().to_batches()
 
     def execute(self, statement: exp.Expression) -> None:
         with self._translated():
