@@ -27,7 +27,7 @@ from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.glm import Glm
 from featpipe.glm.families import get_family
-from featpipe.glm.sources import Request, Scaling, SqlAggregateSource
+from featpipe.glm.sources import LocalCopy, Request, Scaling, SqlAggregateSource, engine_batches
 from featpipe.sqlgen.common import render
 from featpipe.sqlgen.design import design_query
 from featpipe.sqlgen.statistics import profile_query, read_profile
@@ -62,6 +62,10 @@ class CountingEngine:
     def fetch_frame(self, query):
         self._count(query)
         return self.engine.fetch_frame(query)
+
+    def fetch_batches(self, query, batch_rows):
+        self._count(query)
+        return self.engine.fetch_batches(query, batch_rows)
 
 
 def design_rows(family: str, seed: int = 4) -> tuple[pd.DataFrame, np.ndarray, np.ndarray]:
@@ -118,13 +122,15 @@ def test_an_aggregate_fit_gathers_the_profile_in_its_first_pass(family, tmp_path
     assert fit.goodness_of_fit.log_likelihood == pytest.approx(reference.llf, rel=1e-10)
 
 
-def test_postgresql_fit_reads_the_design_table_once_less(postgres_engine, tmp_path):
+def test_postgresql_fit_reads_the_design_table_twice_whatever_the_passes(postgres_engine, tmp_path):
     frame, x, y = design_rows("binomial", seed=8)
     engine = CountingEngine(load(postgres_engine, frame, tmp_path), LAYOUT.table)
     fit = Glm("binomial", sample_rows=ROWS // 4).fit(engine, LAYOUT)
-    assert fit.convergence.source == "sql"
-    # The sample (ORDER BY key LIMIT) reads every row once; then only the IRLS passes.
-    assert engine.reads == fit.convergence.passes_over_data == 1 + fit.convergence.iterations
+    assert fit.convergence.source == "local"
+    # The sample (ORDER BY key LIMIT) reads every row once, the local copy once more; the IRLS passes
+    # (still counted in passes_over_data) read the copy.
+    assert engine.reads == 2
+    assert fit.convergence.passes_over_data == 1 + fit.convergence.iterations >= 3
     reference = sm.GLM(y, sm.add_constant(x), family=sm.families.Binomial()).fit(tol=1e-12)  # statsmodels IRLS
     np.testing.assert_allclose(fit.estimates, reference.params, rtol=1e-8)
 
@@ -168,3 +174,31 @@ def test_a_fit_does_not_import_scipy_stats_and_its_figures_are_scipy_stats_own(t
     t_test = wald(coef, covariance, get_family("gaussian"), df_residual=17)  # t with 17 df
     np.testing.assert_array_equal(t_test.p_value, 2.0 * stats.t.sf(np.abs(coef / stderr), 17))
     np.testing.assert_array_equal(t_test.ci_low, coef - stats.t.ppf(0.975, 17) * stderr)
+
+
+def test_a_local_copy_reads_the_engine_once_and_fits_as_the_stream_does(tmp_path):
+    frame, x, y = design_rows("poisson")
+    engine = CountingEngine(load(DuckDBEngine(tmp_path / "design.duckdb"), frame, tmp_path), LAYOUT.table)
+    local = Glm("poisson", source="local", sample_rows=ROWS // 4, batch_rows=500).fit(engine, LAYOUT)
+    assert engine.reads == 2  # the sample's LIMIT and the copy; every IRLS pass reads the copy
+    streamed = Glm("poisson", source="stream", sample_rows=ROWS // 4, batch_rows=500).fit(engine.engine, LAYOUT)
+    assert (local.convergence.source, streamed.convergence.source) == ("local", "stream")
+    assert local.convergence.passes_over_data == streamed.convergence.passes_over_data >= 3
+    # The same batches in the same order: the same sums.
+    np.testing.assert_allclose(local.estimates, streamed.estimates, rtol=1e-13)
+    reference = sm.GLM(y, sm.add_constant(x), family=sm.families.Poisson()).fit(tol=1e-12)  # statsmodels IRLS
+    np.testing.assert_allclose(local.estimates, reference.params, rtol=1e-8)
+
+
+def test_an_unfinished_local_copy_is_read_again_from_the_engine(tmp_path):
+    frame, _, y = design_rows("binomial")
+    engine = load(DuckDBEngine(tmp_path / "design.duckdb"), frame, tmp_path)
+    copy = LocalCopy(engine_batches(engine, LAYOUT, 1_000))
+    started = copy()
+    next(started)
+    started.close()  # a pass that stopped after one batch keeps nothing
+    passes = [np.concatenate([batch.y for batch in copy()]) for _ in range(2)]
+    assert copy.reads == 2
+    for read in passes:
+        np.testing.assert_array_equal(read, y)  # DuckDB returns the loaded rows in order
+    copy.close()

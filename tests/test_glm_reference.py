@@ -177,14 +177,16 @@ def test_sqlite_runs_the_same_statistics_query(family):
 
 
 @pytest.mark.parametrize("family", ["binomial", "poisson", "gaussian"])
-def test_postgresql_runs_the_same_statistics_query(family, postgres_engine, tmp_path):
+@pytest.mark.parametrize("source", ["sql", "auto"])
+def test_postgresql_fits_by_its_statistics_query_and_on_a_local_copy(family, source, postgres_engine, tmp_path):
     terms, x, y, offset, weight = random_case(family, seed=6, rows=300)
     frame = design_frame(terms, y, offset, weight, held_out=20)
     path = tmp_path / "design.parquet"
     frame.to_parquet(path, index=False)
     postgres_engine.load_file("design_m", path)
-    fit = Glm(family).fit(postgres_engine, layout_of(frame))
-    assert fit.convergence.source == "sql"
+    # auto: the design columns copied once (several batches, a warm start from the sample), IRLS on the copy
+    fit = Glm(family, source=source, sample_rows=100, batch_rows=64).fit(postgres_engine, layout_of(frame))
+    assert fit.convergence.source == {"sql": "sql", "auto": "local"}[source]
     assert_matches(fit, statsmodels_fit(family, x, y, offset, weight))
 
 

@@ -11,6 +11,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+import sqlglot
 from test_profile import LAYOUT, invented_design, reference_profile
 
 from featpipe.fitting.metrics import percentile_profiles, training_profiles, window_profiles
@@ -57,6 +58,19 @@ def test_percentile_route_equals_the_window_route_on_duckdb(tmp_path):
 
 def test_percentile_route_equals_the_window_route_on_postgres(postgres_engine, tmp_path):
     check_routes_agree(postgres_engine, tmp_path)
+
+
+def test_postgres_profiles_compute_an_expression_once_per_row(postgres_engine, tmp_path):
+    """PostgreSQL repeats a repeated expression: the profile queries read it from a fenced subquery."""
+    load(postgres_engine, tmp_path)
+    predictor = sqlglot.parse_one("payment_ratio + 0.25 * fleet_size", read="postgres")  # like a linear predictor
+    columns = {"payment_ratio": column("payment_ratio"), "predictor": predictor}
+    recording = Recording(postgres_engine)
+    fast = training_profiles(recording, LAYOUT, columns)
+    assert fast == window_profiles(postgres_engine, LAYOUT, columns)  # the portable route, bit for bit
+    assert len(recording.queries) == 3  # counts, percentiles, moments with edge counts
+    for query in recording.queries:
+        assert query.count('"fleet_size"') == 1
 
 
 @pytest.mark.spark

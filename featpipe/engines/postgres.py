@@ -25,6 +25,7 @@ from ..sqlgen.common import render
 from . import statements
 from .arrowfile import open_arrow_file, sql_type
 from .base import Check
+from .pgbinary import binary_batches, fixed_width
 
 try:  # the postgres extra is optional; the error says how to install it
     import psycopg
@@ -99,7 +100,28 @@ class PostgresEngine:
             return _record_batch(cursor.fetchall(), schema).to_pandas()
 
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
-        """Rows come through a server-side cursor; NUMERIC columns arrive as float64."""
+        """Numbers and booleans only: a binary COPY read with numpy (`pgbinary`), several times faster than
+        rows through a cursor. Other columns: rows through a server-side cursor, NUMERIC as float64."""
+        with self._translated(), self.connection.cursor() as cursor:
+            self._run(cursor, exp.select(exp.Star()).from_(query.subquery("featpipe_result")).limit(0))
+            names = [column.name for column in cursor.description]
+            type_oids = [column.type_code for column in cursor.description]
+        if fixed_width(type_oids):
+            yield from self._copied_batches(query, names, type_oids, batch_rows)
+        else:
+            yield from self._cursor_batches(query, batch_rows)
+
+    def _copied_batches(self, query: exp.Expression, names: list[str], type_oids: list[int], batch_rows: int):
+        copy = exp.Copy(
+            this=query.subquery(),
+            kind=False,  # TO
+            files=[exp.Var(this="STDOUT")],
+            params=[exp.CopyParameter(this=exp.Var(this="FORMAT"), expression=exp.Var(this="BINARY"))],
+        )
+        with self._translated(), self.connection.cursor() as cursor, cursor.copy(self.render(copy)) as stream:
+            yield from binary_batches(stream, names, type_oids, batch_rows)
+
+    def _cursor_batches(self, query: exp.Expression, batch_rows: int):
         with (
             self._translated(),
             self.connection.transaction(),

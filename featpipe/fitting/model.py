@@ -1,7 +1,8 @@
 """`featpipe fit`: fit a model on its design table in the engine and build its fitted file.
 
-The data never leaves the engine: row accounting, the GLM's sufficient statistics, the training
-profiles and the holdout metrics are all queries; only small results come back.
+Row accounting, the training profiles and the holdout metrics are queries whose small results come
+back; the GLM's sufficient statistics are summed over the design columns streamed out of the engine
+(DuckDB) or copied out once (PostgreSQL, Spark), see featpipe.glm.fit.
 """
 
 from __future__ import annotations

@@ -52,6 +52,7 @@ from .sandwich import KINDS, Middle, engine_middle, sandwich
 from .sources import (
     Batch,
     BatchSource,
+    LocalCopy,
     Request,
     Scaling,
     SqlAggregateSource,
@@ -65,7 +66,11 @@ from .weights import as_repeated_rows
 
 SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
-SOURCES = ("auto", "sql", "stream")
+SOURCES = ("auto", "sql", "stream", "local")
+# What "auto" means per engine: DuckDB streams its rows fast enough to read them on every pass; on
+# PostgreSQL and Spark an aggregate pass costs about 13 scans and reading the rows out several, so they
+# are read once into a local copy (see `LocalCopy`).
+AUTO_SOURCES = {"duckdb": "stream", "postgres": "local", "spark": "local"}
 
 
 @dataclass(frozen=True)
@@ -73,10 +78,11 @@ class Glm:
     """The parameters of a GLM fit, e.g. `Glm("binomial", Penalty(l2=0.01)).fit(engine, layout)`.
 
     `source` (engine fits): "sql" (one aggregate query per pass, any engine), "stream" (batches through
-    numpy, memory one batch) or "auto" (stream on DuckDB, sql elsewhere). `sample_rows` (engine fits):
-    the first training rows read up front; they set the working scaling and, when the table has more
-    rows, the warm start. A table sorted by a term gives a poorer warm start (more passes), not a
-    different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
+    numpy, memory one batch), "local" (batches read from the engine once into a local temporary file,
+    then from that file) or "auto" (`AUTO_SOURCES`: stream on DuckDB, local on PostgreSQL and Spark, sql
+    elsewhere). `sample_rows` (engine fits): the first training rows read up front; they set the working
+    scaling and, when the table has more rows, the warm start. A table sorted by a term gives a poorer
+    warm start (more passes), not a different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     `power`: the tweedie variance power, in (1, 2); None for the other families.
     `trials`: binomial successes out of trials: the target is the proportion and the weights are the trials
@@ -121,16 +127,26 @@ class Glm:
 
     def fit(self, engine: Engine, layout: DesignLayout) -> GlmResult:
         """Fit on the training rows of a design table in `engine`."""
+        source = self.source if self.source != "auto" else AUTO_SOURCES.get(engine.name, "sql")
+        copy = LocalCopy(engine_batches(engine, layout, self.batch_rows)) if source == "local" else None
+        try:
+            return self._fit_on(engine, layout, source, copy)
+        finally:
+            if copy is not None:
+                copy.close()
+
+    def _fit_on(self, engine: Engine, layout: DesignLayout, source: str, copy: LocalCopy | None) -> GlmResult:
         family = get_family(self.family, self.power)
-        streamed = self.source == "stream" or (self.source == "auto" and engine.name == "duckdb")
         ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
         frame = engine.fetch_frame(design_columns_query(layout, limit=self.sample_rows, ordered=ordered))
         sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
         passes = 1 if ordered else 0  # ORDER BY key reads every row once
         scaling = Scaling.of(sample.terms)
         data = DataNames(layout.terms, f"design table {layout.table}", layout.target, layout.weight)
-        if streamed:
-            statistics: StatisticsSource = BatchSource("stream", engine_batches(engine, layout, self.batch_rows), family, scaling)
+        if copy is not None:
+            statistics: StatisticsSource = BatchSource("local", copy, family, scaling)
+        elif source == "stream":
+            statistics = BatchSource("stream", engine_batches(engine, layout, self.batch_rows), family, scaling)
         else:
             statistics = SqlAggregateSource(engine, layout, family, scaling)
         # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.

@@ -111,13 +111,27 @@ def order_statistics_query(layout: DesignLayout, columns: Mapping[str, exp.Expre
     )
 
 
-def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
-    """One scan of the not-held-out rows: the non-NULL count of each column, in order."""
-    return (
-        exp.select(*(exp.Count(this=double(expression.copy())) for expression in columns.values()))
+def training_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> tuple[exp.Subquery, dict[str, exp.Column]]:
+    """The not-held-out rows with each column's value (as DOUBLE) computed once, and a reference to each.
+
+    The moments query reads each value some twenty times; the linear predictor (a sum over every term)
+    written into each of those aggregates was computed that often per row on PostgreSQL, which shares
+    no repeated subexpression. From this subquery (kept apart there by the renderer's fence,
+    `common.fenced`) it is computed once.
+    """
+    names = {name: f"_v{index}" for index, name in enumerate(columns)}
+    rows = (
+        exp.select(*(alias(double(expression.copy()), names[name]) for name, expression in columns.items()))
         .from_(exp.to_table(layout.table))
         .where(exp.not_(column(layout.holdout)))
     )
+    return rows.subquery("_training"), {name: column(inner) for name, inner in names.items()}
+
+
+def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
+    """One scan of the not-held-out rows: the non-NULL count of each column, in order."""
+    rows, values = training_values(layout, columns)
+    return exp.select(*(exp.Count(this=value) for value in values.values())).from_(rows)
 
 
 def needed_ranks(n: int) -> tuple[int, ...]:
@@ -139,9 +153,9 @@ def percentiles_query(
     """One scan of the not-held-out rows: per column, its values at `fractions` (inverted CDF), by the
     dialect's exact aggregate. DuckDB and PostgreSQL answer one list per column, Spark (one fraction
     per call) one value per fraction; `read_percentiles` reads both."""
+    rows, values = training_values(layout, columns)
     projections = []
-    for name, expression in columns.items():
-        value = double(expression.copy())
+    for name, value in values.items():
         wanted = [number(fraction) for fraction in fractions[name]]
         if dialect == "duckdb":
             projections.append(exp.Anonymous(this="quantile_disc", expressions=[value, exp.Array(expressions=wanted)]))
@@ -151,7 +165,7 @@ def percentiles_query(
             projections += [_within_group(fraction, value.copy()) for fraction in wanted]
         else:
             raise ValueError(f"no exact percentile aggregate for {dialect}; use order_statistics_query")
-    return exp.select(*projections).from_(exp.to_table(layout.table)).where(exp.not_(column(layout.holdout)))
+    return exp.select(*projections).from_(rows)
 
 
 def _within_group(fraction: exp.Expression, value: exp.Expression) -> exp.WithinGroup:
@@ -182,9 +196,9 @@ def moments_query(
     With the median as shift the sample variance from the shifted sums keeps its digits, because the
     mean lies within one standard deviation of the median.
     """
+    rows, values = training_values(layout, columns)
     projections = []
-    for name, expression in columns.items():
-        value = double(expression.copy())
+    for name, value in values.items():
         shifted = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(shifts[name])))
         projections += [
             exp.Count(this=value.copy()),
@@ -193,16 +207,16 @@ def moments_query(
             exp.Sum(this=shifted),
             exp.Sum(this=exp.Mul(this=shifted.copy(), expression=shifted.copy())),
             exp.Min(this=value.copy()),
-            exp.Max(this=value),
+            exp.Max(this=value.copy()),
         ]
     for name, at in (edges or {}).items():
-        value = double(columns[name].copy())
+        value = values[name]
         projections += [
             exp.Sum(this=exp.Case(ifs=[exp.If(this=exp.LTE(this=value.copy(), expression=number(edge)), true=_integer(1))],
                                   default=_integer(0)))
             for edge in at
         ]
-    return exp.select(*projections).from_(exp.to_table(layout.table)).where(exp.not_(column(layout.holdout)))
+    return exp.select(*projections).from_(rows)
 
 
 def _integer(value: int) -> exp.Literal:
