@@ -46,6 +46,7 @@ try:  # the spark extra is optional; the error says how to install it
         from py4j.protocol import Py4JError
         from pyspark.errors import PySparkException
         from pyspark.sql import SparkSession
+        from pyspark.sql.pandas.types import to_arrow_schema
 except ImportError:  # pragma: no cover - depends on the installation
     SparkSession = None
 
@@ -110,15 +111,18 @@ class SparkEngine:
             return self._frame(query).toArrow().to_pandas()
 
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
-        """The result collected as Arrow (columnar, no Python object per value), then cut into batches.
-
-        PySpark has no public stream of Arrow batches, so the driver holds the whole result once, as Arrow:
-        8 bytes per value of a numeric column (a fit's design columns: 1.3 GB at 10M rows x 16 columns).
-        """
+        """Rows come to the driver one partition at a time (toLocalIterator), in batches of `batch_rows`."""
         with self._translated():
-            table = self._frame(query).toArrow()
-        for start in range(0, table.num_rows, batch_rows):  # Spark's chunks follow its partitions: cut anew
-            yield from table.slice(start, batch_rows).combine_chunks().to_batches()
+            frame = self._frame(query)
+            schema = _arrow_schema(frame.schema)
+            rows: list = []
+            for row in frame.toLocalIterator():
+                rows.append(row)
+                if len(rows) == batch_rows:
+                    yield _record_batch(rows, schema)
+                    rows = []
+            if rows:
+                yield _record_batch(rows, schema)
 
     def execute(self, statement: exp.Expression) -> None:
         with self._translated():
@@ -283,3 +287,16 @@ def _first_line(error: Exception) -> str:
     """The first line of Spark's message; errors raised in a task carry the cause's error class further in."""
     text = str(error).strip()
     return text.splitlines()[0] if text else type(error).__name__
+
+
+def _arrow_schema(schema) -> pa.Schema:
+    """Arrow types for a Spark schema; timestamps stay naive, as collected rows give them."""
+    arrow = to_arrow_schema(schema)
+    return pa.schema(
+        [pa.field(f.name, pa.timestamp(f.type.unit) if pa.types.is_timestamp(f.type) else f.type) for f in arrow]
+    )
+
+
+def _record_batch(rows: list, schema: pa.Schema) -> pa.RecordBatch:
+    columns = [pa.array([row[i] for row in rows], type=field.type) for i, field in enumerate(schema)]
+    return pa.record_batch(columns, schema=schema)

@@ -68,9 +68,10 @@ SAMPLE_ROWS = 100_000  # rows of the in-memory warm-start sample
 BATCH_ROWS = 131_072  # rows per streamed batch: about 1 MB per term column
 SOURCES = ("auto", "sql", "stream", "local")
 # What "auto" means per engine: DuckDB streams its rows fast enough to read them on every pass; on
-# PostgreSQL and Spark an aggregate pass costs about 13 scans and reading the rows out several, so they
-# are read once into a local copy (see `LocalCopy`).
-AUTO_SOURCES = {"duckdb": "stream", "postgres": "local", "spark": "local"}
+# PostgreSQL an aggregate pass costs about 13 scans and reading the rows out several, so they are read
+# once into a local copy (see `LocalCopy`). Spark keeps the aggregates in the cluster: its data may not
+# fit one machine, and PySpark brings rows to the driver only one partition at a time.
+AUTO_SOURCES = {"duckdb": "stream", "postgres": "local"}
 
 
 @dataclass(frozen=True)
@@ -79,7 +80,7 @@ class Glm:
 
     `source` (engine fits): "sql" (one aggregate query per pass, any engine), "stream" (batches through
     numpy, memory one batch), "local" (batches read from the engine once into a local temporary file,
-    then from that file) or "auto" (`AUTO_SOURCES`: stream on DuckDB, local on PostgreSQL and Spark, sql
+    then from that file) or "auto" (`AUTO_SOURCES`: stream on DuckDB, local on PostgreSQL, sql
     elsewhere). `sample_rows` (engine fits): the first training rows read up front; they set the working
     scaling and, when the table has more rows, the warm start. A table sorted by a term gives a poorer
     warm start (more passes), not a different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
