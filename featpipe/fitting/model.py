@@ -2,7 +2,7 @@
 
 Row accounting, the training profiles and the holdout metrics are queries whose small results come
 back; the GLM's sufficient statistics are summed over the design columns streamed out of the engine
-(DuckDB) or copied out once (PostgreSQL, Spark), see featpipe.glm.fit.
+(DuckDB), copied out once (PostgreSQL) or summed in the engine (Spark), see featpipe.glm.fit.
 """
 
 from __future__ import annotations

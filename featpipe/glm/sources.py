@@ -343,7 +343,7 @@ def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Bat
 class LocalCopy:
     """Batches read from the engine once, then from a local temporary file: a callable like `engine_batches`.
 
-    On PostgreSQL and Spark evaluating the p(p+1)/2 products of an aggregate pass costs many times a plain
+    On PostgreSQL evaluating the p(p+1)/2 products of an aggregate pass costs many times a plain
     scan, and streaming the rows out costs about the same each time; so the first call streams them and
     writes each batch's columns (float64) to an unnamed temporary file, and later calls read that file
     back batch by batch. Memory stays one batch; the disk holds 8 bytes per row and design column (1.3 GB
