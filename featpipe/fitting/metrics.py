@@ -224,7 +224,7 @@ def percentile_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[s
         if group:
             wanted = {name: fractions[name] for name in group}
             query = percentiles_query(layout, {name: columns[name] for name in group}, wanted, engine.dialect)
-            values.update(read_percentiles(wanted, engine.fetch(query)[0], engine.dialect))
+            values.update(read_percentiles(wanted, engine.fetch(query)[0]))
     order = ranked_values(counts, values)
     shifts = {name: order[name].median() or 0.0 for name in names}
     (moments,) = engine.fetch(moments_query(layout, columns, shifts, {name: order[name].edges() for name in names}))

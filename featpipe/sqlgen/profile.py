@@ -3,19 +3,21 @@
 The rows profiled are the design table's rows that are not held out, including rows a fit drops for
 a NULL elsewhere: a term's NULL count is then the NULLs of that term among the training-side rows.
 
-On engines with an exact discrete percentile aggregate (`PERCENTILE_DIALECTS`), three scans:
+On engines with an exact discrete percentile aggregate that sorts (`PERCENTILE_DIALECTS`), three scans:
 - `counts_query`: the non-NULL count n of every column;
 - `percentiles_query`: the values at the ranks the deciles and the median need, by each engine's own
-  aggregate (DuckDB `quantile_disc`, PostgreSQL and Spark `PERCENTILE_DISC ... WITHIN GROUP`) asked for
+  aggregate (DuckDB `quantile_disc`, PostgreSQL `PERCENTILE_DISC ... WITHIN GROUP`) asked for
   the fraction (r - 1/2) / n, which every one of them maps to rank r (the first value whose cumulative
   share reaches the fraction) without any question of rounding;
 - `moments_query` with `edges`: the moments below plus, per decile edge, the rows at or below it,
   which give the bin shares.
-Elsewhere (SQLite) the portable route:
+Elsewhere (Spark, SQLite) the portable route:
 - `order_statistics_query`: all columns stacked with UNION ALL into (name, value) rows, counted per
   distinct value and accumulated in value order; only the values holding the ranks the deciles and
   the median need come back, each with the number of values at or below it, which gives the bin shares.
-  Its cost grows with the distinct values (a window over every one of them).
+  Its cost grows with the distinct values (a window over every one of them); Spark sorts and spills
+  it to disk, where its PERCENTILE_DISC keeps a hash map of every distinct value per fraction in memory
+  (16 columns of 1M distinct values stop the JVM on an out-of-memory error).
 - `moments_query`: one scan; per column the non-NULL count, NULL count, sum, min, max and the sums
   of (x - median) and its square, from which the sample sd (n - 1) follows without cancellation.
 
@@ -41,7 +43,7 @@ from .common import alias, column, double, number
 DECILES = range(1, 10)
 NAME, VALUE = "_name", "_value"
 ROWS, AT_OR_BELOW, COUNT = "_rows", "_at_or_below", "_n"
-PERCENTILE_DIALECTS = ("duckdb", "postgres", "spark")  # an exact discrete percentile aggregate each
+PERCENTILE_DIALECTS = ("duckdb", "postgres")  # an exact discrete percentile aggregate each, sorting (spilling) its values
 COLUMNAR_DIALECTS = ("duckdb",)  # a query per column reads only that column: memory holds one column's values
 
 
@@ -151,8 +153,7 @@ def percentiles_query(
     layout: DesignLayout, columns: Mapping[str, exp.Expression], fractions: Mapping[str, Sequence[float]], dialect: str
 ) -> exp.Select:
     """One scan of the not-held-out rows: per column, its values at `fractions` (inverted CDF), by the
-    dialect's exact aggregate. DuckDB and PostgreSQL answer one list per column, Spark (one fraction
-    per call) one value per fraction; `read_percentiles` reads both."""
+    dialect's exact aggregate, which answers one list per column (`read_percentiles`)."""
     rows, values = training_values(layout, columns)
     projections = []
     for name, value in values.items():
@@ -161,8 +162,6 @@ def percentiles_query(
             projections.append(exp.Anonymous(this="quantile_disc", expressions=[value, exp.Array(expressions=wanted)]))
         elif dialect == "postgres":
             projections.append(_within_group(exp.Array(expressions=wanted), value))
-        elif dialect == "spark":
-            projections += [_within_group(fraction, value.copy()) for fraction in wanted]
         else:
             raise ValueError(f"no exact percentile aggregate for {dialect}; use order_statistics_query")
     return exp.select(*projections).from_(rows)
@@ -172,17 +171,9 @@ def _within_group(fraction: exp.Expression, value: exp.Expression) -> exp.Within
     return exp.WithinGroup(this=exp.PercentileDisc(this=fraction), expression=exp.Order(expressions=[exp.Ordered(this=value)]))
 
 
-def read_percentiles(fractions: Mapping[str, Sequence[float]], row: Sequence, dialect: str) -> dict[str, tuple[float, ...]]:
+def read_percentiles(fractions: Mapping[str, Sequence[float]], row: Sequence) -> dict[str, tuple[float, ...]]:
     """Per column of `percentiles_query`'s row, its values in the order of its fractions."""
-    values, position = {}, 0
-    for name, wanted in fractions.items():
-        if dialect == "spark":
-            values[name] = tuple(float(value) for value in row[position : position + len(wanted)])
-            position += len(wanted)
-        else:
-            values[name] = tuple(float(value) for value in row[position])
-            position += 1
-    return values
+    return {name: tuple(float(value) for value in values) for name, values in zip(fractions, row, strict=True)}
 
 
 def moments_query(
