@@ -240,13 +240,18 @@ def lease(tmp_path_factory):
             "training": leases[leases["lease_id"].isin(training_keys)],
             "no_revenue": leases.drop(columns=["monthly_revenue"]),
         }
-        for name, frame in frames.items():
-            path = root / "build" / f"{name}.csv"
-            frame.to_csv(path, index=False)
-            engine.load_file(name, path)
+        load_batches(engine, root, frames)
     finally:
         engine.close()
     return root, frames
+
+
+def load_batches(engine, root, frames) -> None:
+    """Each frame written to build/NAME.csv and loaded as table NAME: the batches drift is measured on."""
+    for name, frame in frames.items():
+        path = root / "build" / f"{name}.csv"
+        frame.to_csv(path, index=False)
+        engine.load_file(name, path)
 
 
 @pytest.fixture(scope="module")

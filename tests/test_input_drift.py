@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from conftest import copy_demo, run_featpipe
-from test_drift import fresh_leases, lease_terms, levels_contribution, numpy_psis
+from test_drift import fresh_leases, lease_terms, levels_contribution, load_batches, numpy_psis
 
 from featpipe import api
 from featpipe.engines.duckdb import DuckDBEngine
@@ -52,10 +52,7 @@ def lease(tmp_path_factory):
     frames = {"fresh": fresh, "gaps": gaps, "tail": tail}
     engine = DuckDBEngine(project.engine.path)
     try:
-        for name, frame in frames.items():
-            path = root / "build" / f"{name}.csv"
-            frame.to_csv(path, index=False)
-            engine.load_file(name, path)
+        load_batches(engine, root, frames)
     finally:
         engine.close()
     return root, frames
