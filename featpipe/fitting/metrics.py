@@ -16,6 +16,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
+from ..engines.read_ahead import read_ahead
 from ..fitted import Profile
 from ..sqlgen.metrics import (
     PREDICTED,
@@ -26,8 +27,9 @@ from ..sqlgen.metrics import (
     with_prediction,
 )
 from ..sqlgen.profile import (
-    COLUMNAR_DIALECTS,
+    FETCHED_DIALECTS,
     PERCENTILE_DIALECTS,
+    column_values,
     counts_query,
     moments_query,
     needed_ranks,
@@ -43,6 +45,8 @@ from ..sqlgen.profile import (
 from ..sqlgen.families import sums_family
 from ..sqlgen.ranks import ks_query, rank_components_query, read_rank_sums
 from .recalibration import recalibration
+
+FETCHED_BATCH_ROWS = 1 << 20  # rows per Arrow batch of a column read out for its profile
 
 
 def holdout_metrics(
@@ -189,17 +193,31 @@ def _regression(row: tuple) -> dict:
 def training_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
     """A `Profile` per entry of `columns` (a name -> an expression over the design table, e.g. each term
     and "linear_predictor"), over every row that is not held out, complete or not: `nulls` counts that
-    column's NULLs there, the other figures describe its non-NULL values. The order statistics come
-    first, whose medians then centre the one-scan moments; on an engine with an exact percentile
-    aggregate (`percentile_profiles`) they take two scans (a count, then the values at the needed ranks)
-    whatever the distinct values, elsewhere one window query over the distinct values of every column.
-    Quantile rule and median: see featpipe.sqlgen.profile.
+    column's NULLs there, the other figures describe its non-NULL values. On DuckDB each column's values
+    are read out and sorted in numpy (`fetched_profiles`); on an engine with an exact percentile aggregate
+    the order statistics take two scans (`percentile_profiles`) whatever the distinct values, elsewhere
+    one window query over the distinct values of every column; the medians then centre the one-scan
+    moments. Quantile rule and median: see featpipe.sqlgen.profile.
     """
     if not columns:
         return {}
+    if engine.dialect in FETCHED_DIALECTS:
+        return fetched_profiles(engine, layout, columns)
     if engine.dialect in PERCENTILE_DIALECTS:
         return percentile_profiles(engine, layout, columns)
     return window_profiles(engine, layout, columns)
+
+
+def fetched_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
+    """`training_profiles` from each column's values read out of the engine in turn and sorted in numpy:
+    one read per column, the next column read while numpy sorts this one, so memory holds two columns'
+    values. On DuckDB reading 2M doubles out and sorting them took 0.04 s, its quantile_disc over them
+    0.13 s, before the count and moments scans."""
+    from .sorted_profile import sorted_profile  # numpy loads when a model is fitted
+
+    fetched = ([batch.column(0) for batch in engine.fetch_batches(column_values(layout, expression), FETCHED_BATCH_ROWS)]
+               for expression in columns.values())
+    return {name: sorted_profile(chunks) for name, chunks in zip(columns, read_ahead(fetched), strict=True)}
 
 
 def window_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
@@ -213,18 +231,15 @@ def window_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, 
 
 def percentile_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
     """`training_profiles` by the engine's exact percentile aggregate: the counts, then the values at the
-    needed ranks (a query per column on a columnar engine, so memory holds one column's values), then
-    the moments with the rows at or below each edge. The same profiles as the portable route."""
+    needed ranks, then the moments with the rows at or below each edge. The same profiles as the
+    portable route."""
     names = list(columns)
     counts = dict(zip(names, (int(n) for n in engine.fetch(counts_query(layout, columns))[0]), strict=True))
     fractions = {name: tuple(rank_fraction(rank, n) for rank in needed_ranks(n)) for name, n in counts.items() if n}
-    groups = [[name] for name in fractions] if engine.dialect in COLUMNAR_DIALECTS else [list(fractions)]
     values: dict[str, tuple[float, ...]] = {}
-    for group in groups:
-        if group:
-            wanted = {name: fractions[name] for name in group}
-            query = percentiles_query(layout, {name: columns[name] for name in group}, wanted, engine.dialect)
-            values.update(read_percentiles(wanted, engine.fetch(query)[0]))
+    if fractions:
+        query = percentiles_query(layout, {name: columns[name] for name in fractions}, fractions, engine.dialect)
+        values = read_percentiles(fractions, engine.fetch(query)[0])
     order = ranked_values(counts, values)
     shifts = {name: order[name].median() or 0.0 for name in names}
     (moments,) = engine.fetch(moments_query(layout, columns, shifts, {name: order[name].edges() for name in names}))
