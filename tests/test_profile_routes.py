@@ -1,7 +1,7 @@
 """Exact order statistics by each engine's own percentile aggregate give the profiles of the portable
 window route, value for value, on DuckDB, PostgreSQL and Spark.
 
-Reference: the portable route (`window_profiles`, checked against numpy's inverted-CDF quantiles in
+Reference: the portable route (the window route, checked against numpy's inverted-CDF quantiles in
 test_profile.py) run on the same engine and on SQLite (tests/sqlite_engine.py), and numpy itself.
 """
 
@@ -14,7 +14,8 @@ import pytest
 import sqlglot
 from test_profile import LAYOUT, invented_design, reference_profile
 
-from featpipe.fitting.metrics import percentile_profiles, training_profiles, window_profiles
+from featpipe.fitting.metrics import training_profiles
+from featpipe.fitting.order_statistics import PERCENTILE, WINDOW
 from featpipe.sqlgen.common import column
 from featpipe.sqlgen.profile import needed_ranks, rank_fraction
 
@@ -41,8 +42,8 @@ class Recording:
 def check_routes_agree(engine, tmp_path):
     data = load(engine, tmp_path)
     columns = {name: column(name) for name in LAYOUT.terms}
-    fast = percentile_profiles(engine, LAYOUT, columns)
-    portable = window_profiles(engine, LAYOUT, columns)
+    fast = training_profiles(engine, LAYOUT, columns, route=PERCENTILE)
+    portable = training_profiles(engine, LAYOUT, columns, route=WINDOW)
     assert fast == portable  # every figure, bit for bit: the same values and the same moments query
     training = ~data["_holdout"]
     assert fast["payment_ratio"].edges == reference_profile(data["payment_ratio"][training]).edges  # numpy inverted_cdf
@@ -67,7 +68,7 @@ def test_postgres_profiles_compute_an_expression_once_per_row(postgres_engine, t
     columns = {"payment_ratio": column("payment_ratio"), "predictor": predictor}
     recording = Recording(postgres_engine)
     fast = training_profiles(recording, LAYOUT, columns)
-    assert fast == window_profiles(postgres_engine, LAYOUT, columns)  # the portable route, bit for bit
+    assert fast == training_profiles(postgres_engine, LAYOUT, columns, route=WINDOW)  # the portable route, bit for bit
     assert len(recording.queries) == 3  # counts, percentiles, moments with edge counts
     for query in recording.queries:
         assert query.count('"fleet_size"') == 1
@@ -96,7 +97,7 @@ def test_percentile_route_equals_sqlite_portable_route(tmp_path):
     load(duckdb_engine, tmp_path)
     load(sqlite, tmp_path)
     columns = {name: column(name) for name in LAYOUT.terms}
-    fast, portable = percentile_profiles(duckdb_engine, LAYOUT, columns), training_profiles(sqlite, LAYOUT, columns)
+    fast, portable = training_profiles(duckdb_engine, LAYOUT, columns, route=PERCENTILE), training_profiles(sqlite, LAYOUT, columns)
     for name in LAYOUT.terms:  # mean and sd are sums in each engine's order: equal to 1e-12
         assert (fast[name].count, fast[name].nulls, fast[name].median, fast[name].edges, fast[name].shares) == (
             portable[name].count, portable[name].nulls, portable[name].median, portable[name].edges, portable[name].shares)
