@@ -5,7 +5,7 @@ The rows profiled are the design table's rows that are not held out, including r
 a NULL elsewhere: a term's NULL count is then the NULLs of that term among the training-side rows.
 Every query here reads the design table's rows passing `where` (by default: not held out).
 
-Three scans on every engine:
+Three steps on every engine:
 - `counts_query`: the non-NULL count n of every column, from which the wanted ranks follow;
 - the values at those ranks, by one of two routes (featpipe.fitting.order_statistics chooses):
   - on engines with an exact discrete percentile aggregate that sorts and spills (`PERCENTILE_DIALECTS`),
@@ -70,7 +70,7 @@ class Profile:
     shares: tuple[float, ...]
 
 
-def reading(layout: DesignLayout, where: exp.Expression | None = None) -> exp.Expression:
+def _rows_read(layout: DesignLayout, where: exp.Expression | None = None) -> exp.Expression:
     """The rows the queries here read: `where`, by default the rows not held out."""
     return (where if where is not None else exp.not_(column(layout.holdout))).copy()
 
@@ -78,7 +78,7 @@ def reading(layout: DesignLayout, where: exp.Expression | None = None) -> exp.Ex
 def training_values(
     layout: DesignLayout, columns: Mapping[str, exp.Expression], where: exp.Expression | None = None
 ) -> tuple[exp.Subquery, dict[str, exp.Column]]:
-    """The rows read (`reading`) with each column's value (as DOUBLE) computed once, and a reference to each.
+    """The rows read (`where`, by default not held out) with each column's value (as DOUBLE) computed once, and a reference to each.
 
     The moments query reads each value some twenty times; the linear predictor (a sum over every term)
     written into each of those aggregates was computed that often per row on PostgreSQL, which shares
@@ -89,7 +89,7 @@ def training_values(
     rows = (
         exp.select(*(alias(double(expression.copy()), names[name]) for name, expression in columns.items()))
         .from_(exp.to_table(layout.table))
-        .where(reading(layout, where))
+        .where(_rows_read(layout, where))
     )
     return rows.subquery("_training"), {name: column(inner) for name, inner in names.items()}
 
@@ -166,7 +166,7 @@ def ranks_query(
     stacked = reduce(lambda left, right: exp.union(left, right, distinct=False), [
         exp.select(alias(exp.Literal.string(name), NAME), alias(double(expression.copy()), VALUE))
         .from_(exp.to_table(layout.table))
-        .where(reading(layout, where))
+        .where(_rows_read(layout, where))
         for name, expression in columns.items()
     ])
     counted = (
