@@ -1,7 +1,7 @@
 """Exact order statistics by each engine's own percentile aggregate give the profiles of the portable
 window route, value for value, on DuckDB, PostgreSQL and Spark.
 
-Reference: the portable route (`window_profiles`, checked against numpy's inverted-CDF quantiles in
+Reference: the portable route (the window route, checked against numpy's inverted-CDF quantiles in
 test_profile.py) run on the same engine and on SQLite (tests/sqlite_engine.py), and numpy itself.
 """
 
@@ -14,7 +14,8 @@ import pytest
 import sqlglot
 from test_profile import LAYOUT, assert_profile, invented_design, reference_profile
 
-from featpipe.fitting.metrics import percentile_profiles, training_profiles, window_profiles
+from featpipe.fitting.metrics import training_profiles
+from featpipe.fitting.order_statistics import PERCENTILE, WINDOW
 from featpipe.sqlgen.common import column
 from featpipe.sqlgen.profile import needed_ranks, rank_fraction
 
@@ -45,8 +46,8 @@ class Recording:
 def check_routes_agree(engine, tmp_path):
     data = load(engine, tmp_path)
     columns = {name: column(name) for name in LAYOUT.terms}
-    fast = percentile_profiles(engine, LAYOUT, columns)
-    portable = window_profiles(engine, LAYOUT, columns)
+    fast = training_profiles(engine, LAYOUT, columns, route=PERCENTILE)
+    portable = training_profiles(engine, LAYOUT, columns, route=WINDOW)
     assert fast == portable  # every figure, bit for bit: the same values and the same moments query
     training = ~data["_holdout"]
     assert fast["payment_ratio"].edges == reference_profile(data["payment_ratio"][training]).edges  # numpy inverted_cdf
@@ -71,7 +72,7 @@ def test_postgres_profiles_compute_an_expression_once_per_row(postgres_engine, t
     columns = {"payment_ratio": column("payment_ratio"), "predictor": predictor}
     recording = Recording(postgres_engine)
     fast = training_profiles(recording, LAYOUT, columns)
-    assert fast == window_profiles(postgres_engine, LAYOUT, columns)  # the portable route, bit for bit
+    assert fast == training_profiles(postgres_engine, LAYOUT, columns, route=WINDOW)  # the portable route, bit for bit
     assert len(recording.queries) == 3  # counts, percentiles, moments with edge counts
     for query in recording.queries:
         assert query.count('"fleet_size"') == 1
@@ -131,7 +132,7 @@ def test_duckdb_profiles_read_each_column_once_and_sort_it_in_numpy(tmp_path):
     assert len(recording.queries) == len(columns)
     for query in recording.queries:
         assert not any(word in query.upper() for word in ("QUANTILE", "COUNT(", "SUM(", " OVER ", "UNION")), query
-    same_profiles(profiles, window_profiles(engine, LAYOUT, columns), columns)
+    same_profiles(profiles, training_profiles(engine, LAYOUT, columns, route=WINDOW), columns)
     training = ~data["_holdout"]
     assert_profile(profiles["payment_ratio"], reference_profile(data["payment_ratio"][training]))  # numpy
     engine.close()

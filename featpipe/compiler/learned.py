@@ -23,6 +23,7 @@ Example:
 from __future__ import annotations
 
 from dataclasses import dataclass
+from fractions import Fraction
 
 from sqlglot import exp
 from sqlglot.optimizer.annotate_types import annotate_types
@@ -58,15 +59,17 @@ class LearnedCall:
     function: str
     arguments: tuple[float | int, ...]
 
-    def quantiles(self) -> tuple[float, ...]:
-        """The training quantiles the function learns (none for LEVELS)."""
+    def quantiles(self) -> tuple[Fraction, ...]:
+        """The training quantiles the function learns (none for LEVELS), exact: j/k for BINS, the decimal
+        as written for SPLINE's table and CAPPED's arguments (repr gives back a literal's digits), so the
+        rank ceil(q n) they select never moves with a float's last bit (9/14 as a double is above 9/14)."""
         if self.function == "BINS":
             k = int(self.arguments[0])
-            return tuple(j / k for j in range(1, k))
+            return tuple(Fraction(j, k) for j in range(1, k))
         if self.function == "SPLINE":
-            return SPLINE_KNOTS[int(self.arguments[0])]
+            return tuple(Fraction(repr(q)) for q in SPLINE_KNOTS[int(self.arguments[0])])
         if self.function == "CAPPED":
-            return tuple(float(p) for p in self.arguments)
+            return tuple(Fraction(repr(float(p))) for p in self.arguments)
         return ()
 
 

@@ -1,8 +1,8 @@
 """Learned terms in a fit: learn their constants from the training rows, expand them into design
 columns in the engine, and describe each term's columns and joint Wald test for the fitted file.
 
-A model's design table keeps each learned term's argument; here the constants are learned (at most
-two queries per model: levels, then all quantiles) and the table `design_<model>__columns` is built
+A model's design table keeps each learned term's argument; here the constants are learned (levels in
+one query; all quantiles from a count and the values at their ranks, featpipe.fitting.order_statistics) and the table `design_<model>__columns` is built
 from it with every learned term replaced by its columns (`_<term>__<j>`). The GLM, the profiles and
 the holdout metrics then read that table as they read any design table.
 """
@@ -19,16 +19,17 @@ from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted.notes import effect
-from ..sqlgen.common import alias, column
+from ..sqlgen.common import alias, column, training_rows
 from ..sqlgen.learned import (
     LearnedConstants,
     design_columns,
     levels_query,
-    quantiles_query,
+    quantile_ranks,
     read_levels,
     unseen_holdout_query,
     read_quantiles,
 )
+from .order_statistics import non_null_counts, values_at_ranks
 
 COLUMNS_SUFFIX = "__columns"
 
@@ -51,12 +52,12 @@ def learn_constants(engine: Engine, model: CompiledModel) -> dict[str, LearnedCo
             counted[name].append((level, rows))
         constants.update({name: read_levels(learned[name], counted[name]) for name in levels})
     if quantiled:
-        (row,) = engine.fetch(quantiles_query(layout, quantiled))
-        start = 0
-        for name, call in quantiled.items():
-            size = len(call.quantiles())
-            constants[name] = read_quantiles(call, row[start:start + size])
-            start += size
+        arguments, training = {name: column(name) for name in quantiled}, training_rows(layout)
+        counts = non_null_counts(engine, layout, arguments, training)
+        ranks = {name: quantile_ranks(call, counts[name]) for name, call in quantiled.items()}
+        found = values_at_ranks(engine, layout, arguments, counts, ranks, training)
+        constants.update({name: read_quantiles(call, [found[name][rank] for rank in ranks[name]])
+                          for name, call in quantiled.items()})
     for name in learned:
         _refuse_degenerate(model, name, constants[name])
     return {name: constants[name] for name in learned}

@@ -26,24 +26,10 @@ from ..sqlgen.metrics import (
     scored_holdout,
     with_prediction,
 )
-from ..sqlgen.profile import (
-    FETCHED_DIALECTS,
-    PERCENTILE_DIALECTS,
-    column_values,
-    counts_query,
-    moments_query,
-    needed_ranks,
-    order_statistics_query,
-    percentiles_query,
-    rank_fraction,
-    ranked_values,
-    read_order_statistics,
-    read_percentiles,
-    read_profiles,
-    with_edge_counts,
-)
+from ..sqlgen.profile import FETCHED_DIALECTS, RankedValues, column_values, moments_query, needed_ranks, read_profiles, with_edge_counts
 from ..sqlgen.families import sums_family
 from ..sqlgen.ranks import ks_query, rank_components_query, read_rank_sums
+from .order_statistics import non_null_counts, values_at_ranks
 from .recalibration import recalibration
 
 FETCHED_BATCH_ROWS = 1 << 20  # rows per Arrow batch of a column read out for its profile
@@ -190,22 +176,29 @@ def _regression(row: tuple) -> dict:
     }
 
 
-def training_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
+def training_profiles(
+    engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression], route: str | None = None
+) -> dict[str, Profile]:
     """A `Profile` per entry of `columns` (a name -> an expression over the design table, e.g. each term
     and "linear_predictor"), over every row that is not held out, complete or not: `nulls` counts that
     column's NULLs there, the other figures describe its non-NULL values. On DuckDB each column's values
-    are read out and sorted in numpy (`fetched_profiles`); on an engine with an exact percentile aggregate
-    the order statistics take two scans (`percentile_profiles`) whatever the distinct values, elsewhere
-    one window query over the distinct values of every column; the medians then centre the one-scan
-    moments. Quantile rule and median: see featpipe.sqlgen.profile.
+    are read out and sorted in numpy (`fetched_profiles`); elsewhere, or with a `route` (PERCENTILE or
+    WINDOW of featpipe.fitting.order_statistics), three scans: the counts, the values at the decile and
+    median ranks, then the moments centred on the medians with the rows at or below each decile edge.
+    Quantile rule and median: see featpipe.sqlgen.profile.
     """
     if not columns:
         return {}
-    if engine.dialect in FETCHED_DIALECTS:
+    if route is None and engine.dialect in FETCHED_DIALECTS:
         return fetched_profiles(engine, layout, columns)
-    if engine.dialect in PERCENTILE_DIALECTS:
-        return percentile_profiles(engine, layout, columns)
-    return window_profiles(engine, layout, columns)
+    names = list(columns)
+    counts = non_null_counts(engine, layout, columns)
+    values = values_at_ranks(engine, layout, columns, counts, {name: needed_ranks(n) for name, n in counts.items()},
+                             route=route)
+    order = {name: RankedValues(counts[name], values[name], {}) for name in names}
+    shifts = {name: order[name].median() or 0.0 for name in names}
+    (moments,) = engine.fetch(moments_query(layout, columns, shifts, {name: order[name].edges() for name in names}))
+    return read_profiles(names, with_edge_counts(order, moments[7 * len(names):]), moments)
 
 
 def fetched_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
@@ -218,29 +211,3 @@ def fetched_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str,
     fetched = ([batch.column(0) for batch in engine.fetch_batches(column_values(layout, expression), FETCHED_BATCH_ROWS)]
                for expression in columns.values())
     return {name: sorted_profile(chunks) for name, chunks in zip(columns, read_ahead(fetched), strict=True)}
-
-
-def window_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
-    """`training_profiles` by the portable route: one window query over every column's distinct values."""
-    names = list(columns)
-    order = read_order_statistics(names, engine.fetch(order_statistics_query(layout, columns)))
-    shifts = {name: order[name].median() or 0.0 for name in names}
-    (moments,) = engine.fetch(moments_query(layout, columns, shifts))
-    return read_profiles(names, order, moments)
-
-
-def percentile_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> dict[str, Profile]:
-    """`training_profiles` by the engine's exact percentile aggregate: the counts, then the values at the
-    needed ranks, then the moments with the rows at or below each edge. The same profiles as the
-    portable route."""
-    names = list(columns)
-    counts = dict(zip(names, (int(n) for n in engine.fetch(counts_query(layout, columns))[0]), strict=True))
-    fractions = {name: tuple(rank_fraction(rank, n) for rank in needed_ranks(n)) for name, n in counts.items() if n}
-    values: dict[str, tuple[float, ...]] = {}
-    if fractions:
-        query = percentiles_query(layout, {name: columns[name] for name in fractions}, fractions, engine.dialect)
-        values = read_percentiles(fractions, engine.fetch(query)[0])
-    order = ranked_values(counts, values)
-    shifts = {name: order[name].median() or 0.0 for name in names}
-    (moments,) = engine.fetch(moments_query(layout, columns, shifts, {name: order[name].edges() for name in names}))
-    return read_profiles(names, with_edge_counts(order, moments[7 * len(names):]), moments)

@@ -7,10 +7,10 @@ inlined as literals: in a table of columns the statistics query reads, and in th
 from the same builder (`design_columns`), so training and scoring compute the same columns.
 
 - `levels_query`: rows per level of every LEVELS term, stacked with UNION ALL.
-- `quantiles_query`: one row holding every quantile of every BINS, SPLINE and CAPPED term, each an
-  exact discrete percentile (`PERCENTILE_DISC(q) WITHIN GROUP (ORDER BY x)`, rendered per dialect:
-  DuckDB `QUANTILE_DISC`, one call per quantile for Spark): the inverted empirical CDF, the value
-  at rank ceil(q n), as numpy's quantile(method="inverted_cdf") and sqlgen/profile.py.
+- `quantile_ranks`: the ranks of a BINS, SPLINE or CAPPED term's quantiles among its n training values:
+  the inverted empirical CDF, the value at rank ceil(q n) with q exact (`LearnedCall.quantiles`), as
+  sqlgen/profile.py; the values at those ranks come from featpipe.fitting.order_statistics (the
+  engine's exact percentile aggregate on DuckDB and PostgreSQL, a window it can spill on Spark).
 
 Columns (all DOUBLE, NULL when the argument is NULL):
 - LEVELS: one indicator per level with a column; `other` (when it has a column) is 1 for pooled and
@@ -31,6 +31,7 @@ from sqlglot import exp
 from ..compiler.layout import DesignLayout
 from ..compiler.learned import LearnedCall
 from .common import alias, column, holdout_rows, number, training_rows
+from .profile import quantile_rank
 
 NAME, LEVEL, ROWS = "_name", "_level", "_rows"
 OTHER = "other"  # the label of the pooled levels' column
@@ -81,14 +82,9 @@ def levels_query(layout: DesignLayout, terms: Sequence[str]) -> exp.Query:
     return query
 
 
-def quantiles_query(layout: DesignLayout, calls: Mapping[str, LearnedCall]) -> exp.Select:
-    """One row: every quantile of every term in `calls`, term by term in `quantiles()` order."""
-    percentiles = [
-        exp.WithinGroup(this=exp.PercentileDisc(this=exp.Literal.number(repr(q))),
-                        expression=exp.Order(expressions=[exp.Ordered(this=column(name), nulls_first=False)]))
-        for name, call in calls.items() for q in call.quantiles()
-    ]
-    return exp.select(*percentiles).from_(exp.to_table(layout.table)).where(training_rows(layout))
+def quantile_ranks(call: LearnedCall, n: int) -> tuple[int, ...]:
+    """The ranks (1-based, in `quantiles()` order) of the term's quantiles among n sorted values; none for n = 0."""
+    return tuple(quantile_rank(q, n) for q in call.quantiles()) if n else ()
 
 
 def unseen_holdout_query(layout: DesignLayout, constants: Mapping[str, LearnedConstants]) -> exp.Select:

@@ -1,34 +1,37 @@
-"""Training profiles of many columns: the queries, and how to read them into `Profile`s.
+"""Training profiles of many columns, and the order statistics (values at exact ranks) they and the
+learned terms' quantiles are read from.
 
 The rows profiled are the design table's rows that are not held out, including rows a fit drops for
 a NULL elsewhere: a term's NULL count is then the NULLs of that term among the training-side rows.
+Every query here reads the design table's rows passing `where` (by default: not held out).
 
-On a columnar embedded engine (`FETCHED_DIALECTS`: DuckDB) `column_values` reads one column's values
-out at scan speed, and numpy sorts them (featpipe.fitting.sorted_profile): fewer passes and faster
-than the engine's own percentile aggregate there.
-On engines with an exact discrete percentile aggregate that sorts (`PERCENTILE_DIALECTS`), three scans:
-- `counts_query`: the non-NULL count n of every column;
-- `percentiles_query`: the values at the ranks the deciles and the median need, by each engine's own
-  aggregate (DuckDB `quantile_disc`, PostgreSQL `PERCENTILE_DISC ... WITHIN GROUP`) asked for
-  the fraction (r - 1/2) / n, which every one of them maps to rank r (the first value whose cumulative
-  share reaches the fraction) without any question of rounding;
-- `moments_query` with `edges`: the moments below plus, per decile edge, the rows at or below it,
-  which give the bin shares.
-Elsewhere (Spark, SQLite) the portable route:
-- `order_statistics_query`: all columns stacked with UNION ALL into (name, value) rows, counted per
-  distinct value and accumulated in value order; only the values holding the ranks the deciles and
-  the median need come back, each with the number of values at or below it, which gives the bin shares.
-  Its cost grows with the distinct values (a window over every one of them); Spark sorts and spills
-  it to disk, where its PERCENTILE_DISC keeps a hash map of every distinct value per fraction in memory
-  (16 columns of 1M distinct values stop the JVM on an out-of-memory error).
-- `moments_query`: one scan; per column the non-NULL count, NULL count, sum, min, max and the sums
-  of (x - median) and its square, from which the sample sd (n - 1) follows without cancellation.
+On DuckDB, which reads one column out at scan speed, a profile reads each column's values
+(`column_values`) and numpy sorts them (featpipe.fitting.sorted_profile): one read per column, several
+times faster than its percentile aggregate with the count and moments scans around it. Elsewhere, and
+for the learned terms' quantiles everywhere:
+
+Three steps on every engine:
+- `counts_query`: the non-NULL count n of every column, from which the wanted ranks follow;
+- the values at those ranks, by one of two routes (featpipe.fitting.order_statistics chooses):
+  - on engines with an exact discrete percentile aggregate that sorts and spills (`PERCENTILE_DIALECTS`),
+    `percentiles_query`: each engine's own aggregate (DuckDB `quantile_disc`, PostgreSQL
+    `PERCENTILE_DISC ... WITHIN GROUP`) asked for the fraction (r - 1/2) / n, which every one of them
+    maps to rank r (the first value whose cumulative share reaches the fraction) without any question
+    of rounding;
+  - elsewhere (Spark, SQLite) `ranks_query`: all columns stacked with UNION ALL into (name, value)
+    rows, counted per distinct value and accumulated in value order; only the values holding a wanted
+    rank come back. Its cost grows with the distinct values (a window over every one of them); Spark
+    sorts and spills it to disk, where its PERCENTILE_DISC keeps a hash map of every distinct value per
+    fraction in memory (16 columns of 1M distinct values stop the JVM on an out-of-memory error);
+- `moments_query` with `edges`: per column the non-NULL count, NULL count, sum, min, max and the sums
+  of (x - median) and its square, from which the sample sd (n - 1) follows without cancellation, and
+  per decile edge the rows at or below it, which give the bin shares.
 
 Quantiles follow the inverted empirical CDF (numpy's method="inverted_cdf"): the q-quantile of n
-sorted values is the value at rank ceil(q * n). For the k-th decile that rank is the smallest r with
-10 r >= k n, tested in SQL with integer arithmetic only, so no engine's CEIL or division rules
-matter. The median is the usual one: the mean of the values at ranks floor((n + 1) / 2) and
-ceil((n + 1) / 2). Equal deciles collapse into one edge; bin i holds edges[i-1] < v <= edges[i].
+sorted values is the value at rank ceil(q * n) (`quantile_rank`, in exact rational arithmetic, so no
+float product such as 0.07 * 100 = 7.000000000000001 moves it). The median is the usual one: the mean
+of the values at ranks floor((n + 1) / 2) and ceil((n + 1) / 2). Equal deciles collapse into one edge;
+bin i holds edges[i-1] < v <= edges[i].
 """
 
 from __future__ import annotations
@@ -36,6 +39,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from fractions import Fraction
 from functools import reduce
 
 from sqlglot import exp
@@ -45,9 +49,10 @@ from .common import alias, column, double, number
 
 DECILES = range(1, 10)
 NAME, VALUE = "_name", "_value"
-ROWS, AT_OR_BELOW, COUNT = "_rows", "_at_or_below", "_n"
-FETCHED_DIALECTS = ("duckdb",)  # columnar and local: one column's values come out at scan speed, to be sorted in numpy
-PERCENTILE_DIALECTS = ("postgres",)  # an exact discrete percentile aggregate that sorts (spills) its values
+ROWS, AT_OR_BELOW = "_rows", "_at_or_below"
+PERCENTILE_DIALECTS = ("duckdb", "postgres")  # an exact discrete percentile aggregate each, sorting (spilling) its values
+COLUMNAR_DIALECTS = ("duckdb",)  # a query per column reads only that column: memory holds one column's values
+FETCHED_DIALECTS = ("duckdb",)  # profiles read each column's values out and sort them in numpy
 
 
 @dataclass(frozen=True)
@@ -71,53 +76,20 @@ class Profile:
     shares: tuple[float, ...]
 
 
-def column_values(layout: DesignLayout, expression: exp.Expression) -> exp.Select:
-    """The value (as DOUBLE, NULL kept) of `expression` on every not-held-out row."""
-    return exp.select(alias(double(expression.copy()), VALUE)).from_(exp.to_table(layout.table)).where(exp.not_(column(layout.holdout)))
+def _rows_read(layout: DesignLayout, where: exp.Expression | None = None) -> exp.Expression:
+    """The rows the queries here read: `where`, by default the rows not held out."""
+    return (where if where is not None else exp.not_(column(layout.holdout))).copy()
 
 
-def profile_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Query:
-    """(value as DOUBLE, name) of every not-held-out row, for each column, stacked with UNION ALL."""
-    if not columns:
-        raise ValueError("no columns to profile")
-    branches = [column_values(layout, expression).select(alias(exp.Literal.string(name), NAME)) for name, expression in columns.items()]
-    return reduce(lambda left, right: exp.union(left, right, distinct=False), branches)
+def column_values(layout: DesignLayout, expression: exp.Expression, where: exp.Expression | None = None) -> exp.Select:
+    """The value (as DOUBLE, NULL kept) of `expression` on every row read (`where`, by default not held out)."""
+    return exp.select(alias(double(expression.copy()), VALUE)).from_(exp.to_table(layout.table)).where(_rows_read(layout, where))
 
 
-def order_statistics_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
-    """Per column, the distinct non-NULL values that hold a decile or median rank, in value order:
-    name, value, rows with that value, rows at or below it, and n.
-
-    Equal values are grouped first, so a column with few distinct values (an indicator, a count, a
-    binned term) ranks only those, and the ranking is a total order: the same on every run and engine.
-    A value with `rows` r and `at_or_below` c holds the ranks c - r + 1 to c.
-    """
-    counted = (
-        exp.select(column(NAME), column(VALUE), alias(exp.Count(this=exp.Star()), ROWS))
-        .from_(profile_values(layout, columns).subquery("_values"))
-        .where(column(VALUE).is_(exp.null()).not_())
-        .group_by(column(NAME), column(VALUE))
-    )
-    running = exp.WindowSpec(kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW")
-    by_value = exp.Order(expressions=[exp.Ordered(this=column(VALUE))])
-    cumulative = exp.select(
-        column(NAME),
-        column(VALUE),
-        column(ROWS),
-        alias(exp.Window(this=exp.Sum(this=column(ROWS)), partition_by=[column(NAME)], order=by_value, spec=running),
-              AT_OR_BELOW),
-        alias(exp.Window(this=exp.Sum(this=column(ROWS)), partition_by=[column(NAME)]), COUNT),
-    ).from_(counted.subquery("_counted"))
-    return (
-        exp.select(column(NAME), column(VALUE), column(ROWS), column(AT_OR_BELOW), column(COUNT))
-        .from_(cumulative.subquery("_cumulative"))
-        .where(exp.or_(*(_holds_decile(k) for k in DECILES), _holds_median()))
-        .order_by(column(NAME), column(VALUE))
-    )
-
-
-def training_values(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> tuple[exp.Subquery, dict[str, exp.Column]]:
-    """The not-held-out rows with each column's value (as DOUBLE) computed once, and a reference to each.
+def training_values(
+    layout: DesignLayout, columns: Mapping[str, exp.Expression], where: exp.Expression | None = None
+) -> tuple[exp.Subquery, dict[str, exp.Column]]:
+    """The rows read (`where`, by default not held out) with each column's value (as DOUBLE) computed once, and a reference to each.
 
     The moments query reads each value some twenty times; the linear predictor (a sum over every term)
     written into each of those aggregates was computed that often per row on PostgreSQL, which shares
@@ -128,15 +100,26 @@ def training_values(layout: DesignLayout, columns: Mapping[str, exp.Expression])
     rows = (
         exp.select(*(alias(double(expression.copy()), names[name]) for name, expression in columns.items()))
         .from_(exp.to_table(layout.table))
-        .where(exp.not_(column(layout.holdout)))
+        .where(_rows_read(layout, where))
     )
     return rows.subquery("_training"), {name: column(inner) for name, inner in names.items()}
 
 
-def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression]) -> exp.Select:
-    """One scan of the not-held-out rows: the non-NULL count of each column, in order."""
-    rows, values = training_values(layout, columns)
+def counts_query(layout: DesignLayout, columns: Mapping[str, exp.Expression], where: exp.Expression | None = None) -> exp.Select:
+    """One scan of the rows read: the non-NULL count of each column, in order."""
+    rows, values = training_values(layout, columns, where)
     return exp.select(*(exp.Count(this=value) for value in values.values())).from_(rows)
+
+
+def quantile_rank(q: Fraction, n: int) -> int:
+    """The rank (1-based) of the q-quantile of n >= 1 sorted values (inverted CDF): ceil(q n), at least 1,
+    in exact rational arithmetic."""
+    return max(1, math.ceil(q * n))
+
+
+def decile_rank(k: int, n: int) -> int:
+    """The rank (1-based) of the k-th decile of n sorted values: ceil(k n / 10)."""
+    return quantile_rank(Fraction(k, 10), n)
 
 
 def needed_ranks(n: int) -> tuple[int, ...]:
@@ -153,11 +136,12 @@ def rank_fraction(rank: int, n: int) -> float:
 
 
 def percentiles_query(
-    layout: DesignLayout, columns: Mapping[str, exp.Expression], fractions: Mapping[str, Sequence[float]], dialect: str
+    layout: DesignLayout, columns: Mapping[str, exp.Expression], fractions: Mapping[str, Sequence[float]], dialect: str,
+    where: exp.Expression | None = None,
 ) -> exp.Select:
-    """One scan of the not-held-out rows: per column, its values at `fractions` (inverted CDF), by the
-    dialect's exact aggregate, which answers one list per column (`read_percentiles`)."""
-    rows, values = training_values(layout, columns)
+    """One scan of the rows read: per column, its values at `fractions` (inverted CDF), by the dialect's
+    exact aggregate, which answers one list per column (`read_percentiles`)."""
+    rows, values = training_values(layout, columns, where)
     projections = []
     for name, value in values.items():
         wanted = [number(fraction) for fraction in fractions[name]]
@@ -166,7 +150,7 @@ def percentiles_query(
         elif dialect == "postgres":
             projections.append(_within_group(exp.Array(expressions=wanted), value))
         else:
-            raise ValueError(f"no exact percentile aggregate for {dialect}; use order_statistics_query")
+            raise ValueError(f"no exact percentile aggregate for {dialect}; use ranks_query")
     return exp.select(*projections).from_(rows)
 
 
@@ -177,6 +161,62 @@ def _within_group(fraction: exp.Expression, value: exp.Expression) -> exp.Within
 def read_percentiles(fractions: Mapping[str, Sequence[float]], row: Sequence) -> dict[str, tuple[float, ...]]:
     """Per column of `percentiles_query`'s row, its values in the order of its fractions."""
     return {name: tuple(float(value) for value in values) for name, values in zip(fractions, row, strict=True)}
+
+
+def ranks_query(
+    layout: DesignLayout, columns: Mapping[str, exp.Expression], ranks: Mapping[str, Sequence[int]],
+    where: exp.Expression | None = None,
+) -> exp.Select:
+    """Per column, the distinct non-NULL values that hold one of its `ranks`, in value order: name, value,
+    rows with that value and rows at or below it (a value with r rows and c at or below holds the ranks
+    c - r + 1 to c; `read_ranks`).
+
+    Equal values are grouped first, so a column with few distinct values (an indicator, a count, a
+    binned term) ranks only those, and the ranking is a total order: the same on every run and engine.
+    """
+    stacked = reduce(lambda left, right: exp.union(left, right, distinct=False), [
+        column_values(layout, expression, where).select(alias(exp.Literal.string(name), NAME)) for name, expression in columns.items()
+    ])
+    counted = (
+        exp.select(column(NAME), column(VALUE), alias(exp.Count(this=exp.Star()), ROWS))
+        .from_(stacked.subquery("_values"))
+        .where(column(VALUE).is_(exp.null()).not_())
+        .group_by(column(NAME), column(VALUE))
+    )
+    running = exp.WindowSpec(kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW")
+    by_value = exp.Order(expressions=[exp.Ordered(this=column(VALUE))])
+    cumulative = exp.select(
+        column(NAME),
+        column(VALUE),
+        column(ROWS),
+        alias(exp.Window(this=exp.Sum(this=column(ROWS)), partition_by=[column(NAME)], order=by_value, spec=running),
+              AT_OR_BELOW),
+    ).from_(counted.subquery("_counted"))
+    held = [exp.Paren(this=exp.and_(exp.EQ(this=column(NAME), expression=exp.Literal.string(name)),
+                                    exp.Paren(this=exp.or_(*(_holds(rank) for rank in wanted)))))
+            for name, wanted in ranks.items()]
+    return (
+        exp.select(column(NAME), column(VALUE), column(ROWS), column(AT_OR_BELOW))
+        .from_(cumulative.subquery("_cumulative"))
+        .where(exp.or_(*held))
+        .order_by(column(NAME), column(VALUE))
+    )
+
+
+def _holds(rank: int) -> exp.Expression:
+    """The value holds `rank`: at_or_below - rows < rank <= at_or_below."""
+    below = exp.Paren(this=exp.Sub(this=column(AT_OR_BELOW), expression=column(ROWS)))
+    return exp.Paren(this=exp.and_(exp.LT(this=below, expression=_integer(rank)),
+                                   exp.LTE(this=_integer(rank), expression=column(AT_OR_BELOW))))
+
+
+def read_ranks(ranks: Mapping[str, Sequence[int]], rows: Sequence[tuple]) -> dict[str, dict[int, float]]:
+    """Per column, its value at each of its `ranks`, from the rows of `ranks_query`."""
+    found: dict[str, dict[int, float]] = {name: {} for name in ranks}
+    for name, value, rows_with_value, at_or_below in rows:
+        below = int(at_or_below) - int(rows_with_value)
+        found[name].update({rank: float(value) for rank in ranks[name] if below < rank <= int(at_or_below)})
+    return found
 
 
 def moments_query(
@@ -217,60 +257,10 @@ def _integer(value: int) -> exp.Literal:
     return exp.Literal.number(value)
 
 
-def _times(factor: int, expression: exp.Expression) -> exp.Mul:
-    return exp.Mul(this=_integer(factor), expression=expression)
-
-
-def _below() -> exp.Expression:
-    """Rows strictly below the value: at_or_below - rows."""
-    return exp.Paren(this=exp.Sub(this=column(AT_OR_BELOW), expression=column(ROWS)))
-
-
-def _holds_decile(k: int) -> exp.Expression:
-    """The value holds rank ceil(k n / 10): 10 below < k n <= 10 at_or_below."""
-    return exp.Paren(this=exp.and_(
-        exp.LT(this=_times(10, _below()), expression=_times(k, column(COUNT))),
-        exp.LTE(this=_times(k, column(COUNT)), expression=_times(10, column(AT_OR_BELOW))),
-    ))
-
-
-def _holds_median() -> exp.Expression:
-    """The value holds rank floor((n + 1) / 2) or ceil((n + 1) / 2): 2 below <= n <= 2 at_or_below."""
-    return exp.Paren(this=exp.and_(
-        exp.LTE(this=_times(2, _below()), expression=column(COUNT)),
-        exp.LTE(this=column(COUNT), expression=_times(2, column(AT_OR_BELOW))),
-    ))
-
-
-def decile_rank(k: int, n: int) -> int:
-    """The rank (1-based) of the k-th decile of n sorted values: ceil(k n / 10), in exact integers."""
-    return (k * n + 9) // 10
-
-
-@dataclass(frozen=True)
-class OrderStatistics:
-    """The values of one column that hold the decile and median ranks (n = 0 without values)."""
-
-    n: int
-    values: tuple[tuple[float, int, int], ...] = ()  # (value, rows below it, rows at or below it), ascending
-
-    def at(self, rank: int) -> tuple[float, int]:
-        """The value at `rank` (1-based) and the count of values at or below it."""
-        for value, below, at_or_below in self.values:
-            if below < rank <= at_or_below:
-                return value, at_or_below
-        raise ValueError(f"rank {rank} of {self.n} was not selected")
-
-    def median(self) -> float | None:
-        if self.n == 0:
-            return None
-        return (self.at((self.n + 1) // 2)[0] + self.at((self.n + 2) // 2)[0]) / 2
-
-
 @dataclass(frozen=True)
 class RankedValues:
-    """The values of one column at the decile and median ranks, and the rows at or below each decile:
-    what `summarize` reads of `OrderStatistics`, from percentile aggregates and a counting scan."""
+    """The values of one column at the decile and median ranks, and the rows at or below each decile
+    (from `moments_query` with edges): what `_profile` reads."""
 
     n: int
     by_rank: Mapping[int, float]
@@ -290,14 +280,6 @@ class RankedValues:
         return tuple(sorted({self.by_rank[decile_rank(k, self.n)] for k in DECILES})) if self.n else ()
 
 
-def ranked_values(counts: Mapping[str, int], values: Mapping[str, Sequence[float]]) -> dict[str, RankedValues]:
-    """Per column, its `RankedValues` (no edge counts yet) from its count and its values at `needed_ranks`."""
-    return {
-        name: RankedValues(n, dict(zip(needed_ranks(n), values.get(name, ()), strict=True)), {})
-        for name, n in counts.items()
-    }
-
-
 def with_edge_counts(order: Mapping[str, RankedValues], tail: Sequence) -> dict[str, RankedValues]:
     """`order` with the rows at or below each edge, from the values `moments_query` adds after the moments
     (per column in order, per edge ascending)."""
@@ -310,17 +292,7 @@ def with_edge_counts(order: Mapping[str, RankedValues], tail: Sequence) -> dict[
     return counted
 
 
-def read_order_statistics(names: Sequence[str], rows: Sequence[tuple]) -> dict[str, OrderStatistics]:
-    """Per name, its `OrderStatistics` from the rows of `order_statistics_query`."""
-    counts = {name: 0 for name in names}
-    values: dict[str, list[tuple[float, int, int]]] = {name: [] for name in names}
-    for name, value, rows_with_value, at_or_below, n in rows:
-        counts[name] = int(n)
-        values[name].append((float(value), int(at_or_below) - int(rows_with_value), int(at_or_below)))
-    return {name: OrderStatistics(counts[name], tuple(values[name])) for name in names}
-
-
-def read_profiles(names: Sequence[str], order: Mapping[str, OrderStatistics | RankedValues], moments: Sequence) -> dict[str, Profile]:
+def read_profiles(names: Sequence[str], order: Mapping[str, RankedValues], moments: Sequence) -> dict[str, Profile]:
     """A `Profile` per name, in the order of `names`, from the order statistics and `moments_query`'s row.
 
     A column with no non-NULL value has None for mean, sd, min, max and median and no edges or
@@ -333,7 +305,7 @@ def read_profiles(names: Sequence[str], order: Mapping[str, OrderStatistics | Ra
     return profiles
 
 
-def summarize(n: int, nulls: int, total, shifted, squares, low, high, order: OrderStatistics | RankedValues) -> Profile:
+def summarize(n: int, nulls: int, total, shifted, squares, low, high, order: RankedValues) -> Profile:
     """A `Profile` from a column's counts, sum, sums of (x - shift) and its square, min, max and order statistics."""
     if n == 0:
         return Profile(count=0, nulls=nulls, mean=None, sd=None, min=None, max=None, median=None, edges=(), shares=())

@@ -1,0 +1,68 @@
+"""Values of many columns at exact ranks (order statistics), by the route the engine runs best.
+
+The training profiles (deciles, median) and the learned terms' quantiles (BINS edges, SPLINE knots,
+CAPPED caps) both read them: first the non-NULL count n of each column, then the values at the ranks
+each caller derives from n. On DuckDB and PostgreSQL an exact percentile aggregate that sorts and spills
+answers in one scan whatever the distinct values (a query per column on DuckDB, which then reads only
+that column); elsewhere (Spark, whose PERCENTILE_DISC holds every distinct value in memory once per
+fraction, and SQLite, which has none) a window over the distinct values that the engine can spill.
+Both give the same value at a rank, bit for bit. SQL: featpipe.sqlgen.profile.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+from sqlglot import exp
+
+from ..compiler.layout import DesignLayout
+from ..engines.base import Engine
+from ..sqlgen.profile import (
+    COLUMNAR_DIALECTS,
+    PERCENTILE_DIALECTS,
+    counts_query,
+    percentiles_query,
+    rank_fraction,
+    ranks_query,
+    read_percentiles,
+    read_ranks,
+)
+
+PERCENTILE, WINDOW = "percentile", "window"
+
+
+def engine_route(dialect: str) -> str:
+    """PERCENTILE where the engine has an exact percentile aggregate that spills, else WINDOW."""
+    return PERCENTILE if dialect in PERCENTILE_DIALECTS else WINDOW
+
+
+def non_null_counts(
+    engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression], where: exp.Expression | None = None
+) -> dict[str, int]:
+    """Per column, its non-NULL values among the rows `where` selects (default: not held out)."""
+    (row,) = engine.fetch(counts_query(layout, columns, where))
+    return dict(zip(columns, (int(n) for n in row), strict=True))
+
+
+def values_at_ranks(
+    engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression], counts: Mapping[str, int],
+    ranks: Mapping[str, Sequence[int]], where: exp.Expression | None = None, route: str | None = None,
+) -> dict[str, dict[int, float]]:
+    """Per column, its value at each of its `ranks` (1-based, in its `counts` non-NULL values in ascending
+    order: `non_null_counts`) among the rows `where` selects; by `route`, by default the engine's
+    (`engine_route`). A column without ranks is not read."""
+    wanted = {name: tuple(ranks[name]) for name in columns if ranks[name]}
+    if not wanted:
+        return {name: {} for name in columns}
+    found: dict[str, dict[int, float]] = {name: {} for name in columns}
+    if (route or engine_route(engine.dialect)) == WINDOW:
+        query = ranks_query(layout, {name: columns[name] for name in wanted}, wanted, where)
+        found.update(read_ranks(wanted, engine.fetch(query)))
+        return found
+    groups = [[name] for name in wanted] if engine.dialect in COLUMNAR_DIALECTS else [list(wanted)]
+    for group in groups:
+        fractions = {name: tuple(rank_fraction(rank, counts[name]) for rank in wanted[name]) for name in group}
+        query = percentiles_query(layout, {name: columns[name] for name in group}, fractions, engine.dialect, where)
+        values = read_percentiles(fractions, engine.fetch(query)[0])
+        found.update({name: dict(zip(wanted[name], values[name], strict=True)) for name in group})
+    return found
