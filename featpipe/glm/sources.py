@@ -178,6 +178,7 @@ class BatchSource:
         self.inverse_scales = 1.0 / scaling.scales
         self.passes = 0
         self._buffers: dict[str, np.ndarray] = {}
+        self._saturated: float | None = None  # the sum of w times the family's saturated deviance, once known
 
     def _buffer(self, role: str, rows: int, columns: int) -> np.ndarray:
         """A Fortran-ordered rows x columns scratch matrix over memory reused from batch to batch
@@ -200,16 +201,21 @@ class BatchSource:
 
     def _pass(self, requests: Sequence[Request], profile: _ProfileTotals | None) -> list[Statistics]:
         totals = [_Totals(len(request.terms) + 1) for request in requests]
+        saturated = 0.0 if self._saturated is None else None  # summed in the first pass only: a sum of y alone
         for batch in self.batches():
             standardized = self._standardize(batch.terms, len(batch.y))
             if profile is not None:
                 profile.add(batch, standardized, self.scaling.scales)
+            if saturated is not None:
+                saturated += _weighted_sum(self.family.saturated_deviance(batch.y), batch.weight)
             for request, total in zip(requests, totals, strict=True):
                 x = _select(standardized, request.terms)
                 scratch = None if x is None else self._buffer("rooted", *x.shape)
                 total.add(self.family, batch, x, request.beta, scratch)
         self.passes += 1
-        return [total.statistics() for total in totals]
+        if saturated is not None:
+            self._saturated = saturated
+        return [total.statistics(self._saturated) for total in totals]
 
     def _standardize(self, columns: list[np.ndarray], rows: int) -> np.ndarray:
         """(x - center) / scale per term, as one Fortran-ordered matrix (columns contiguous for BLAS)."""
@@ -237,33 +243,44 @@ class _Totals:
         self.xtwx = np.zeros((size, size))
 
     def add(self, family: Family, batch: Batch, x: np.ndarray | None, beta: np.ndarray, scratch: np.ndarray | None) -> None:
-        """Add one batch; `scratch` (shaped like x) receives the rows of x times sqrt(weight)."""
-        eta = np.full(len(batch.y), beta[0]) if x is None else x @ beta[1:] + beta[0]
-        if batch.offset is not None:
-            eta += batch.offset
+        """Add one batch; `scratch` (shaped like x) receives the rows of x times sqrt(weight). Without terms
+        or offset the linear predictor is one number for every row, and so are mu and the working weight."""
+        rows = len(batch.y)
+        if x is None:
+            eta = np.float64(beta[0]) if batch.offset is None else batch.offset + beta[0]
+        else:
+            eta = x @ beta[1:]
+            eta += beta[0]
+            if batch.offset is not None:
+                eta += batch.offset
         eta = family.clamp(eta)
         mu = family.mean(eta)
         weight = family.working_weight(mu)
         residual = family.score_residual(batch.y, mu)
-        unit = family.unit_deviance(batch.y, eta, mu)
-        pearson = family.pearson(batch.y, mu)
         if batch.weight is not None:
-            weight, residual, unit = weight * batch.weight, residual * batch.weight, unit * batch.weight
-            pearson = pearson * batch.weight
-        self.deviance += float(unit.sum())
-        self.pearson += float(pearson.sum())
-        self.boundary += int(family.boundary(eta).sum())
+            weight, residual = weight * batch.weight, residual * batch.weight
+        self.deviance += _weighted_sum(family.fitted_deviance(batch.y, eta, mu), batch.weight)
+        self.pearson += _weighted_sum(family.pearson(batch.y, mu), batch.weight)
+        self.boundary += int(np.broadcast_to(family.boundary(eta), rows).sum())
         self.score[0] += residual.sum()
-        self.xtwx[0, 0] += weight.sum()
+        self.xtwx[0, 0] += float(weight.sum()) if np.ndim(weight) else float(weight) * rows
         if x is not None:
             self.score[1:] += residual @ x
             self.xtwx[0, 1:] += weight @ x
             rooted = np.multiply(x, np.sqrt(weight)[:, None], out=scratch)
             self.xtwx[1:, 1:] += dsyrk(1.0, rooted, trans=1, lower=0)  # upper triangle of rooted' rooted
 
-    def statistics(self) -> Statistics:
+    def statistics(self, saturated: float) -> Statistics:
+        """The sums, the deviance with the saturated part common to every model (see `Family.saturated_deviance`)."""
         upper = np.triu(self.xtwx)
-        return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T, self.pearson)
+        return Statistics(self.deviance + saturated, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T, self.pearson)
+
+
+def _weighted_sum(values: np.ndarray | None, weight: np.ndarray | None) -> float:
+    """Sum of per-row values (None: all 0) times the prior weights (None: all 1)."""
+    if values is None:
+        return 0.0
+    return float(values.sum() if weight is None else weight @ values)
 
 
 class _ProfileTotals:
