@@ -12,16 +12,19 @@ Coefficients are on the standardized scale: term t enters as (x - center) / scal
 
 from __future__ import annotations
 
+import contextlib
 import math
 import tempfile
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
+from functools import cache
 from typing import Protocol
 
 import numpy as np
 import pyarrow as pa
 from scipy.linalg.blas import dsyrk
+from threadpoolctl import ThreadpoolController
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
@@ -202,16 +205,17 @@ class BatchSource:
     def _pass(self, requests: Sequence[Request], profile: _ProfileTotals | None) -> list[Statistics]:
         totals = [_Totals(len(request.terms) + 1) for request in requests]
         saturated = 0.0 if self._saturated is None else None  # summed in the first pass only: a sum of y alone
-        for batch in self.batches():
-            standardized = self._standardize(batch.terms, len(batch.y))
-            if profile is not None:
-                profile.add(batch, standardized, self.scaling.scales)
-            if saturated is not None:
-                saturated += _weighted_sum(self.family.saturated_deviance(batch.y), batch.weight)
-            for request, total in zip(requests, totals, strict=True):
-                x = _select(standardized, request.terms)
-                scratch = None if x is None else self._buffer("rooted", *x.shape)
-                total.add(self.family, batch, x, request.beta, scratch)
+        with _one_blas_thread():
+            for batch in self.batches():
+                standardized = self._standardize(batch.terms, len(batch.y))
+                if profile is not None:
+                    profile.add(batch, standardized, self.scaling.scales)
+                if saturated is not None:
+                    saturated += _weighted_sum(self.family.saturated_deviance(batch.y), batch.weight)
+                for request, total in zip(requests, totals, strict=True):
+                    x = _select(standardized, request.terms)
+                    scratch = None if x is None else self._buffer("rooted", *x.shape)
+                    total.add(self.family, batch, x, request.beta, scratch)
         self.passes += 1
         if saturated is not None:
             self._saturated = saturated
@@ -224,6 +228,19 @@ class BatchSource:
             np.subtract(values, self.scaling.centers[j], out=matrix[:, j])
             matrix[:, j] *= self.inverse_scales[j]
         return matrix
+
+
+@cache
+def _blas_controller() -> ThreadpoolController:
+    return ThreadpoolController()  # finds the BLAS libraries numpy and scipy loaded (once: it scans the process)
+
+
+def _one_blas_thread() -> contextlib.AbstractContextManager:
+    """BLAS on one thread while a pass runs. Its products over a batch (n x p with p small) are bound by
+    memory, not arithmetic, so a second BLAS thread gains little; it does take the core the engine
+    reads the next batch on, and on a busy machine its threads wait on each other: in
+    benchmarks/bench_fit.py a 2M-row stream fit took 6.9 s with two BLAS threads and 3.8 s with one."""
+    return _blas_controller().limit(limits=1, user_api="blas")
 
 
 def _select(matrix: np.ndarray, terms: tuple[int, ...]) -> np.ndarray | None:
