@@ -24,7 +24,7 @@ import math
 from abc import ABC, abstractmethod
 
 import numpy as np
-from scipy.special import expit, gammaln, xlogy
+from scipy.special import gammaln, xlogy
 
 from ..project.load import LINKS
 
@@ -81,8 +81,8 @@ class Family(ABC):
         """Each row's Pearson chi2 (y - mu)^2 / V(mu) before its prior weight; 0 where V(mu) is 0 (the SQL
         leaves those rows out of the sum)."""
         variance = self.variance(mu)
-        safe = np.where(variance > 0, variance, 1.0)
-        return np.where(variance > 0, (y - mu) ** 2 / safe, 0.0)
+        squared = np.square(y - mu)
+        return np.divide(squared, variance, out=np.zeros_like(squared), where=variance > 0)
 
     def boundary(self, eta: np.ndarray) -> np.ndarray:
         """Rows whose fitted value is within 1e-10 of the family's boundary."""
@@ -99,7 +99,7 @@ class Binomial(Family):
     eta_limit = 36.0
 
     def mean(self, eta):
-        return expit(eta)
+        return 1.0 / (1.0 + np.exp(-eta))  # as the SQL writes it; eta is clamped, so EXP stays finite
 
     def variance(self, mu):
         return mu * (1.0 - mu)

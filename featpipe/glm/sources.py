@@ -214,7 +214,7 @@ class BatchSource:
                     saturated += _weighted_sum(self.family.saturated_deviance(batch.y), batch.weight)
                 for request, total in zip(requests, totals, strict=True):
                     x = _select(standardized, request.terms)
-                    scratch = None if x is None else self._buffer("rooted", *x.shape)
+                    scratch = None if x is None else self._buffer("rooted", len(x), 1 + x.shape[1])
                     total.add(self.family, batch, x, request.beta, scratch)
         self.passes += 1
         if saturated is not None:
@@ -260,8 +260,9 @@ class _Totals:
         self.xtwx = np.zeros((size, size))
 
     def add(self, family: Family, batch: Batch, x: np.ndarray | None, beta: np.ndarray, scratch: np.ndarray | None) -> None:
-        """Add one batch; `scratch` (shaped like x) receives the rows of x times sqrt(weight). Without terms
-        or offset the linear predictor is one number for every row, and so are mu and the working weight."""
+        """Add one batch; `scratch` (rows x (1 + columns of x)) receives the rows of [1, x] times sqrt(weight).
+        Without terms or offset the linear predictor is one number for every row, and so are mu and the
+        working weight."""
         rows = len(batch.y)
         if x is None:
             eta = np.float64(beta[0]) if batch.offset is None else batch.offset + beta[0]
@@ -280,12 +281,13 @@ class _Totals:
         self.pearson += _weighted_sum(family.pearson(batch.y, mu), batch.weight)
         self.boundary += int(np.broadcast_to(family.boundary(eta), rows).sum())
         self.score[0] += residual.sum()
-        self.xtwx[0, 0] += float(weight.sum()) if np.ndim(weight) else float(weight) * rows
-        if x is not None:
+        if x is None:
+            self.xtwx[0, 0] += float(weight.sum()) if np.ndim(weight) else float(weight) * rows
+        else:
             self.score[1:] += residual @ x
-            self.xtwx[0, 1:] += weight @ x
-            rooted = np.multiply(x, np.sqrt(weight)[:, None], out=scratch)
-            self.xtwx[1:, 1:] += dsyrk(1.0, rooted, trans=1, lower=0)  # upper triangle of rooted' rooted
+            root = np.sqrt(weight, out=scratch[:, 0])  # the intercept's column of ones, rooted
+            np.multiply(x, root[:, None], out=scratch[:, 1:])
+            self.xtwx += dsyrk(1.0, scratch, trans=1, lower=0)  # upper triangle of [1, x]' W [1, x] in one product
 
     def statistics(self, saturated: float) -> Statistics:
         """The sums, the deviance with the saturated part common to every model (see `Family.saturated_deviance`)."""
