@@ -15,6 +15,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from statsmodels.stats.outliers_influence import variance_inflation_factor
+from threadpoolctl import threadpool_info, threadpool_limits
 
 from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
@@ -210,6 +211,29 @@ def test_sql_and_numpy_statistics_agree_row_for_row(tmp_path):
                 np.testing.assert_allclose(have.xtwx, want.xtwx, rtol=1e-11, atol=1e-9)
         if family == "binomial":  # eta = 30 x_ratio / sd puts rows past the 1e-10 boundary
             assert 0 < expected[0].boundary_rows < len(y)
+
+
+def test_a_pass_over_batches_runs_blas_on_one_thread_and_gives_the_threads_back():
+    """The batch products are bound by memory; a second BLAS thread would take the core the engine reads on."""
+    terms, x, y, offset, weight = random_case("poisson", seed=12, rows=200)
+    rows = in_memory_batches(Batch(y, offset, weight, list(x.T)), 64)
+    seen = []
+
+    def blas_threads() -> set[int]:  # as threadpoolctl reads them from the BLAS libraries numpy and scipy loaded
+        return {info["num_threads"] for info in threadpool_info() if info["user_api"] == "blas"}
+
+    def watched_batches():
+        for batch in rows():
+            seen.append(blas_threads())
+            yield batch
+
+    requests = [Request((0, 1, 2), np.array([0.5, 0.3, -0.2, 0.1])), Request((), np.array([-0.3]))]
+    with threadpool_limits(limits=2, user_api="blas"):
+        statistics = BatchSource("arrays", watched_batches, get_family("poisson"), Scaling(x.mean(axis=0), x.std(axis=0))).evaluate(requests)
+        after = blas_threads()
+    assert seen == [{1}] * 4  # 200 rows in batches of 64
+    assert after == {2}
+    assert math.isfinite(statistics[0].deviance)
 
 
 def test_warm_start_from_a_sample_reads_the_table_fewer_times(tmp_path):

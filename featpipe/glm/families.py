@@ -24,7 +24,7 @@ import math
 from abc import ABC, abstractmethod
 
 import numpy as np
-from scipy.special import expit, gammaln, xlogy
+from scipy.special import gammaln, xlogy
 
 from ..project.load import LINKS
 
@@ -60,9 +60,14 @@ class Family(ABC):
     def variance(self, mu: np.ndarray) -> np.ndarray:
         """The variance function; times the prior weight it is the IRLS working weight."""
 
+    def saturated_deviance(self, y: np.ndarray) -> np.ndarray | None:
+        """The part of each row's unit deviance that depends on y alone (None: no such part). It is the same
+        at every coefficient vector, so a source sums it once per fit rather than once per pass and model."""
+        return None
+
     @abstractmethod
-    def unit_deviance(self, y: np.ndarray, eta: np.ndarray, mu: np.ndarray) -> np.ndarray:
-        """Each row's deviance contribution before its prior weight."""
+    def fitted_deviance(self, y: np.ndarray, eta: np.ndarray, mu: np.ndarray) -> np.ndarray:
+        """Each row's unit deviance less its `saturated_deviance`, before its prior weight."""
 
     def working_weight(self, mu: np.ndarray) -> np.ndarray:
         """The IRLS working weight before the prior weight: V(mu) for a canonical link."""
@@ -76,8 +81,8 @@ class Family(ABC):
         """Each row's Pearson chi2 (y - mu)^2 / V(mu) before its prior weight; 0 where V(mu) is 0 (the SQL
         leaves those rows out of the sum)."""
         variance = self.variance(mu)
-        safe = np.where(variance > 0, variance, 1.0)
-        return np.where(variance > 0, (y - mu) ** 2 / safe, 0.0)
+        squared = np.square(y - mu)
+        return np.divide(squared, variance, out=np.zeros_like(squared), where=variance > 0)
 
     def boundary(self, eta: np.ndarray) -> np.ndarray:
         """Rows whose fitted value is within 1e-10 of the family's boundary."""
@@ -94,15 +99,18 @@ class Binomial(Family):
     eta_limit = 36.0
 
     def mean(self, eta):
-        return expit(eta)
+        return 1.0 / (1.0 + np.exp(-eta))  # as the SQL writes it; eta is clamped, so EXP stays finite
 
     def variance(self, mu):
         return mu * (1.0 - mu)
 
-    def unit_deviance(self, y, eta, mu):
+    def saturated_deviance(self, y):
+        """A proportion's saturated term 2 (y ln y + (1 - y) ln(1 - y)), exactly 0 for a 0/1 target."""
+        return 2.0 * (xlogy(y, y) + xlogy(1.0 - y, 1.0 - y))
+
+    def fitted_deviance(self, y, eta, mu):
         softplus = np.maximum(eta, 0.0) + np.log1p(np.exp(-np.abs(eta)))  # ln(1 + e^eta) without overflow
-        # A proportion's saturated term y ln y + (1 - y) ln(1 - y), exactly 0 for a 0/1 target.
-        return 2.0 * (softplus - y * eta) + 2.0 * (xlogy(y, y) + xlogy(1.0 - y, 1.0 - y))
+        return 2.0 * (softplus - y * eta)
 
     def boundary(self, eta):
         return np.abs(eta) > BOUNDARY_ETA
@@ -122,9 +130,11 @@ class Poisson(Family):
     def variance(self, mu):
         return mu
 
-    def unit_deviance(self, y, eta, mu):
-        y_ln_y = np.where(y > 0, y * np.log(np.where(y > 0, y, 1.0)), 0.0)
-        return 2.0 * (y_ln_y - y * eta + mu - y)
+    def saturated_deviance(self, y):
+        return 2.0 * np.where(y > 0, y * np.log(np.where(y > 0, y, 1.0)), 0.0)  # 2 y ln y
+
+    def fitted_deviance(self, y, eta, mu):
+        return 2.0 * (mu - y * eta - y)
 
     def boundary(self, eta):
         return eta < -BOUNDARY_ETA
@@ -172,8 +182,8 @@ class Gaussian(Family):
     def variance(self, mu):
         return np.ones_like(mu)
 
-    def unit_deviance(self, y, eta, mu):
-        return (y - mu) ** 2
+    def fitted_deviance(self, y, eta, mu):
+        return (y - mu) ** 2  # as one square: split into y^2 - 2 y mu + mu^2 it would cancel
 
     def link_of_mean(self, mean):
         return mean
@@ -215,8 +225,11 @@ class Gamma(_LogLink):
     def variance(self, mu):
         return mu**2
 
-    def unit_deviance(self, y, eta, mu):
-        return 2.0 * ((y - mu) / mu - np.log(np.where(y > 0, y, np.nan)) + eta)  # NaN where y <= 0, refused before a fit
+    def saturated_deviance(self, y):
+        return -2.0 * np.log(np.where(y > 0, y, np.nan))  # NaN where y <= 0, refused before a fit
+
+    def fitted_deviance(self, y, eta, mu):
+        return 2.0 * ((y - mu) / mu + eta)
 
     @staticmethod
     def likelihood_constant(y: np.ndarray) -> np.ndarray:
@@ -237,10 +250,13 @@ class Tweedie(_LogLink):
     def variance(self, mu):
         return mu**self.power
 
-    def unit_deviance(self, y, eta, mu):
+    def saturated_deviance(self, y):
         p = self.power
-        y_part = np.where(y > 0, np.power(np.where(y > 0, y, 1.0), 2.0 - p), 0.0) / ((1.0 - p) * (2.0 - p))
-        return 2.0 * (y_part - y * np.exp((1.0 - p) * eta) / (1.0 - p) + np.exp((2.0 - p) * eta) / (2.0 - p))
+        return 2.0 * np.where(y > 0, np.power(np.where(y > 0, y, 1.0), 2.0 - p), 0.0) / ((1.0 - p) * (2.0 - p))
+
+    def fitted_deviance(self, y, eta, mu):
+        p = self.power
+        return 2.0 * (np.exp((2.0 - p) * eta) / (2.0 - p) - y * np.exp((1.0 - p) * eta) / (1.0 - p))
 
 
 FAMILIES = {family.name: family for family in (Binomial(), Poisson(), Gaussian(), Gamma(), QuasiPoisson(), QuasiBinomial())}

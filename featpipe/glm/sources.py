@@ -12,15 +12,18 @@ Coefficients are on the standardized scale: term t enters as (x - center) / scal
 
 from __future__ import annotations
 
+import contextlib
 import math
 import tempfile
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, replace
+from functools import cache
 from typing import Protocol
 
 import numpy as np
 import pyarrow as pa
 from scipy.linalg.blas import dsyrk
+from threadpoolctl import ThreadpoolController
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
@@ -178,6 +181,7 @@ class BatchSource:
         self.inverse_scales = 1.0 / scaling.scales
         self.passes = 0
         self._buffers: dict[str, np.ndarray] = {}
+        self._saturated: float | None = None  # the sum of w times the family's saturated deviance, once known
 
     def _buffer(self, role: str, rows: int, columns: int) -> np.ndarray:
         """A Fortran-ordered rows x columns scratch matrix over memory reused from batch to batch
@@ -200,16 +204,22 @@ class BatchSource:
 
     def _pass(self, requests: Sequence[Request], profile: _ProfileTotals | None) -> list[Statistics]:
         totals = [_Totals(len(request.terms) + 1) for request in requests]
-        for batch in self.batches():
-            standardized = self._standardize(batch.terms, len(batch.y))
-            if profile is not None:
-                profile.add(batch, standardized, self.scaling.scales)
-            for request, total in zip(requests, totals, strict=True):
-                x = _select(standardized, request.terms)
-                scratch = None if x is None else self._buffer("rooted", *x.shape)
-                total.add(self.family, batch, x, request.beta, scratch)
+        saturated = 0.0 if self._saturated is None else None  # summed in the first pass only: a sum of y alone
+        with _one_blas_thread():
+            for batch in self.batches():
+                standardized = self._standardize(batch.terms, len(batch.y))
+                if profile is not None:
+                    profile.add(batch, standardized, self.scaling.scales)
+                if saturated is not None:
+                    saturated += _weighted_sum(self.family.saturated_deviance(batch.y), batch.weight)
+                for request, total in zip(requests, totals, strict=True):
+                    x = _select(standardized, request.terms)
+                    scratch = None if x is None else self._buffer("rooted", len(x), 1 + x.shape[1])
+                    total.add(self.family, batch, x, request.beta, scratch)
         self.passes += 1
-        return [total.statistics() for total in totals]
+        if saturated is not None:
+            self._saturated = saturated
+        return [total.statistics(self._saturated) for total in totals]
 
     def _standardize(self, columns: list[np.ndarray], rows: int) -> np.ndarray:
         """(x - center) / scale per term, as one Fortran-ordered matrix (columns contiguous for BLAS)."""
@@ -218,6 +228,19 @@ class BatchSource:
             np.subtract(values, self.scaling.centers[j], out=matrix[:, j])
             matrix[:, j] *= self.inverse_scales[j]
         return matrix
+
+
+@cache
+def _blas_controller() -> ThreadpoolController:
+    return ThreadpoolController()  # finds the BLAS libraries numpy and scipy loaded (once: it scans the process)
+
+
+def _one_blas_thread() -> contextlib.AbstractContextManager:
+    """BLAS on one thread while a pass runs. Its products over a batch (n x p with p small) are bound by
+    memory, not arithmetic, so a second BLAS thread gains little; it does take the core the engine
+    reads the next batch on, and on a busy machine its threads wait on each other: in
+    benchmarks/bench_fit.py a 2M-row stream fit took 6.9 s with two BLAS threads and 3.8 s with one."""
+    return _blas_controller().limit(limits=1, user_api="blas")
 
 
 def _select(matrix: np.ndarray, terms: tuple[int, ...]) -> np.ndarray | None:
@@ -237,33 +260,46 @@ class _Totals:
         self.xtwx = np.zeros((size, size))
 
     def add(self, family: Family, batch: Batch, x: np.ndarray | None, beta: np.ndarray, scratch: np.ndarray | None) -> None:
-        """Add one batch; `scratch` (shaped like x) receives the rows of x times sqrt(weight)."""
-        eta = np.full(len(batch.y), beta[0]) if x is None else x @ beta[1:] + beta[0]
-        if batch.offset is not None:
-            eta += batch.offset
+        """Add one batch; `scratch` (rows x (1 + columns of x)) receives the rows of [1, x] times sqrt(weight).
+        Without terms or offset the linear predictor is one number for every row, and so are mu and the
+        working weight."""
+        rows = len(batch.y)
+        if x is None:
+            eta = np.float64(beta[0]) if batch.offset is None else batch.offset + beta[0]
+        else:
+            eta = x @ beta[1:]
+            eta += beta[0]
+            if batch.offset is not None:
+                eta += batch.offset
         eta = family.clamp(eta)
         mu = family.mean(eta)
         weight = family.working_weight(mu)
         residual = family.score_residual(batch.y, mu)
-        unit = family.unit_deviance(batch.y, eta, mu)
-        pearson = family.pearson(batch.y, mu)
         if batch.weight is not None:
-            weight, residual, unit = weight * batch.weight, residual * batch.weight, unit * batch.weight
-            pearson = pearson * batch.weight
-        self.deviance += float(unit.sum())
-        self.pearson += float(pearson.sum())
-        self.boundary += int(family.boundary(eta).sum())
+            weight, residual = weight * batch.weight, residual * batch.weight
+        self.deviance += _weighted_sum(family.fitted_deviance(batch.y, eta, mu), batch.weight)
+        self.pearson += _weighted_sum(family.pearson(batch.y, mu), batch.weight)
+        self.boundary += int(np.broadcast_to(family.boundary(eta), rows).sum())
         self.score[0] += residual.sum()
-        self.xtwx[0, 0] += weight.sum()
-        if x is not None:
+        if x is None:
+            self.xtwx[0, 0] += float(weight.sum()) if np.ndim(weight) else float(weight) * rows
+        else:
             self.score[1:] += residual @ x
-            self.xtwx[0, 1:] += weight @ x
-            rooted = np.multiply(x, np.sqrt(weight)[:, None], out=scratch)
-            self.xtwx[1:, 1:] += dsyrk(1.0, rooted, trans=1, lower=0)  # upper triangle of rooted' rooted
+            root = np.sqrt(weight, out=scratch[:, 0])  # the intercept's column of ones, rooted
+            np.multiply(x, root[:, None], out=scratch[:, 1:])
+            self.xtwx += dsyrk(1.0, scratch, trans=1, lower=0)  # upper triangle of [1, x]' W [1, x] in one product
 
-    def statistics(self) -> Statistics:
+    def statistics(self, saturated: float) -> Statistics:
+        """The sums, the deviance with the saturated part common to every model (see `Family.saturated_deviance`)."""
         upper = np.triu(self.xtwx)
-        return Statistics(self.deviance, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T, self.pearson)
+        return Statistics(self.deviance + saturated, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T, self.pearson)
+
+
+def _weighted_sum(values: np.ndarray | None, weight: np.ndarray | None) -> float:
+    """Sum of per-row values (None: all 0) times the prior weights (None: all 1)."""
+    if values is None:
+        return 0.0
+    return float(values.sum() if weight is None else weight @ values)
 
 
 class _ProfileTotals:
