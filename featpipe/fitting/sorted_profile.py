@@ -16,18 +16,21 @@ from ..fitted import Profile
 from ..sqlgen.profile import RankedValues, needed_ranks, summarize
 
 
-def sorted_profile(chunks: Sequence[pa.Array]) -> Profile:
-    """The `Profile` of a column that arrived as Arrow `chunks` (DOUBLE, NULLs counted apart)."""
-    nulls = sum(chunk.null_count for chunk in chunks)
+def present_values(chunks: Sequence[pa.Array]) -> tuple[np.ndarray, int]:
+    """A column that arrived as Arrow `chunks` (DOUBLE) as a fresh array of its non-NULL values, and its NULL count."""
     present = [chunk.drop_null().to_numpy(zero_copy_only=False) for chunk in chunks]
-    values = np.concatenate(present) if present else np.empty(0)  # a fresh array, sorted in place
+    return (np.concatenate(present) if present else np.empty(0)), sum(chunk.null_count for chunk in chunks)
+
+
+def sorted_profile(values: np.ndarray, nulls: int) -> Profile:
+    """The `Profile` of a column's non-NULL `values` (a fresh array, sorted then shifted in place) and NULL count."""
     values.sort()
     n = len(values)
     if n == 0:
         return summarize(0, nulls, None, None, None, None, None, RankedValues(0, {}, {}))
     ranked = RankedValues(n, {rank: float(values[rank - 1]) for rank in needed_ranks(n)}, {})
     at_or_below = {edge: int(np.searchsorted(values, edge, side="right")) for edge in ranked.edges()}
-    median = ranked.median()
-    shifted = values - median
-    return summarize(n, nulls, float(values.sum()), float(shifted.sum()), float(shifted @ shifted), float(values[0]),
-                     float(values[-1]), RankedValues(n, ranked.by_rank, at_or_below))
+    total, low, high = float(values.sum()), float(values[0]), float(values[-1])
+    shifted = np.subtract(values, ranked.median(), out=values)
+    return summarize(n, nulls, total, float(shifted.sum()), float(shifted @ shifted), low, high,
+                     RankedValues(n, ranked.by_rank, at_or_below))
