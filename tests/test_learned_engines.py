@@ -97,13 +97,16 @@ def test_every_learned_term_fits_scores_and_drifts_alike_on_postgres_and_spark(d
     for fitted in (mine["fitted"], theirs["fitted"]):
         fitted["fit"].pop("passes", None)
     assert same_numbers(mine["fitted"], theirs["fitted"]) == [], engine
-    # Scores of the batch (an unseen level goes to `other`): the same statuses, numbers to 1e-9.
+    # Scores of the batch (an unseen level goes to `other`): the same statuses, numbers to 1e-9. The file
+    # writes coefficients to 12 significant digits, so fits that agree to 1e-12 may still differ in a last
+    # digit (measured: 3.9e-12 on a spline column whose values reach ~100), which moves a linear predictor
+    # near 0 by ~1e-10: absolute, as relative to it, 1e-9.
     left, right = mine["scores"], theirs["scores"]
     assert list(right.columns) == list(left.columns)
     for name in left.columns:
         if pd.api.types.is_numeric_dtype(left[name]) and name != "lease_id":
             assert right[name].astype(float).tolist() == pytest.approx(left[name].astype(float).tolist(), rel=1e-9,
-                                                                       abs=1e-12, nan_ok=True), (engine, name)
+                                                                       abs=1e-9, nan_ok=True), (engine, name)
         else:
             assert plain(right[name].astype(object)) == plain(left[name].astype(object)), (engine, name)
     assert (left[STATUS] == "ok").all()
