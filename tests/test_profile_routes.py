@@ -94,12 +94,7 @@ def test_spark_profiles_rank_distinct_values_in_a_window_not_by_percentile_disc(
 def same_profiles(got, expected, names):
     """Counts, order statistics and shares bit for bit; mean and sd (sums in each engine's order) to 1e-12."""
     for name in names:
-        assert (got[name].count, got[name].nulls, got[name].min, got[name].max, got[name].median, got[name].edges,
-                got[name].shares) == (expected[name].count, expected[name].nulls, expected[name].min, expected[name].max,
-                                      expected[name].median, expected[name].edges, expected[name].shares), name
-        for figure in ("mean", "sd"):
-            value = getattr(expected[name], figure)
-            assert getattr(got[name], figure) == (None if value is None else pytest.approx(value, rel=1e-12)), (name, figure)
+        assert_profile(got[name], expected[name])
 
 
 def test_duckdb_profiles_equal_sqlite_portable_route(tmp_path):

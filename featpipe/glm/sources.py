@@ -16,6 +16,7 @@ import contextlib
 import math
 import tempfile
 from collections.abc import Callable, Iterable, Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from functools import cache
 from typing import Protocol
@@ -27,7 +28,6 @@ from threadpoolctl import ThreadpoolController
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
-from ..engines.read_ahead import read_ahead
 from ..sqlgen.first_pass import first_pass_query, profile_width
 from ..sqlgen.statistics import (
     ModelRequest,
@@ -438,9 +438,18 @@ def engine_batches(engine: Engine, layout: DesignLayout, batch_rows: int) -> Cal
 
     def batches() -> Iterator[Batch]:
         converted = (batch_from_arrow(record_batch, layout) for record_batch in engine.fetch_batches(query, batch_rows))
-        return read_ahead(converted) if engine.name == "duckdb" else converted
+        return _read_ahead(converted) if engine.name == "duckdb" else converted
 
     return batches
+
+
+def _read_ahead(items: Iterator[Batch]) -> Iterator[Batch]:
+    """Yield from `items`, fetching the next item in a helper thread meanwhile (one item ahead)."""
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        pending = pool.submit(next, items, None)
+        while (item := pending.result()) is not None:
+            pending = pool.submit(next, items, None)
+            yield item
 
 
 def batch_from_arrow(record_batch: pa.RecordBatch, layout: DesignLayout) -> Batch:

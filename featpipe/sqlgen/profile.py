@@ -7,10 +7,8 @@ Every query here reads the design table's rows passing `where` (by default: not 
 
 On DuckDB, which reads one column out at scan speed, a profile reads each column's values
 (`column_values`) and numpy sorts them (featpipe.fitting.sorted_profile): one read per column, several
-times faster than its percentile aggregate with the count and moments scans around it. Elsewhere, and
-for the learned terms' quantiles everywhere:
-
-Three steps on every engine:
+times faster than its percentile aggregate with the count and moments scans around it. Profiles on
+other engines take three steps; the learned terms' quantiles, on every engine, the first two:
 - `counts_query`: the non-NULL count n of every column, from which the wanted ranks follow;
 - the values at those ranks, by one of two routes (featpipe.fitting.order_statistics chooses):
   - on engines with an exact discrete percentile aggregate that sorts and spills (`PERCENTILE_DIALECTS`),
@@ -260,7 +258,7 @@ def _integer(value: int) -> exp.Literal:
 @dataclass(frozen=True)
 class RankedValues:
     """The values of one column at the decile and median ranks, and the rows at or below each decile
-    (from `moments_query` with edges): what `_profile` reads."""
+    (from `moments_query` with edges): what `summarize` reads."""
 
     n: int
     by_rank: Mapping[int, float]
