@@ -22,6 +22,7 @@ from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.glm import Glm
 from featpipe.glm.families import get_family
 from featpipe.glm.sources import (
+    BLOCK_ROWS,
     Batch,
     BatchSource,
     Request,
@@ -234,6 +235,29 @@ def test_a_pass_over_batches_runs_blas_on_one_thread_and_gives_the_threads_back(
     assert seen == [{1}] * 4  # 200 rows in batches of 64
     assert after == {2}
     assert math.isfinite(statistics[0].deviance)
+
+
+def test_a_pass_works_on_blocks_that_stay_in_the_cache_whatever_the_batch_size():
+    """A 40,000-row batch is worked on in blocks of BLOCK_ROWS rows (16,384: their matrices stay in the
+    cache between a pass's steps), with the sums that 1,000-row batches give."""
+    terms, x, y, offset, weight = random_case("poisson", seed=5, rows=40_000)
+    rows_seen = []
+
+    class WatchedPoisson(type(get_family("poisson"))):
+        def mean(self, eta):
+            rows_seen.append(np.size(eta))
+            return super().mean(eta)
+
+    data = Batch(y, offset, weight, list(x.T))
+    scaling = Scaling(x.mean(axis=0), x.std(axis=0))
+    requests = [Request((0, 1, 2), np.array([0.5, 0.3, -0.2, 0.1])), Request((), np.array([-0.3]))]
+    whole = BatchSource("arrays", in_memory_batches(data, 40_000), WatchedPoisson(), scaling).evaluate(requests)
+    assert rows_seen == [BLOCK_ROWS] * 4 + [40_000 - 2 * BLOCK_ROWS] * 2  # model and null model per block
+    small = BatchSource("arrays", in_memory_batches(data, 1000), get_family("poisson"), scaling).evaluate(requests)
+    for have, want in zip(whole, small, strict=True):  # the same sums in another order: rounding only
+        assert have.deviance == pytest.approx(want.deviance, rel=1e-12)
+        np.testing.assert_allclose(have.xtwx, want.xtwx, rtol=1e-12)
+        np.testing.assert_allclose(have.score, want.score, rtol=1e-9, atol=1e-9)
 
 
 def test_warm_start_from_a_sample_reads_the_table_fewer_times(tmp_path):

@@ -18,7 +18,7 @@ import tempfile
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
-from functools import cache
+from functools import cache, partial
 from typing import Protocol
 
 import numpy as np
@@ -40,6 +40,14 @@ from ..sqlgen.statistics import (
     upper_pairs,
 )
 from .families import BOUNDARY_ETA, Family
+
+# Rows of a batch worked on at once. A pass takes several steps over the same rows (standardize, the
+# linear predictor, the family, the weighted copy, X'WX); on a block this size their matrices stay in
+# the processor's cache from one step to the next (16,384 rows x 25 terms: 3.3 MB each) instead of
+# going out to memory and back. Measured on this project's 2-core machine (2.5 MB L2, 48 MB L3), one
+# thread, 10M rows: 25 terms 2.78 s per pass in 131,072-row blocks, 1.54 s in 16,384-row blocks
+# (8,192: 1.54 s, 4,096: 1.75 s); 5 terms 0.96 s against 0.44 s; 60 terms 5.9 s against 4.1 s.
+BLOCK_ROWS = 16_384
 
 
 @dataclass(frozen=True)
@@ -207,15 +215,16 @@ class BatchSource:
         saturated = 0.0 if self._saturated is None else None  # summed in the first pass only: a sum of y alone
         with _one_blas_thread():
             for batch in self.batches():
-                standardized = self._standardize(batch.terms, len(batch.y))
-                if profile is not None:
-                    profile.add(batch, standardized, self.scaling.scales)
-                if saturated is not None:
-                    saturated += _weighted_sum(self.family.saturated_deviance(batch.y), batch.weight)
-                for request, total in zip(requests, totals, strict=True):
-                    x = _select(standardized, request.terms)
-                    scratch = None if x is None else self._buffer("rooted", len(x), 1 + x.shape[1])
-                    total.add(self.family, batch, x, request.beta, scratch)
+                for block in _blocks(batch, BLOCK_ROWS):
+                    standardized = self._standardize(block.terms, len(block.y))
+                    if profile is not None:
+                        profile.add(block, standardized, self.scaling.scales)
+                    if saturated is not None:
+                        saturated += _weighted_sum(self.family.saturated_deviance(block.y), block.weight)
+                    for request, total in zip(requests, totals, strict=True):
+                        x = _select(standardized, request.terms)
+                        scratch = None if x is None else self._buffer("rooted", len(x), 1 + x.shape[1])
+                        total.add(self.family, block, x, request.beta, scratch)
         self.passes += 1
         if saturated is not None:
             self._saturated = saturated
@@ -364,16 +373,21 @@ class _ProfileTotals:
 
 def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Batch]]:
     """Batches of `batch_rows` rows over data already in memory (temporaries stay one batch)."""
+    return partial(_blocks, data, batch_rows)
 
-    def cut(values: np.ndarray | None, rows: slice) -> np.ndarray | None:
-        return None if values is None else values[rows]
 
-    def batches() -> Iterator[Batch]:
-        for start in range(0, len(data.y), batch_rows):
-            rows = slice(start, start + batch_rows)
-            yield Batch(data.y[rows], cut(data.offset, rows), cut(data.weight, rows), [values[rows] for values in data.terms])
+def _blocks(data: Batch, rows: int) -> Iterator[Batch]:
+    """Consecutive slices of `rows` rows of `data` (views: nothing is copied)."""
+    if len(data.y) <= rows:
+        yield data
+        return
+    for start in range(0, len(data.y), rows):
+        part = slice(start, start + rows)
+        yield Batch(data.y[part], _cut(data.offset, part), _cut(data.weight, part), [values[part] for values in data.terms])
 
-    return batches
+
+def _cut(values: np.ndarray | None, rows: slice) -> np.ndarray | None:
+    return None if values is None else values[rows]
 
 
 class LocalCopy:
