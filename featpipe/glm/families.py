@@ -105,7 +105,10 @@ class Binomial(Family):
         return mu * (1.0 - mu)
 
     def saturated_deviance(self, y):
-        """A proportion's saturated term 2 (y ln y + (1 - y) ln(1 - y)), exactly 0 for a 0/1 target."""
+        """A proportion's saturated term 2 (y ln y + (1 - y) ln(1 - y)); None where every y is 0 or 1 (the
+        term is exactly 0 there, and its two logarithms a row cost a third of a first pass's profile)."""
+        if not ((y > 0) & (y < 1)).any():
+            return None
         return 2.0 * (xlogy(y, y) + xlogy(1.0 - y, 1.0 - y))
 
     def fitted_deviance(self, y, eta, mu):
