@@ -135,6 +135,20 @@ def test_postgresql_fit_reads_the_design_table_twice_whatever_the_passes(postgre
     np.testing.assert_allclose(fit.estimates, reference.params, rtol=1e-8)
 
 
+@pytest.mark.parametrize("engine_name", ["duckdb", "postgres"])
+def test_a_table_no_larger_than_the_sample_is_read_once_and_fitted_in_memory(engine_name, request, tmp_path):
+    frame, x, y = design_rows("binomial", seed=6)
+    engine = DuckDBEngine(tmp_path / "design.duckdb") if engine_name == "duckdb" else request.getfixturevalue("postgres_engine")
+    engine = CountingEngine(load(engine, frame, tmp_path), LAYOUT.table)
+    fit = Glm("binomial").fit(engine, LAYOUT)  # 3,000 rows, fewer than the sample takes (100,000): it holds every row
+    assert fit.convergence.source == "memory"
+    assert engine.reads == 1  # the sample; every IRLS pass (still counted in passes_over_data) runs on it in memory
+    assert fit.convergence.passes_over_data == 1 + fit.convergence.iterations
+    reference = sm.GLM(y, sm.add_constant(x), family=sm.families.Binomial()).fit(tol=1e-12)  # statsmodels IRLS
+    np.testing.assert_allclose(fit.estimates, reference.params, rtol=1e-8)
+    np.testing.assert_allclose(np.sqrt(np.diag(fit.covariance)), reference.bse, rtol=1e-7)
+
+
 @pytest.mark.parametrize("engine_name", ["duckdb", "postgres", pytest.param("spark", marks=pytest.mark.spark)])
 def test_the_profile_from_the_first_pass_equals_the_profile_query(engine_name, request, tmp_path):
     frame, x, _ = design_rows("poisson", seed=9)

@@ -158,7 +158,7 @@ def test_offset_and_weights_match_statsmodels_on_both_sources(family, tmp_path):
     terms, x, y, offset, weight = random_case(family)
     reference = statsmodels_fit(family, x, y, offset, weight)
     engine, layout = duckdb_design(design_frame(terms, y, offset, weight, held_out=40), tmp_path)
-    streamed = Glm(family).fit(engine, layout)  # DuckDB: batches streamed through numpy
+    streamed = Glm(family, source="stream").fit(engine, layout)  # DuckDB: batches streamed through numpy
     aggregated = Glm(family, source="sql").fit(engine, layout)  # one aggregate query per step
     assert (streamed.convergence.source, aggregated.convergence.source) == ("stream", "sql")
     for fit in (streamed, aggregated):

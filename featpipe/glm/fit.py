@@ -15,7 +15,9 @@ the terms' own scale.
 On an engine the data is read a few times only: a deterministic sample (the first `sample_rows`
 training rows; by key order on engines without a stable scan order) is fitted in memory first, so the
 passes over the whole table start next to the answer (two or three IRLS passes instead of five to
-eight from the intercept-only start).
+eight from the intercept-only start). A table no larger than the sample is read once: the sample is
+all of it, and IRLS runs on it in memory (on Spark each pass would otherwise be a job of its own, about
+a second even for a few thousand rows).
 
 Precision: IRLS stops when the next step would change the deviance by less than `tol` (relative) and
 still takes that step, so at tol=1e-10 estimates agree with a fully converged fit to about 1e-9 or
@@ -81,8 +83,9 @@ class Glm:
     `source` (engine fits): "sql" (one aggregate query per pass, any engine), "stream" (batches through
     numpy, memory one batch), "local" (batches read from the engine once into a local temporary file,
     then from that file) or "auto" (`AUTO_SOURCES`: stream on DuckDB, local on PostgreSQL, sql
-    elsewhere). `sample_rows` (engine fits): the first training rows read up front; they set the working
-    scaling and, when the table has more rows, the warm start. A table sorted by a term gives a poorer
+    elsewhere; "memory" when the sample holds every training row). `sample_rows` (engine fits): the first
+    training rows read up front; they set the working scaling and, when the table has more rows, the
+    warm start, else they are the data IRLS runs on. A table sorted by a term gives a poorer
     warm start (more passes), not a different answer. `batch_rows`: rows per batch of a streamed or in-memory source.
     `frequency_weights`: the weights count repeated rows (see `weights`) rather than weigh precision.
     `power`: the tweedie variance power, in (1, 2); None for the other families.
@@ -141,17 +144,20 @@ class Glm:
         ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
         frame = engine.fetch_frame(design_columns_query(layout, limit=self.sample_rows, ordered=ordered))
         sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
-        passes = 1 if ordered else 0  # ORDER BY key reads every row once
+        # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first; one that did
+        # not holds every training row, which "auto" then fits in memory: no more reads of the table.
+        filled = len(sample.y) >= self.sample_rows
+        passes = 1 if ordered or not filled else 0  # ORDER BY key reads every row once, and so does a short LIMIT
         scaling = Scaling.of(sample.terms)
         data = DataNames(layout.terms, f"design table {layout.table}", layout.target, layout.weight)
-        if copy is not None:
-            statistics: StatisticsSource = BatchSource("local", copy, family, scaling)
+        if not filled and self.source == "auto":
+            statistics: StatisticsSource = BatchSource("memory", in_memory_batches(sample, self.batch_rows), family, scaling)
+        elif copy is not None:
+            statistics = BatchSource("local", copy, family, scaling)
         elif source == "stream":
             statistics = BatchSource("stream", engine_batches(engine, layout, self.batch_rows), family, scaling)
         else:
             statistics = SqlAggregateSource(engine, layout, family, scaling)
-        # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first.
-        filled = len(sample.y) >= self.sample_rows
         warm = BatchSource("sample", in_memory_batches(sample, self.batch_rows), family, scaling) if filled else None
         if self.errors == "cluster" and layout.cluster is None:
             raise ValueError(f"errors 'cluster' needs a cluster column in design table {layout.table}")
