@@ -378,7 +378,7 @@ def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Bat
 
 def _blocks(data: Batch, rows: int) -> Iterator[Batch]:
     """Consecutive slices of `rows` rows of `data` (views: nothing is copied)."""
-    if len(data.y) <= rows:
+    if 0 < len(data.y) <= rows:
         yield data
         return
     for start in range(0, len(data.y), rows):
