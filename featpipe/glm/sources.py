@@ -378,10 +378,7 @@ def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Bat
 
 
 def _blocks(data: Batch, rows: int) -> Iterator[Batch]:
-    """Consecutive slices of `rows` rows of `data` (views: nothing is copied)."""
-    if 0 < len(data.y) <= rows:
-        yield data
-        return
+    """Consecutive slices of `rows` rows of `data` (views: nothing is copied); none when it has no rows."""
     for start in range(0, len(data.y), rows):
         part = slice(start, start + rows)
         yield Batch(data.y[part], _cut(data.offset, part), _cut(data.weight, part), [values[part] for values in data.terms])
