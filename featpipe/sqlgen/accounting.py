@@ -8,16 +8,8 @@ from sqlglot import exp
 from ..compiler import Term
 from ..compiler.layout import DesignLayout
 from ..project import InputSpec
-from .common import alias, column, complete_rows, holdout_rows, training_rows
+from .common import alias, column, complete_rows, count_if, holdout_rows, null_count, training_rows
 from .design import term_value
-
-
-def _count_where(condition: exp.Expression) -> exp.Expression:
-    return exp.func("SUM", exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))
-
-
-def _is_null(name: str) -> exp.Expression:
-    return column(name).is_(exp.null())
 
 
 def dropped_reasons(layout: DesignLayout) -> list[tuple[str, str]]:
@@ -38,11 +30,11 @@ def row_accounting_query(layout: DesignLayout) -> exp.Select:
     """
     projections = [
         alias(exp.Count(this=exp.Star()), "rows"),
-        alias(_count_where(exp.not_(complete_rows(layout))), "incomplete"),
-        alias(_count_where(training_rows(layout)), "train"),
-        alias(_count_where(holdout_rows(layout)), "holdout"),
+        alias(count_if(exp.not_(complete_rows(layout))), "incomplete"),
+        alias(count_if(training_rows(layout)), "train"),
+        alias(count_if(holdout_rows(layout)), "holdout"),
     ]
-    projections += [alias(_count_where(_is_null(name)), f"null_{index}") for index, (_, name) in enumerate(dropped_reasons(layout))]
+    projections += [alias(null_count(column(name)), f"null_{index}") for index, (_, name) in enumerate(dropped_reasons(layout))]
     return exp.select(*projections).from_(exp.to_table(layout.table))
 
 
@@ -58,5 +50,5 @@ def imputed_rows_query(terms: list[Term], source: InputSpec) -> exp.Select:
     for index, term in enumerate(terms):
         missing_input = exp.or_(*(column(name).is_(exp.null()) for name in term.columns))
         filled = exp.and_(term_value(term, source).is_(exp.null()).not_(), missing_input)
-        projections.append(alias(_count_where(filled), f"imputed_{index}"))
+        projections.append(alias(count_if(filled), f"imputed_{index}"))
     return exp.select(*projections).from_(exp.to_table(source.name))

@@ -57,7 +57,7 @@ from ..project.names import (
     psi_column,
     share_column,
 )
-from .common import alias, column, double, number
+from .common import alias, column, count_if, double, null_count, number
 from .profile import Profile
 from .score import CONTRIBUTIONS, TERM_VALUES, ScoringModel, score_query
 
@@ -177,13 +177,13 @@ def _counts(item: Monitored) -> list[exp.Expression]:
         up_to_edge = exp.LTE(this=value.copy(), expression=number(edges[index - 1])) if index <= len(edges) else None
         inside = [test for test in (above_previous, up_to_edge) if test is not None]
         condition = exp.and_(*inside) if inside else value.copy().is_(exp.null()).not_()
-        counts.append(alias(_count_if(condition), bin_column(item.name, index)))
-    counts.append(alias(_count_if(value.copy().is_(exp.null())), bin_column(item.name, NULL_BIN)))
+        counts.append(alias(count_if(condition), bin_column(item.name, index)))
+    counts.append(alias(null_count(value.copy()), bin_column(item.name, NULL_BIN)))
     low, high = item.profile.min, item.profile.max
     never = exp.false()
-    counts.append(alias(_count_if(never if low is None else exp.LT(this=value.copy(), expression=number(low))),
+    counts.append(alias(count_if(never if low is None else exp.LT(this=value.copy(), expression=number(low))),
                         below_column(item.name)))
-    counts.append(alias(_count_if(never.copy() if high is None else exp.GT(this=value.copy(), expression=number(high))),
+    counts.append(alias(count_if(never.copy() if high is None else exp.GT(this=value.copy(), expression=number(high))),
                         above_column(item.name)))
     counts.append(alias(exp.Avg(this=value.copy()), mean_column(item.name)))
     if item.estimate is not None:
@@ -199,13 +199,13 @@ def _category_counts(item: Monitored) -> list[exp.Expression]:
     """A LEVELS term's rows per category, then unseen levels, NULLs; no range and no mean of text."""
     value = column(item.column)
     seen = [level for category in item.categories for level in category.levels]
-    counts = [alias(_count_if(_one_of(value, category.levels)), bin_column(item.name, index))
+    counts = [alias(count_if(_one_of(value, category.levels)), bin_column(item.name, index))
               for index, category in enumerate(item.categories, start=1)]
     unseen = exp.and_(value.copy().is_(exp.null()).not_(), exp.Not(this=_one_of(value, seen)))
-    counts.append(alias(_count_if(unseen), bin_column(item.name, len(item.categories) + 1)))
-    counts.append(alias(_count_if(value.copy().is_(exp.null())), bin_column(item.name, NULL_BIN)))
-    counts.append(alias(_count_if(exp.false()), below_column(item.name)))
-    counts.append(alias(_count_if(exp.false()), above_column(item.name)))
+    counts.append(alias(count_if(unseen), bin_column(item.name, len(item.categories) + 1)))
+    counts.append(alias(null_count(value.copy()), bin_column(item.name, NULL_BIN)))
+    counts.append(alias(count_if(exp.false()), below_column(item.name)))
+    counts.append(alias(count_if(exp.false()), above_column(item.name)))
     counts.append(alias(exp.cast(exp.null(), exp.DataType.build("DOUBLE")), mean_column(item.name)))
     counts.append(_mean_contribution(item))
     return counts
@@ -249,9 +249,6 @@ def unseen_levels_query(model: ScoringModel, items: tuple[Monitored, ...], *, ta
         exp.Ordered(this=column("term")), exp.Ordered(this=column(ROWS), desc=True), exp.Ordered(this=column("level")))
     return ordered.with_(TERM_VALUES, as_=values, copy=False)
 
-
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))
 
 
 def _floored_share(count_name: str) -> exp.Expression:

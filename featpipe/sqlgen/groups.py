@@ -19,7 +19,7 @@ from __future__ import annotations
 from sqlglot import exp
 
 from ..project.names import ROWS, table_reference
-from .common import alias, column, number
+from .common import alias, column, count_if, number
 from .families import sums_family
 from .metrics import ETA, KEY, OBSERVED, PREDICTED, TWICE_RANK, prediction
 
@@ -60,13 +60,10 @@ def group_query(rows: exp.Select, table: str, key: str, group: str, family: str,
             alias(exp.Count(this=exp.Star()), ROWS),
             alias(exp.Sum(this=column(OBSERVED)), "observed_sum"),
             alias(exp.Sum(this=column(PREDICTED)), "predicted_sum"),
-            alias(_count_if(flagged), "flagged"),
+            alias(count_if(flagged), "flagged"),
             alias(exp.Sum(this=exp.Case().when(event, column(TWICE_RANK)).else_(exp.Literal.number(0))), "twice_rank_sum"),
         )
         .from_(ranked.subquery("_ranked"))
         .group_by(column(GROUP))
     )
 
-
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))

@@ -22,7 +22,7 @@ from sqlglot import exp
 
 from ..project import Holdout
 from ..project.names import NULL_BIN, ROWS, bin_column, table_reference, unseen_column
-from .common import alias, column
+from .common import alias, column, count_if, null_count
 from .design import holdout_flag
 
 
@@ -33,7 +33,7 @@ def nulls_column(name: str) -> str:
 def training_nulls_query(table: str, key: str, holdout: Holdout, columns: Sequence[str]) -> exp.Select:
     """One row over the not-held-out rows of `table`: rows, then the NULLs of every column."""
     counted = [alias(exp.Count(this=exp.Star()), ROWS)]
-    counted += [alias(_count_if(column(name).is_(exp.null())), nulls_column(name)) for name in columns]
+    counted += [alias(null_count(column(name)), nulls_column(name)) for name in columns]
     return exp.select(*counted).from_(_table(table)).where(exp.not_(holdout_flag(key, holdout)))
 
 
@@ -51,17 +51,14 @@ def batch_health_query(table: str, columns: Sequence[str], levels: Mapping[str, 
     """One row over `table`: rows, NULLs per column and, per column of `levels`, the rows at an unseen level."""
     counted = [alias(exp.Count(this=exp.Star()), ROWS)]
     for name in columns:
-        counted.append(alias(_count_if(column(name).is_(exp.null())), nulls_column(name)))
+        counted.append(alias(null_count(column(name)), nulls_column(name)))
         if name in levels:
             known = [exp.Literal.string(level) for level in levels[name]]
             unseen = exp.not_(exp.In(this=column(name), expressions=known)) if known else exp.true()
-            counted.append(alias(_count_if(exp.and_(column(name).is_(exp.null()).not_(), unseen)), unseen_column(name)))
+            counted.append(alias(count_if(exp.and_(column(name).is_(exp.null()).not_(), unseen)), unseen_column(name)))
     return exp.select(*counted).from_(_table(table))
 
 
 def _table(table: str) -> exp.Table:
     return table_reference(table, "--table")
 
-
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))

@@ -223,6 +223,3 @@ def calibration_query(rows: exp.Select, family: str, counted: bool = False) -> e
 def _over(inner: exp.Select, name: str, *projections: exp.Expression) -> exp.Select:
     return exp.select(*projections).from_(inner.subquery(name))
 
-
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))

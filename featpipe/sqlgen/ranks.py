@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
-from .common import alias, column, double, number
+from .common import alias, column, count_if, double, number
 from .metrics import OBSERVED, PREDICTED, with_prediction
 
 SCORE, GAP = "_score", "_gap"
@@ -42,8 +42,8 @@ def ks_query(rows: exp.Select) -> exp.Select:
     grouped = (
         exp.select(
             alias(column(PREDICTED), SCORE),
-            alias(_count_if(event), EVENTS),
-            alias(_count_if(exp.not_(event.copy())), NON_EVENTS),
+            alias(count_if(event), EVENTS),
+            alias(count_if(exp.not_(event.copy())), NON_EVENTS),
         )
         .from_(with_prediction(rows, "binomial").subquery("_scored"))
         .group_by(column(PREDICTED))
@@ -135,6 +135,3 @@ def _twice_rank(score: str, by_class: bool) -> exp.Expression:
     return exp.Sub(this=exp.Add(this=exp.Mul(this=exp.Literal.number(2), expression=rank), expression=tied),
                    expression=exp.Literal.number(1))
 
-
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))

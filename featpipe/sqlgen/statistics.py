@@ -31,7 +31,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..project import FAMILIES
-from .common import alias, column, double, number, training_rows
+from .common import alias, column, count_if, double, number, training_rows
 from .families import LOG_LINK, log_link_parts, log_link_pearson, sums_family
 
 
@@ -82,9 +82,6 @@ def _sum(expression: exp.Expression) -> exp.Sum:
     return exp.Sum(this=expression)
 
 
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return _sum(exp.Case(ifs=[exp.If(this=condition, true=exp.Literal.number(1))], default=exp.Literal.number(0)))
-
 
 def _value(name: str) -> exp.Expression:
     return double(column(name))
@@ -132,10 +129,10 @@ def profile_query(layout: DesignLayout, shifts: Mapping[str, float]) -> exp.Sele
         exp.Max(this=y),
         _sum(_mul(w, _value(layout.offset))) if layout.offset else number(0.0),
         _sum(_positive_ln(w)) if layout.weight else number(0.0),
-        _count_if(exp.and_(exp.NEQ(this=y, expression=number(0.0)), exp.NEQ(this=y, expression=number(1.0)))),
-        _count_if(exp.LT(this=y, expression=number(0.0))),
-        _count_if(exp.NEQ(this=y, expression=exp.Floor(this=y))),
-        _count_if(exp.LTE(this=w, expression=number(0.0))) if layout.weight else exp.Literal.number(0),
+        count_if(exp.and_(exp.NEQ(this=y, expression=number(0.0)), exp.NEQ(this=y, expression=number(1.0)))),
+        count_if(exp.LT(this=y, expression=number(0.0))),
+        count_if(exp.NEQ(this=y, expression=exp.Floor(this=y))),
+        count_if(exp.LTE(this=w, expression=number(0.0))) if layout.weight else exp.Literal.number(0),
     ]
     for term in layout.terms:
         shifted = exp.Paren(this=exp.Sub(this=_value(term), expression=number(shifts[term])))

@@ -27,7 +27,7 @@ from sqlglot import exp
 
 from ...project import Holdout, InputSpec
 from ...project.names import PREDICTION, ROWS, STATUS
-from ...sqlgen.common import alias, column, number
+from ...sqlgen.common import alias, column, count_if, number
 from ...sqlgen.design import holdout_flag, target_value
 from ...sqlgen.families import LOG_LINK, log_link_parts
 from ...sqlgen.score import OK, score_query
@@ -84,8 +84,8 @@ def held_out() -> exp.Expression:
 def counts_query(table: str) -> exp.Select:
     """One row: training rows and held-out rows of a rows table."""
     return exp.select(
-        alias(_count_if(training()), "train"),
-        alias(_count_if(held_out()), "holdout"),
+        alias(count_if(training()), "train"),
+        alias(count_if(held_out()), "holdout"),
     ).from_(exp.to_table(table))
 
 
@@ -193,9 +193,9 @@ def shared_rows_query(table: str, key: str, other: exp.Select, held: bool = Fals
     mine, theirs = (exp.and_(column(HOLDOUT, side) if held else exp.not_(column(HOLDOUT, side)), column(COMPLETE, side))
                     for side in ("_a", "_b"))
     return exp.select(
-        alias(_count_if(mine), "this"),
-        alias(_count_if(theirs), "other"),
-        alias(_count_if(exp.and_(mine.copy(), theirs.copy())), "both"),
+        alias(count_if(mine), "this"),
+        alias(count_if(theirs), "other"),
+        alias(count_if(exp.and_(mine.copy(), theirs.copy())), "both"),
     ).from_(exp.to_table(table).as_(exp.to_identifier("_a", quoted=True))).join(
         other.subquery(exp.to_identifier("_b", quoted=True)), on=column(key, "_a").eq(column(key, "_b")), join_type="FULL OUTER"
     )
@@ -283,6 +283,3 @@ def _percentile(value: exp.Expression, share: float) -> exp.Expression:
         expression=exp.Order(expressions=[exp.Ordered(this=value.copy())]),
     )
 
-
-def _count_if(condition: exp.Expression) -> exp.Sum:
-    return exp.Sum(this=exp.Case().when(condition, exp.Literal.number(1)).else_(exp.Literal.number(0)))
