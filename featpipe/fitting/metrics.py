@@ -13,6 +13,7 @@ import math
 from collections import deque
 from collections.abc import Mapping, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
+from typing import TYPE_CHECKING
 
 from sqlglot import exp
 
@@ -32,6 +33,9 @@ from ..sqlgen.families import sums_family
 from ..sqlgen.ranks import ks_query, rank_components_query, read_rank_sums
 from .order_statistics import non_null_counts, values_at_ranks
 from .recalibration import recalibration
+
+if TYPE_CHECKING:
+    import numpy as np
 
 FETCHED_BATCH_ROWS = 1 << 20  # rows per Arrow batch of a column read out for its profile
 SORTING_THREADS = 2  # columns sorted at once while the next one is read
@@ -212,12 +216,15 @@ def fetched_profiles(engine: Engine, layout: DesignLayout, columns: Mapping[str,
 
     profiles: list[Profile] = []
     with ThreadPoolExecutor(max_workers=SORTING_THREADS) as pool:
-        sorting: deque[Future[Profile]] = deque()
+        sorting: deque[tuple[Future[Profile], np.ndarray]] = deque()
         for expression in columns.values():
-            values, nulls = present_values([batch.column(0) for batch in
-                                            engine.fetch_batches(column_values(layout, expression), FETCHED_BATCH_ROWS)])
-            if len(sorting) == SORTING_THREADS:
-                profiles.append(sorting.popleft().result())
-            sorting.append(pool.submit(sorted_profile, values, nulls))
-        profiles += [future.result() for future in sorting]
+            chunks = [batch.column(0) for batch in engine.fetch_batches(column_values(layout, expression), FETCHED_BATCH_ROWS)]
+            spare = None
+            if len(sorting) == SORTING_THREADS:  # the oldest column's profile, and its memory for this one
+                done, spare = sorting.popleft()
+                profiles.append(done.result())
+            values, nulls = present_values(chunks, spare)
+            whole = values if values.base is None else values.base  # the memory behind it, for a longer column
+            sorting.append((pool.submit(sorted_profile, values, nulls), whole))
+        profiles += [future.result() for future, _ in sorting]
     return dict(zip(columns, profiles, strict=True))
