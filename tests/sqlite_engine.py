@@ -87,6 +87,9 @@ class SQLiteEngine:
         cursor = self._run(query)
         return pd.DataFrame(cursor.fetchall(), columns=[column[0] for column in cursor.description])
 
+    def fetch_table(self, query: exp.Expression) -> pa.Table:
+        return pa.Table.from_pandas(self.fetch_frame(query), preserve_index=False)
+
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         """Arrow types follow each batch's values: SQLite query results have no column types."""
         cursor = self._run(query)

@@ -63,6 +63,10 @@ class CountingEngine:
         self._count(query)
         return self.engine.fetch_frame(query)
 
+    def fetch_table(self, query):
+        self._count(query)
+        return self.engine.fetch_table(query)
+
     def fetch_batches(self, query, batch_rows):
         self._count(query)
         return self.engine.fetch_batches(query, batch_rows)

@@ -12,6 +12,7 @@ import sqlite3
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pytest
 import statsmodels.api as sm
 from statsmodels.stats.outliers_influence import variance_inflation_factor
@@ -98,6 +99,9 @@ class SQLiteDesign:
 
     def fetch_frame(self, query) -> pd.DataFrame:
         return pd.read_sql_query(self.render(query), self.connection)
+
+    def fetch_table(self, query) -> pa.Table:
+        return pa.Table.from_pandas(self.fetch_frame(query), preserve_index=False)
 
 
 def random_case(family: str, seed: int = 11, rows: int = 600):

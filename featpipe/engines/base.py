@@ -33,6 +33,10 @@ class Engine(Protocol):
     def fetch_frame(self, query: exp.Expression) -> pd.DataFrame:
         """Run a query and return a pandas frame."""
 
+    def fetch_table(self, query: exp.Expression) -> pa.Table:
+        """Run a query and return its whole result as one Arrow table (small results: a fit's sample),
+        with no pandas frame in between."""
+
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         """Stream a query's result as Arrow record batches of at most `batch_rows` rows."""
 

@@ -22,9 +22,9 @@ import shutil
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import duckdb
-import pandas as pd
 import pyarrow as pa
 from sqlglot import exp
 
@@ -33,6 +33,9 @@ from ..sqlgen.common import render
 from . import statements
 from .base import Check
 from .datafiles import check_data_file
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 MEMORY_LIMIT = "1GB"
@@ -67,8 +70,14 @@ class DuckDBEngine:
         return render(statement, self.dialect)
 
     def _run(self, statement: exp.Expression):
-        try:
+        with self._translated():
             return self.connection.execute(self.render(statement))
+
+    @contextlib.contextmanager
+    def _translated(self) -> Iterator[None]:
+        """DuckDB's errors as an EngineError with their first line."""
+        try:
+            yield
         except duckdb.Error as error:
             first_line = str(error).strip().splitlines()[0]
             raise EngineError(f"duckdb: {first_line}") from error
@@ -79,14 +88,15 @@ class DuckDBEngine:
     def fetch_frame(self, query: exp.Expression) -> pd.DataFrame:
         return self._run(query).df()
 
+    def fetch_table(self, query: exp.Expression) -> pa.Table:
+        with self._translated():
+            return self.connection.sql(self.render(query)).to_arrow_table()
+
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         # A relation streams its result; an executed result (DuckDB 2 has no fetch_record_batch) would
         # first fetch every row.
-        try:
+        with self._translated():
             reader = self.connection.sql(self.render(query)).to_arrow_reader(batch_rows)
-        except duckdb.Error as error:
-            first_line = str(error).strip().splitlines()[0]
-            raise EngineError(f"duckdb: {first_line}") from error
         yield from reader
 
     def execute(self, statement: exp.Expression) -> None:

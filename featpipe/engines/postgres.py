@@ -13,8 +13,8 @@ import io
 import os
 from collections.abc import Iterator
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import pandas as pd
 import pyarrow as pa
 import pyarrow.csv as pacsv
 from sqlglot import exp
@@ -32,6 +32,9 @@ try:  # the postgres extra is optional; the error says how to install it
     from psycopg.types.numeric import FloatLoader
 except ImportError:  # pragma: no cover - depends on the installation
     psycopg = None
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 MAX_NAME_BYTES = 63  # PostgreSQL silently truncates longer identifiers (NAMEDATALEN - 1)
 FETCH_ROWS = 10_000
@@ -93,11 +96,14 @@ class PostgresEngine:
             return cursor.fetchall()
 
     def fetch_frame(self, query: exp.Expression) -> pd.DataFrame:
+        return self.fetch_table(query).to_pandas()
+
+    def fetch_table(self, query: exp.Expression) -> pa.Table:
         with self._translated(), self.connection.cursor() as cursor:
             _float_numeric(cursor)
             self._run(cursor, query)
             schema = _arrow_schema(cursor.description)
-            return _record_batch(cursor.fetchall(), schema).to_pandas()
+            return pa.Table.from_batches([_record_batch(cursor.fetchall(), schema)])
 
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         """Numbers and booleans only: a binary COPY read with numpy (`pgbinary`), several times faster than

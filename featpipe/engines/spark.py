@@ -20,8 +20,8 @@ import urllib.parse
 import warnings
 from collections.abc import Callable, Iterator
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import pandas as pd
 import pyarrow as pa
 from sqlglot import exp
 
@@ -31,6 +31,9 @@ from ..project import EngineConfig
 from . import statements
 from .base import Check
 from .datafiles import check_data_file
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 @contextlib.contextmanager
@@ -107,8 +110,11 @@ class SparkEngine:
 
     def fetch_frame(self, query: exp.Expression) -> pd.DataFrame:
         """Collected as Arrow and converted by pyarrow, like the other engines' frames."""
+        return self.fetch_table(query).to_pandas()
+
+    def fetch_table(self, query: exp.Expression) -> pa.Table:
         with self._translated():
-            return self._frame(query).toArrow().to_pandas()
+            return self._frame(query).toArrow()
 
     def fetch_batches(self, query: exp.Expression, batch_rows: int) -> Iterator[pa.RecordBatch]:
         """Rows come to the driver one partition at a time (toLocalIterator), in batches of `batch_rows`."""

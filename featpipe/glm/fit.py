@@ -32,7 +32,6 @@ from dataclasses import KW_ONLY, dataclass, field, replace
 from functools import partial
 
 import numpy as np
-import pyarrow as pa
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
@@ -142,8 +141,7 @@ class Glm:
     def _fit_on(self, engine: Engine, layout: DesignLayout, source: str, copy: LocalCopy | None) -> GlmResult:
         family = get_family(self.family, self.power)
         ordered = engine.name != "duckdb"  # DuckDB keeps insertion order: its first rows are already fixed
-        frame = engine.fetch_frame(design_columns_query(layout, limit=self.sample_rows, ordered=ordered))
-        sample = batch_from_arrow(pa.RecordBatch.from_pandas(frame, preserve_index=False), layout)
+        sample = batch_from_arrow(engine.fetch_table(design_columns_query(layout, limit=self.sample_rows, ordered=ordered)), layout)
         # A sample that filled its LIMIT is (most likely) a strict subset, worth fitting first; one that did
         # not holds every training row, which "auto" then fits in memory: no more reads of the table.
         filled = len(sample.y) >= self.sample_rows

@@ -464,9 +464,9 @@ def _read_ahead(items: Iterator[Batch]) -> Iterator[Batch]:
             yield item
 
 
-def batch_from_arrow(record_batch: pa.RecordBatch, layout: DesignLayout) -> Batch:
+def batch_from_arrow(result: pa.RecordBatch | pa.Table, layout: DesignLayout) -> Batch:
     """A `Batch` from the columns of `design_columns_query`: target, [offset], [weight], terms."""
-    columns = [column.to_numpy(zero_copy_only=False) for column in record_batch.columns]
+    columns = [column.to_numpy(zero_copy_only=False) for column in result.columns]
     position = 1
     offset = weight = None
     if layout.offset:
