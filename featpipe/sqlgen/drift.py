@@ -250,7 +250,6 @@ def unseen_levels_query(model: ScoringModel, items: tuple[Monitored, ...], *, ta
     return ordered.with_(TERM_VALUES, as_=values, copy=False)
 
 
-
 def _floored_share(count_name: str) -> exp.Expression:
     """count / rows as DOUBLE, floored at EMPTY_SHARE; NULL for a batch of no rows."""
     share = exp.Div(this=double(column(count_name)), expression=exp.Nullif(this=double(column(ROWS)), expression=number(0.0)))

@@ -66,4 +66,3 @@ def group_query(rows: exp.Select, table: str, key: str, group: str, family: str,
         .from_(ranked.subquery("_ranked"))
         .group_by(column(GROUP))
     )
-

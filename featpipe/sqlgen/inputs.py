@@ -61,4 +61,3 @@ def batch_health_query(table: str, columns: Sequence[str], levels: Mapping[str, 
 
 def _table(table: str) -> exp.Table:
     return table_reference(table, "--table")
-

@@ -222,4 +222,3 @@ def calibration_query(rows: exp.Select, family: str, counted: bool = False) -> e
 
 def _over(inner: exp.Select, name: str, *projections: exp.Expression) -> exp.Select:
     return exp.select(*projections).from_(inner.subquery(name))
-

@@ -134,4 +134,3 @@ def _twice_rank(score: str, by_class: bool) -> exp.Expression:
     tied = exp.Window(this=exp.Count(this=exp.Star()), partition_by=[*partition, column(score)])
     return exp.Sub(this=exp.Add(this=exp.Mul(this=exp.Literal.number(2), expression=rank), expression=tied),
                    expression=exp.Literal.number(1))
-

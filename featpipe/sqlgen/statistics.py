@@ -82,7 +82,6 @@ def _sum(expression: exp.Expression) -> exp.Sum:
     return exp.Sum(this=expression)
 
 
-
 def _value(name: str) -> exp.Expression:
     return double(column(name))
 

@@ -282,4 +282,3 @@ def _percentile(value: exp.Expression, share: float) -> exp.Expression:
         this=exp.PercentileCont(this=exp.Literal.number(repr(share))),
         expression=exp.Order(expressions=[exp.Ordered(this=value.copy())]),
     )
-
