@@ -45,6 +45,13 @@ def test_check_and_help_load_only_what_they_use(tmp_path):
     assert modules_loaded_by("--help") & {*HEAVY, "featpipe.api", "sqlglot", "yaml"} == set()
 
 
+def test_compute_loads_no_pandas(tmp_path):
+    """Computing design tables moves no rows through Python, so pandas (about half a second to import)
+    stays unloaded; the engines load it only to hand out a frame."""
+    root = copy_demo("lease_default", tmp_path)
+    assert "pandas" not in modules_loaded_by("compute", "-p", str(root))
+
+
 def test_a_wrong_option_shows_the_usage_not_an_internal_error():
     result = run("check", "--bogus")
     assert result.returncode == 2
