@@ -43,7 +43,7 @@ from functools import reduce
 from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
-from .common import alias, column, double, number
+from .common import alias, column, double, null_count, number
 
 DECILES = range(1, 10)
 NAME, VALUE = "_name", "_value"
@@ -234,7 +234,7 @@ def moments_query(
         shifted = exp.Paren(this=exp.Sub(this=value.copy(), expression=number(shifts[name])))
         projections += [
             exp.Count(this=value.copy()),
-            exp.Sub(this=exp.Count(this=exp.Star()), expression=exp.Count(this=value.copy())),
+            null_count(value.copy()),
             exp.Sum(this=value.copy()),
             exp.Sum(this=shifted),
             exp.Sum(this=exp.Mul(this=shifted.copy(), expression=shifted.copy())),
