@@ -34,11 +34,13 @@ from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted import FittedModel
 from ..fitted.scoring import scoring_model
-from ..project import TermFile
+from ..project import InputSpec, TermFile
 from ..sqlgen.design import term_value
+from ..sqlgen.profile import DECILES, decile_rank, read_ranks
 from ..sqlgen.suggest import (
     candidate_means_query,
     candidate_sums_width,
+    column_ranks_query,
     column_summary_query,
     level_counts_query,
     model_sums_width,
@@ -46,6 +48,7 @@ from ..sqlgen.suggest import (
     read_levels,
     score_sums_query,
 )
+from .order_statistics import PERCENTILE, engine_route
 
 # Values one query may return, by engine: PostgreSQL refuses more than 1,664 columns in a select list;
 # Spark compiles a very wide aggregate slowly, so it gets narrower chunks.
@@ -140,8 +143,13 @@ def suggest(
     summaries: list[ColumnSummary] = []
     rows = 0
     if numeric:
-        rows, figures = read_column_summaries(engine.fetch(column_summary_query(model, source, numeric))[0], numeric)
+        exact = engine_route(engine.dialect) == PERCENTILE  # an exact percentile aggregate that spills
+        rows, figures = read_column_summaries(engine.fetch(column_summary_query(model, source, numeric, deciles=exact))[0], numeric,
+                                              deciles=exact)
         scans += 1
+        if not exact:
+            figures = _with_deciles(engine, model, source, numeric, figures)
+            scans += 1
         for name in numeric:
             count, total, low, high, deciles = figures[name]
             summaries.append(ColumnSummary(name, rows, count, total / count if count else None, low, high, deciles))
@@ -201,6 +209,14 @@ def suggest(
                          generated=len(generated), considered=len(considered),
                          dropped={reason: count for reason, count in dropped.items() if count},
                          suggestions=suggestions, scans=scans, top=top)
+
+
+def _with_deciles(engine: Engine, model: CompiledModel, source: InputSpec, columns: list[str], figures: dict) -> dict:
+    """`figures` (count, sum, min, max, deciles) with the deciles read by the window route: the distinct
+    values at ranks ceil(k n / 10), what PERCENTILE_DISC(k / 10) gives on the other engines."""
+    ranks = {name: tuple(sorted({decile_rank(k, figure[0]) for k in DECILES})) for name, figure in figures.items() if figure[0]}
+    found = read_ranks(ranks, engine.fetch(column_ranks_query(model, source, columns, ranks))) if ranks else {}
+    return {name: (*figure[:4], tuple(sorted(set(found.get(name, {}).values())))) for name, figure in figures.items()}
 
 
 def _chunks(items: list[str], size: int) -> list[list[str]]:

@@ -175,6 +175,11 @@ def ranks_query(
     stacked = reduce(lambda left, right: exp.union(left, right, distinct=False), [
         column_values(layout, expression, where).select(alias(exp.Literal.string(name), NAME)) for name, expression in columns.items()
     ])
+    return stacked_ranks_query(stacked, ranks)
+
+
+def stacked_ranks_query(stacked: exp.Query, ranks: Mapping[str, Sequence[int]]) -> exp.Select:
+    """`ranks_query` over the rows of `stacked`: a column's name in NAME and one of its values in VALUE."""
     counted = (
         exp.select(column(NAME), column(VALUE), alias(exp.Count(this=exp.Star()), ROWS))
         .from_(stacked.subquery("_values"))

@@ -5,7 +5,10 @@ model term), computed by the design query itself with more columns beside it, so
 the current model read the very same rows. Only sums and a few order statistics leave the engine:
 
 - `column_summary_query`: one scan; per numeric column its count, sum, min, max and nine deciles
-  (exact, PERCENTILE_DISC: the inverted empirical CDF, as the fitted profiles use);
+  (exact, PERCENTILE_DISC: the inverted empirical CDF, as the fitted profiles use); on engines whose
+  exact percentile aggregate holds every distinct value in memory (Spark) or that have none (SQLite),
+  the deciles come from a second scan, `column_ranks_query`: the window route of the profiles over
+  the same rows, the values at ranks ceil(k n / 10) that PERCENTILE_DISC(k / 10) gives elsewhere;
 - `level_counts_query`: one scan; the text levels with at least `min_rows` training rows, all text
   columns at once through GROUPING SETS (each result row has one column set, the others NULL);
 - `candidate_means_query`: the mean of each candidate over the first `rows` training rows (a LIMIT, not
@@ -23,6 +26,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Mapping, Sequence
+from functools import reduce
 
 from sqlglot import exp
 
@@ -33,6 +37,7 @@ from .common import alias, column, double, number, training_rows
 from .design import design_query
 from .learned import design_columns
 from .metrics import linear_predictor, prediction
+from .profile import NAME, VALUE, stacked_ranks_query
 from .score import ScoringModel, ScoringTerm
 from .statistics import upper_pairs
 
@@ -50,10 +55,14 @@ def _in(index: int) -> str:
     return f"_in{index}"
 
 
-def column_summary_query(model: CompiledModel, source: InputSpec, columns: Sequence[str]) -> exp.Select:
-    """COUNT(*), then per column: count, sum, min, max and the deciles at DECILE_LEVELS (read with
-    `read_column_summaries`)."""
-    rows = training_input(model, source, {_in(i): double(column(name)) for i, name in enumerate(columns)})
+def numeric_input(model: CompiledModel, source: InputSpec, columns: Sequence[str]) -> exp.Subquery:
+    """The training rows with each of `columns` as DOUBLE, named by its position (`_in0`, `_in1`, ...)."""
+    return training_input(model, source, {_in(i): double(column(name)) for i, name in enumerate(columns)}).subquery("_training")
+
+
+def column_summary_query(model: CompiledModel, source: InputSpec, columns: Sequence[str], deciles: bool = True) -> exp.Select:
+    """COUNT(*), then per column: count, sum, min, max and (`deciles`) the deciles at DECILE_LEVELS (read
+    with `read_column_summaries`)."""
     projections: list[exp.Expression] = [exp.Count(this=exp.Star())]
     for index in range(len(columns)):
         value = column(_in(index))
@@ -61,23 +70,37 @@ def column_summary_query(model: CompiledModel, source: InputSpec, columns: Seque
         projections += [
             exp.WithinGroup(this=exp.PercentileDisc(this=exp.Literal.number(level)),
                             expression=exp.Order(expressions=[exp.Ordered(this=value.copy())]))
-            for level in DECILE_LEVELS
+            for level in (DECILE_LEVELS if deciles else ())
         ]
-    return exp.select(*projections).from_(rows.subquery("_training"))
+    return exp.select(*projections).from_(numeric_input(model, source, columns))
 
 
-SUMMARY_WIDTH = 4 + len(DECILE_LEVELS)
-
-
-def read_column_summaries(row: Sequence, columns: Sequence[str]):
-    """(training rows, per column (count, sum, min, max, deciles)) from the row of `column_summary_query`."""
+def read_column_summaries(row: Sequence, columns: Sequence[str], deciles: bool = True):
+    """(training rows, per column (count, sum, min, max, deciles)) from the row of `column_summary_query`;
+    without `deciles` their tuples are empty."""
     rows = int(row[0] or 0)
+    width = 4 + (len(DECILE_LEVELS) if deciles else 0)
     found = {}
     for index, name in enumerate(columns):
-        count, total, low, high, *deciles = row[1 + SUMMARY_WIDTH * index : 1 + SUMMARY_WIDTH * (index + 1)]
+        count, total, low, high, *values = row[1 + width * index : 1 + width * (index + 1)]
         found[name] = (int(count or 0), None if total is None else float(total), None if low is None else float(low),
-                       None if high is None else float(high), tuple(sorted({float(d) for d in deciles if d is not None})))
+                       None if high is None else float(high), tuple(sorted({float(d) for d in values if d is not None})))
     return rows, found
+
+
+def column_ranks_query(model: CompiledModel, source: InputSpec, columns: Sequence[str], ranks: Mapping[str, Sequence[int]]) -> exp.Select:
+    """The values at `ranks` of the columns that have some (read with featpipe.sqlgen.profile.read_ranks),
+    in one scan: each training row is repeated once per column (a cross join with their names) and
+    stacked as (name, value), rather than the training rows computed once per column."""
+    wanted = [(index, name) for index, name in enumerate(columns) if ranks.get(name)]
+    names = reduce(lambda left, right: exp.union(left, right, distinct=False),
+                   [exp.select(alias(exp.Literal.string(name), NAME)) for _, name in wanted])
+    value = exp.Case(this=column(NAME))
+    for index, name in wanted:
+        value = value.when(exp.Literal.string(name), column(_in(index)))
+    stacked = (exp.select(column(NAME), alias(value, VALUE)).from_(numeric_input(model, source, columns))
+               .join(names.subquery("_names"), join_type="CROSS"))
+    return stacked_ranks_query(stacked, {name: ranks[name] for _, name in wanted})
 
 
 def level_counts_query(model: CompiledModel, source: InputSpec, columns: Sequence[str], min_rows: int) -> exp.Select:
