@@ -29,10 +29,13 @@ def load(engine, tmp_path):
 
 
 class Recording:
-    """An engine that remembers the SQL it was asked to run."""
+    """An engine that remembers the SQL it was asked to run (everything else is the engine's own)."""
 
     def __init__(self, engine):
-        self.engine, self.name, self.dialect, self.queries = engine, engine.name, engine.dialect, []
+        self.engine, self.queries = engine, []
+
+    def __getattr__(self, name):
+        return getattr(self.engine, name)
 
     def fetch(self, query):
         self.queries.append(self.engine.render(query))

@@ -20,6 +20,7 @@ import statsmodels.api as sm
 from conftest import copy_demo, run_featpipe, write_project
 from spline_reference import restricted_cubic_spline
 from test_learned_terms import lease_project
+from test_profile_routes import Recording
 from statsmodels.stats.multitest import multipletests
 
 from featpipe import api
@@ -363,20 +364,6 @@ def test_constant_collinear_and_mostly_null_candidates_are_dropped_with_a_count(
     assert report.dropped["collinear"] >= 1  # twice
     assert report.dropped["mostly NULL"] >= 1  # sparse and everything built from it
     assert report.tested + sum(report.dropped.values()) == report.considered
-
-
-class Recording:
-    """An engine that remembers the queries it was asked for, as it ran them."""
-
-    def __init__(self, engine):
-        self.engine, self.queries = engine, []
-
-    def __getattr__(self, name):
-        return getattr(self.engine, name)
-
-    def fetch(self, query):
-        self.queries.append(self.engine.render(query))
-        return self.engine.fetch(query)
 
 
 def _statistics_on(engine, root: Path, model: str) -> tuple[dict[str, float], list[str]]:
