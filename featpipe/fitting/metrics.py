@@ -188,9 +188,10 @@ def training_profiles(
     """A `Profile` per entry of `columns` (a name -> an expression over the design table, e.g. each term
     and "linear_predictor"), over every row that is not held out, complete or not: `nulls` counts that
     column's NULLs there, the other figures describe its non-NULL values. On DuckDB each column's values
-    are read out and sorted in numpy (`fetched_profiles`); elsewhere, or with a `route` (PERCENTILE or
-    WINDOW of featpipe.fitting.order_statistics), three scans: the counts, the values at the decile and
-    median ranks, then the moments centred on the medians with the rows at or below each decile edge.
+    are read out and sorted in numpy (`fetched_profiles`); elsewhere, or with a `route` (PERCENTILE,
+    BRACKETS or WINDOW of featpipe.fitting.order_statistics), three scans (four by BRACKETS): the counts,
+    the values at the decile and median ranks, then the moments centred on the medians with the rows at
+    or below each decile edge.
     Quantile rule and median: see featpipe.sqlgen.profile.
     """
     if not columns:

@@ -16,11 +16,13 @@ other engines take three steps; the learned terms' quantiles, on every engine, t
     `PERCENTILE_DISC ... WITHIN GROUP`) asked for the fraction (r - 1/2) / n, which every one of them
     maps to rank r (the first value whose cumulative share reaches the fraction) without any question
     of rounding;
-  - elsewhere (Spark, SQLite) `ranks_query`: all columns stacked with UNION ALL into (name, value)
-    rows, counted per distinct value and accumulated in value order; only the values holding a wanted
-    rank come back. Its cost grows with the distinct values (a window over every one of them); Spark
-    sorts and spills it to disk, where its PERCENTILE_DISC keeps a hash map of every distinct value per
-    fraction in memory (16 columns of 1M distinct values stop the JVM on an out-of-memory error);
+  - on Spark, whose PERCENTILE_DISC keeps a hash map of every distinct value per fraction in memory
+    (16 columns of 1M distinct values stop the JVM on an out-of-memory error), a quantile summary
+    brackets each rank and one counting scan finds the exact value inside (featpipe.sqlgen.brackets);
+  - elsewhere (SQLite), and for a column whose bracket missed, `ranks_query`: all columns stacked with
+    UNION ALL into (name, value) rows, counted per distinct value and accumulated in value order; only
+    the values holding a wanted rank come back. Its cost grows with the distinct values (a window over
+    every one of them), which an engine sorts and spills to disk;
 - `moments_query` with `edges`: per column the non-NULL count, NULL count, sum, min, max and the sums
   of (x - median) and its square, from which the sample sd (n - 1) follows without cancellation, and
   per decile edge the rows at or below it, which give the bin shares.
