@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -337,3 +338,16 @@ def test_sqlite_python_math_agrees_with_the_builtins():
     query = exp.select(*(sqlglot.parse_one(case, read="sqlite").as_(f"c{i}") for i, case in enumerate(cases)))
     assert fallback.python_math == ("ln", "exp", "sqrt", "power", "log10", "floor", "ceil")
     assert fallback.fetch(query) == builtin.fetch(query)
+
+
+@pytest.mark.spark
+def test_spark_compiles_an_aggregate_of_many_sums(spark_engine):
+    """An IRLS pass of 16 terms sums 153 products in one aggregate. Spark runs a stage as generated code
+    (its plan marks those operators *(n)) only up to spark.sql.codegen.maxFields fields, 100 by default;
+    above that, row by row, three to four times slower (featpipe.engines.spark.CODEGEN_MAX_FIELDS)."""
+    spark_engine.create_table("wide", sql("SELECT 1 AS id"))
+    sums = ", ".join(f"SUM(id * {k}) AS s{k}" for k in range(153))
+    frame = spark_engine.session.sql(spark_engine.render(sql(f"SELECT {sums} FROM wide")))
+    frame.collect()
+    plan = frame._jdf.queryExecution().executedPlan().toString()  # the plan as run (adaptive execution decides at run time)
+    assert re.search(r"\*\(\d+\) HashAggregate", plan), plan
