@@ -13,8 +13,8 @@ from fractions import Fraction
 import numpy as np
 import pytest
 from conftest import write_project
+from recording import Recording
 from test_learned_terms import LEASES_YAML
-from test_profile_routes import Recording
 
 from featpipe import api
 from featpipe.fitting.learned import learn_constants

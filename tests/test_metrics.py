@@ -15,6 +15,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+import sqlglot
 import statsmodels.api as sm
 import yaml
 from conftest import copy_demo, run_featpipe
@@ -32,15 +33,16 @@ from sklearn.metrics import (
     roc_auc_score,
 )
 from sqlglot import exp
+from recording import Recording
 from sqlite_engine import SQLiteEngine
 
 from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
-from featpipe.fitting.metrics import holdout_metrics
+from featpipe.fitting.metrics import holdout_metrics, scored_rows_metrics
 from featpipe.fitted import INTERCEPT
 from featpipe.glm.delong import paired_test
 from featpipe.sqlgen.common import alias, number
-from featpipe.sqlgen.metrics import linear_predictor, prediction
+from featpipe.sqlgen.metrics import linear_predictor, prediction, scored_holdout
 from featpipe.sqlgen.ranks import rank_components_query, read_rank_sums
 
 TOLERANCE = 1e-12
@@ -318,6 +320,18 @@ def test_the_auc_interval_of_hanley_and_mcneils_ratings(engine, tmp_path):
     assert round(metrics["auc_low"], 5) == 0.83295 and round(metrics["auc_high"], 5) == 0.95339
     (auc,), covariance = delong_reference(y, [rating])
     assert metrics["auc_high"] - metrics["auc"] == pytest.approx(norm.ppf(0.975) * math.sqrt(covariance[0, 0]), rel=1e-10)
+
+
+@pytest.mark.parametrize("engine", ["postgres"], indirect=True)
+def test_postgres_scores_the_holdout_once_for_every_metric_query(engine):
+    """PostgreSQL computes a subquery again for every query that reads it: the scored holdout is stored in a
+    temporary table the metric queries read, then dropped; the metrics are those of scoring per query."""
+    recording = Recording(engine)
+    metrics = holdout_metrics(recording, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.3)
+    assert len(recording.queries) >= 8 and not any(f'"{BINOMIAL.table}"' in query for query in recording.queries)
+    assert metrics == scored_rows_metrics(engine, scored_holdout(BINOMIAL, BINOMIAL_COEFFICIENTS), "binomial", 0.3)
+    left = engine.fetch(sqlglot.parse_one("SELECT COUNT(*) FROM pg_tables WHERE tablename = '_featpipe_scored_holdout'"))
+    assert left == [(0,)]
 
 
 @pytest.mark.parametrize("engine", ENGINE_KINDS, indirect=True)

@@ -12,6 +12,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import sqlglot
+from recording import Recording
 from test_profile import LAYOUT, assert_profile, invented_design, reference_profile
 
 from featpipe.fitting.metrics import training_profiles
@@ -27,24 +28,6 @@ def load(engine, tmp_path):
     pq.write_table(pa.table({name: pa.array(values, from_pandas=True) for name, values in data.items()}), path)
     engine.load_file(LAYOUT.table, path)
     return data
-
-
-class Recording:
-    """An engine that remembers the SQL it was asked to run (everything else is the engine's own)."""
-
-    def __init__(self, engine):
-        self.engine, self.queries = engine, []
-
-    def __getattr__(self, name):
-        return getattr(self.engine, name)
-
-    def fetch(self, query):
-        self.queries.append(self.engine.render(query))
-        return self.engine.fetch(query)
-
-    def fetch_batches(self, query, batch_rows):
-        self.queries.append(self.engine.render(query))
-        return self.engine.fetch_batches(query, batch_rows)
 
 
 def check_routes_agree(engine, tmp_path):

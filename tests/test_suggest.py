@@ -18,9 +18,9 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import copy_demo, run_featpipe, write_project
+from recording import Recording
 from spline_reference import restricted_cubic_spline
 from test_learned_terms import lease_project
-from test_profile_routes import Recording
 from statsmodels.stats.multitest import multipletests
 
 from featpipe import api

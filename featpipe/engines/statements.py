@@ -12,9 +12,10 @@ def building_name(name: str) -> str:
     return f"{name}{BUILDING_SUFFIX}"
 
 
-def create_table_as(name: str, query: exp.Query, kind: str = "TABLE") -> exp.Create:
-    """CREATE TABLE (or, with `kind` "VIEW", CREATE VIEW) `name` AS `query`."""
-    return exp.Create(this=exp.to_table(name), kind=kind, expression=query)
+def create_table_as(name: str, query: exp.Query, kind: str = "TABLE", temporary: bool = False) -> exp.Create:
+    """CREATE [TEMPORARY] TABLE (or, with `kind` "VIEW", CREATE VIEW) `name` AS `query`."""
+    properties = exp.Properties(expressions=[exp.TemporaryProperty()]) if temporary else None
+    return exp.Create(this=exp.to_table(name), kind=kind, expression=query, properties=properties)
 
 
 def drop_table(name: str, kind: str = "TABLE") -> exp.Drop:
