@@ -70,9 +70,10 @@ except ImportError:  # pragma: no cover - Windows: Derby's own error reports a l
 # Spark compiles a query stage into one Java method only while its rows have at most
 # spark.sql.codegen.maxFields fields (100 by default); an IRLS pass of p terms sums about p^2 / 2
 # products, so from 13 terms on the passes and the profiles' moments ran row by row, interpreted. Raised,
-# a 13-term pass on 700,000 rows took 1.0-1.5 s instead of 3.4-5.9 s and the moments 1.4 s instead of
-# 5.1 s (measured on this machine). A stage whose method outgrows spark.sql.codegen.hugeMethodLimit
-# still falls back to the interpreted route by itself.
+# on 700,000 rows a 13-term pass took 1.0-1.5 s instead of 3.4-5.9 s, the moments 1.4 s instead of
+# 5.1 s, the 325 sums of 25 terms 3.2-3.9 s instead of 13-15 s, and the 1830 of 60 terms 91-95 s
+# instead of 130-135 s (measured on this machine). A stage whose method outgrows
+# spark.sql.codegen.hugeMethodLimit still falls back to the interpreted route by itself.
 CODEGEN_MAX_FIELDS = 2000
 WAREHOUSE_FOLDER = "spark-warehouse"
 METASTORE_FOLDER = "spark-metastore"
