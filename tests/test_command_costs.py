@@ -126,6 +126,30 @@ def test_an_aggregate_fit_gathers_the_profile_in_its_first_pass(family, tmp_path
     assert fit.goodness_of_fit.log_likelihood == pytest.approx(reference.llf, rel=1e-10)
 
 
+def test_an_aggregate_pass_too_wide_for_the_engine_is_read_in_parts(monkeypatch, tmp_path):
+    """Spark compiles at most some 500 sums of a query well (featpipe.glm.sources.AGGREGATES_PER_QUERY): a
+    wider pass is read as several queries over the same rows, each a read counted among the passes. Here
+    DuckDB is given a limit of 5 aggregates, so every pass of a 3-term model is read in parts."""
+    import featpipe.glm.sources as sources
+
+    frame, x, y = design_rows("binomial")
+    engine = CountingEngine(load(DuckDBEngine(tmp_path / "design.duckdb"), frame, tmp_path), LAYOUT.table)
+    widths = []
+    recording = engine.fetch
+
+    def fetch(query):
+        widths.append(len(query.expressions))
+        return recording(query)
+
+    engine.fetch = fetch
+    monkeypatch.setitem(sources.AGGREGATES_PER_QUERY, "duckdb", 5)
+    fit = Glm("binomial", source="sql", sample_rows=ROWS // 4).fit(engine, LAYOUT)
+    assert max(widths) == 5 and fit.convergence.passes_over_data == engine.reads - 1  # less the sample's LIMIT
+    assert fit.convergence.passes_over_data > 2 * fit.convergence.iterations
+    reference = sm.GLM(y, sm.add_constant(x), family=sm.families.Binomial()).fit(tol=1e-12)  # statsmodels IRLS
+    np.testing.assert_allclose(fit.estimates, reference.params, rtol=1e-8)
+
+
 def test_postgresql_fit_reads_the_design_table_twice_whatever_the_passes(postgres_engine, tmp_path):
     frame, x, y = design_rows("binomial", seed=8)
     engine = CountingEngine(load(postgres_engine, frame, tmp_path), LAYOUT.table)
