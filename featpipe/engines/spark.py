@@ -5,7 +5,9 @@ test run's), and only the engine that started a session stops it on close. A loc
 here keeps its warehouse and a Derby metastore in the folder of engine.path (the project's build
 folder), so tables built by one featpipe command are there for the next; only one process at a time
 can open that metastore. Spark has no transactions: a new table is built under the building name,
-then the old one is dropped and the new one renamed; a failed build drops the building table.
+then the old one is dropped and the new one renamed; a failed build drops the building table. Every
+engine raises its session's spark.sql.codegen.maxFields to CODEGEN_MAX_FIELDS, so featpipe's wide
+aggregates run as generated code.
 """
 
 from __future__ import annotations
