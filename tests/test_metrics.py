@@ -20,6 +20,7 @@ import statsmodels.api as sm
 import yaml
 from conftest import copy_demo, run_featpipe
 from delong_reference import delong_reference
+from recording import Recording
 from scipy.stats import ks_2samp, norm
 from sklearn.metrics import (
     accuracy_score,
@@ -33,7 +34,6 @@ from sklearn.metrics import (
     roc_auc_score,
 )
 from sqlglot import exp
-from recording import Recording
 from sqlite_engine import SQLiteEngine
 
 from featpipe.compiler.layout import DesignLayout

@@ -20,8 +20,8 @@ import statsmodels.api as sm
 from conftest import copy_demo, run_featpipe, write_project
 from recording import Recording
 from spline_reference import restricted_cubic_spline
-from test_learned_terms import lease_project
 from statsmodels.stats.multitest import multipletests
+from test_learned_terms import lease_project
 
 from featpipe import api
 from featpipe.compiler.candidates import ColumnSummary, ModelTermInfo, generate_candidates

@@ -52,8 +52,8 @@ def holdout_metrics(
     `scored_rows_metrics`); `counted` when the spec's weights are frequency weights.
 
     On PostgreSQL the scored rows are stored first in a temporary table (gone with the connection) that
-    the eight metric queries read, rather than each reading the design table and scoring it again:
-    1M rows, 30% held out: 5.4 s against 8.5 s (measured on this machine)."""
+    the metric queries read, rather than each reading the design table and scoring it again: a binomial
+    model's eight on 1M rows, 30% held out, 4.7-5.4 s against 8.5 s (measured on this machine)."""
     rows = scored_holdout(layout, coefficients, counted)
     if engine.dialect not in STORED_SCORES_DIALECTS:
         return scored_rows_metrics(engine, rows, family, threshold, counted, power)

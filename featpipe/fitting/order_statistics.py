@@ -80,6 +80,7 @@ def values_at_ranks(
         found.update(read_ranks(wanted, engine.fetch(query)))
     return found
 
+
 def _bracketed(
     engine: Engine, layout: DesignLayout, columns: Mapping[str, exp.Expression], counts: Mapping[str, int],
     wanted: Mapping[str, Sequence[int]], where: exp.Expression | None,
