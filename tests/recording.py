@@ -1,4 +1,4 @@
-"""Engine wrappers for tests that check which SQL a step sends."""
+"""An engine wrapper for tests that check which SQL a step sends."""
 
 from __future__ import annotations
 
@@ -19,15 +19,3 @@ class Recording:
     def fetch_batches(self, query, batch_rows):
         self.queries.append(self.engine.render(query))
         return self.engine.fetch_batches(query, batch_rows)
-
-
-class MissedSummary(Recording):
-    """The engine, except that its quantile summary answers values above every row of the first column,
-    so that column's brackets miss (Spark's error bound rules that out; the route must not rest on it)."""
-
-    def fetch(self, query):
-        rows = super().fetch(query)
-        if "PERCENTILE_APPROX" not in self.queries[-1].upper():
-            return rows
-        ((first, *others),) = rows
-        return [([value + 1000.0 for value in first], *others)]

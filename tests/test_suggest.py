@@ -18,7 +18,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import copy_demo, run_featpipe, write_project
-from recording import MissedSummary, Recording
+from recording import Recording
 from spline_reference import restricted_cubic_spline
 from statsmodels.stats.multitest import multipletests
 from test_learned_terms import lease_project
@@ -366,13 +366,13 @@ def test_constant_collinear_and_mostly_null_candidates_are_dropped_with_a_count(
     assert report.tested + sum(report.dropped.values()) == report.considered
 
 
-def _statistics_on(engine, root: Path, model: str, recording_kind=Recording) -> tuple[dict[str, float], list[str]]:
+def _statistics_on(engine, root: Path, model: str) -> tuple[dict[str, float], list[str]]:
     """The score statistic of every candidate `suggest` tests on `engine`, and the queries it ran."""
     project = load_project(root)
     compiled = api.check(project)
     chosen = compiled.models[model]
     build_designs(engine, project, [chosen], every_file=True)
-    recording = recording_kind(engine)
+    recording = Recording(engine)
     report = suggest_in(recording, compiled, chosen, read_fitted(project.fitted_path(model)), top=1000)
     return {s.name: s.statistic for s in report.suggestions}, recording.queries
 
@@ -380,8 +380,7 @@ def _statistics_on(engine, root: Path, model: str, recording_kind=Recording) -> 
 @pytest.mark.parametrize("other", ["postgres", pytest.param("spark", marks=pytest.mark.spark)])
 def test_statistics_are_equal_on_duckdb_postgres_and_spark(fitted_demos, request, other):
     """Threshold candidates sit at the columns' deciles and are named after them, so the same names also
-    check the deciles (to the six digits a name shows). On Spark the quantile summary is made to miss the
-    first column's deciles, so they are ranked by the window route and the others by brackets."""
+    check the deciles (to the six digits a name shows)."""
     root = fitted_demos["fleet_claims"]  # claim_frequency has the SPLINE vehicle_age_curve
     project = load_project(root)
     from featpipe.engines.compute import connect
@@ -389,13 +388,9 @@ def test_statistics_are_equal_on_duckdb_postgres_and_spark(fitted_demos, request
     with connect(project) as engine:
         reference, _ = _statistics_on(engine, root, "claim_frequency")
     engine = request.getfixturevalue(f"{other}_engine")
-    found, queries = _statistics_on(engine, root, "claim_frequency", MissedSummary if other == "spark" else Recording)
+    found, queries = _statistics_on(engine, root, "claim_frequency")
     assert found.keys() == reference.keys() and len(found) > 50
     for name, statistic in reference.items():
         assert found[name] == pytest.approx(statistic, rel=1e-9), name  # DuckDB, the engine statsmodels checks above
-    if other == "spark":  # its PERCENTILE_DISC holds every distinct value in the JVM's memory, once per fraction;
-        # a window over the stacked rows sorts every distinct value: a quantile summary brackets the deciles
-        assert not any("PERCENTILE_DISC" in query.upper() for query in queries)
-        assert sum("PERCENTILE_APPROX" in query.upper() for query in queries) == 1
-        (window,) = [query for query in queries if " OVER " in query.upper()]
-        assert window.count("WHEN '") == 1  # one column stacked: the first, whose bracket missed
+    if other == "spark":  # its PERCENTILE_DISC holds every distinct value in the JVM's memory, once per fraction
+        assert not any("PERCENTILE" in query.upper() for query in queries)

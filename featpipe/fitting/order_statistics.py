@@ -13,13 +13,14 @@ at a rank, bit for bit. SQL: featpipe.sqlgen.profile.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 
 from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
-from ..sqlgen.brackets import SKETCH_DIALECTS, bracket_intervals, bracket_requests, read_segments, segments_query, sketch_query
+from ..sqlgen.brackets import SKETCH_DIALECTS, bracket_fractions, merged, read_segments, segments_query, sketch_accuracy, sketch_query
 from ..sqlgen.profile import (
     COLUMNAR_DIALECTS,
     PERCENTILE_DIALECTS,
@@ -29,7 +30,6 @@ from ..sqlgen.profile import (
     ranks_query,
     read_percentiles,
     read_ranks,
-    training_values,
 )
 
 PERCENTILE, BRACKETS, WINDOW = "percentile", "brackets", "window"
@@ -87,9 +87,13 @@ def _bracketed(
 ) -> dict[str, dict[int, float] | None]:
     """Per column of `wanted`, its values at its ranks by the bracketing route (featpipe.sqlgen.brackets);
     None where a bracket missed its value, for the window route to rank."""
-    fractions, accuracies = bracket_requests(wanted, counts)
-    rows, values = training_values(layout, {name: columns[name] for name in wanted}, where)
-    intervals = bracket_intervals(read_percentiles(fractions, engine.fetch(sketch_query(rows, values, fractions, accuracies))[0]))
+    accuracies = {name: sketch_accuracy(counts[name]) for name in wanted}
+    fractions = {name: tuple(fraction for rank in ranks for fraction in bracket_fractions(rank, counts[name], accuracies[name]))
+                 for name, ranks in wanted.items()}
+    bounds = read_percentiles(fractions, engine.fetch(sketch_query(
+        layout, {name: columns[name] for name in wanted}, fractions, accuracies, where))[0])
+    intervals = {name: merged(list(zip(values[::2], values[1::2], strict=True))) for name, values in bounds.items()
+                 if all(math.isfinite(value) for value in values)}
     found: dict[str, dict[int, float] | None] = {name: None for name in wanted}
     if intervals:
         query = segments_query(layout, {name: columns[name] for name in intervals}, intervals, where)

@@ -35,15 +35,12 @@ from ..errors import FeatpipeError
 from ..fitted import FittedModel
 from ..fitted.scoring import scoring_model
 from ..project import InputSpec, TermFile
-from ..sqlgen.brackets import bracket_intervals, bracket_requests, read_segments
 from ..sqlgen.design import term_value
-from ..sqlgen.profile import DECILES, decile_rank, read_percentiles, read_ranks
+from ..sqlgen.profile import DECILES, decile_rank, read_ranks
 from ..sqlgen.suggest import (
     candidate_means_query,
     candidate_sums_width,
     column_ranks_query,
-    column_segments_query,
-    column_sketch_query,
     column_summary_query,
     level_counts_query,
     model_sums_width,
@@ -51,7 +48,7 @@ from ..sqlgen.suggest import (
     read_levels,
     score_sums_query,
 )
-from .order_statistics import BRACKETS, PERCENTILE, engine_route
+from .order_statistics import PERCENTILE, engine_route
 
 # Values one query may return, by engine: PostgreSQL refuses more than 1,664 columns in a select list;
 # Spark compiles a very wide aggregate slowly, so it gets narrower chunks.
@@ -151,8 +148,8 @@ def suggest(
                                               deciles=exact)
         scans += 1
         if not exact:
-            figures, deciles_scans = _with_deciles(engine, model, source, numeric, figures)
-            scans += deciles_scans
+            figures = _with_deciles(engine, model, source, numeric, figures)
+            scans += 1
         for name in numeric:
             count, total, low, high, deciles = figures[name]
             summaries.append(ColumnSummary(name, rows, count, total / count if count else None, low, high, deciles))
@@ -214,28 +211,12 @@ def suggest(
                          suggestions=suggestions, scans=scans, top=top)
 
 
-def _with_deciles(engine: Engine, model: CompiledModel, source: InputSpec, columns: list[str], figures: dict) -> tuple[dict, int]:
-    """`figures` (count, sum, min, max, deciles) with the deciles read as the profiles read them where the
-    engine has no exact percentile aggregate that spills (featpipe.fitting.order_statistics): the distinct
-    values at ranks ceil(k n / 10), what PERCENTILE_DISC(k / 10) gives on the other engines; and the scans taken."""
-    counts = {name: figure[0] for name, figure in figures.items() if figure[0]}
-    ranks = {name: tuple(sorted({decile_rank(k, n) for k in DECILES})) for name, n in counts.items()}
-    found: dict[str, dict[int, float] | None] = {}
-    scans = 0
-    if ranks and engine_route(engine.dialect) == BRACKETS:
-        fractions, accuracies = bracket_requests(ranks, counts)
-        bounds = read_percentiles(fractions, engine.fetch(column_sketch_query(model, source, columns, fractions, accuracies))[0])
-        intervals = bracket_intervals(bounds)
-        if intervals:
-            found.update(read_segments({name: ranks[name] for name in intervals},
-                                       engine.fetch(column_segments_query(model, source, columns, intervals))))
-        scans += 1 + bool(intervals)
-    missed = {name: wanted for name, wanted in ranks.items() if found.get(name) is None}
-    if missed:  # the window route: no quantile summary, or a bracket that missed
-        found.update(read_ranks(missed, engine.fetch(column_ranks_query(model, source, columns, missed))))
-        scans += 1
-    deciles = {name: tuple(sorted(set((found.get(name) or {}).values()))) for name in figures}
-    return {name: (*figure[:4], deciles[name]) for name, figure in figures.items()}, scans
+def _with_deciles(engine: Engine, model: CompiledModel, source: InputSpec, columns: list[str], figures: dict) -> dict:
+    """`figures` (count, sum, min, max, deciles) with the deciles read by the window route: the distinct
+    values at ranks ceil(k n / 10), what PERCENTILE_DISC(k / 10) gives on the other engines."""
+    ranks = {name: tuple(sorted({decile_rank(k, figure[0]) for k in DECILES})) for name, figure in figures.items() if figure[0]}
+    found = read_ranks(ranks, engine.fetch(column_ranks_query(model, source, columns, ranks))) if ranks else {}
+    return {name: (*figure[:4], tuple(sorted(set(found.get(name, {}).values())))) for name, figure in figures.items()}
 
 
 def _chunks(items: list[str], size: int) -> list[list[str]]:

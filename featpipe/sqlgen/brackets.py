@@ -9,8 +9,7 @@ each wanted rank, then one counting scan finds the exact value inside its bracke
   documentation: "1.0/accuracy is the relative error of the approximation"). Asked for the fractions
   a margin of 2 n / accuracy ranks below and above rank r (`bracket_fractions`), it gives an interval
   [low, high] holding the value at rank r;
-- `segments_query` (`stacked_segments_query` over rows that stack the columns already, as `featpipe
-  suggest` reads them): every non-NULL value placed by comparisons alone among its column's disjoint
+- `segments_query`: every non-NULL value placed by comparisons alone among its column's disjoint
   intervals (`merged`): a value inside an interval is counted per distinct value, the values in each
   gap before, between and after the intervals as one count;
 - `read_segments`: the counts in value order give every value's exact rank, so the value at rank r
@@ -31,7 +30,7 @@ from sqlglot import exp
 
 from ..compiler.layout import DesignLayout
 from .common import alias, column, number
-from .profile import NAME, ROWS, VALUE, column_values
+from .profile import NAME, ROWS, VALUE, column_values, training_values
 
 SKETCH_DIALECTS = ("spark",)  # APPROX_PERCENTILE with a documented rank error, in bounded memory
 SEGMENT = "_segment"
@@ -51,33 +50,18 @@ def bracket_fractions(rank: int, n: int, accuracy: int) -> tuple[float, float]:
     return max(0.0, (rank - 1) / n - margin), min(1.0, rank / n + margin)
 
 
-def bracket_requests(ranks: Mapping[str, Sequence[int]], counts: Mapping[str, int]) -> tuple[dict[str, tuple[float, ...]], dict[str, int]]:
-    """Per column, the fractions to ask the summary for (a low and a high one per rank, in rank order)
-    and its accuracy."""
-    accuracies = {name: sketch_accuracy(counts[name]) for name in ranks}
-    fractions = {name: tuple(fraction for rank in wanted for fraction in bracket_fractions(rank, counts[name], accuracies[name]))
-                 for name, wanted in ranks.items()}
-    return fractions, accuracies
-
-
 def sketch_query(
-    rows: exp.Expression, values: Mapping[str, exp.Expression], fractions: Mapping[str, Sequence[float]],
-    accuracies: Mapping[str, int],
+    layout: DesignLayout, columns: Mapping[str, exp.Expression], fractions: Mapping[str, Sequence[float]],
+    accuracies: Mapping[str, int], where: exp.Expression | None = None,
 ) -> exp.Select:
-    """One scan of `rows`: per entry of `values` (an expression over them), its approximate values at
-    `fractions` (one list per entry, read by featpipe.sqlgen.profile.read_percentiles)."""
+    """One scan of the rows read: per column, its approximate values at `fractions` (one list per column,
+    read by featpipe.sqlgen.profile.read_percentiles)."""
+    rows, values = training_values(layout, columns, where)
     return exp.select(*(
-        exp.ApproxQuantile(this=value.copy(), quantile=exp.Array(expressions=[number(fraction) for fraction in fractions[name]]),
+        exp.ApproxQuantile(this=value, quantile=exp.Array(expressions=[number(fraction) for fraction in fractions[name]]),
                            accuracy=exp.Literal.number(accuracies[name]))
         for name, value in values.items()
     )).from_(rows)
-
-
-def bracket_intervals(bounds: Mapping[str, Sequence[float]]) -> dict[str, tuple[tuple[float, float], ...]]:
-    """Per column, the `merged` intervals of the summary's (low, high) `bounds`; a column with a bound that
-    is not finite (an infinite or NaN value among its rows) is left out, for the window route."""
-    return {name: merged(list(zip(values[::2], values[1::2], strict=True))) for name, values in bounds.items()
-            if all(math.isfinite(value) for value in values)}
 
 
 def merged(intervals: Sequence[tuple[float, float]]) -> tuple[tuple[float, float], ...]:
@@ -97,47 +81,29 @@ def segments_query(
 ) -> exp.Select:
     """One scan per column of the rows read, stacked: name, segment, value, rows. A column's values fall
     in segment 2i + 1 inside its i-th interval (of `merged` ones), each distinct value a row; in
-    segment 2i in the gap below that interval, and 2m above the last of m, one row per gap with a NULL value.
-    Each column's own scan places its values with its intervals alone (on 1M rows a third of the time
-    of one scan stacking the columns by a cross join with their names, measured on Spark)."""
+    segment 2i in the gap below that interval, and 2m above the last of m, one row per gap with a NULL value."""
     stacked = reduce(lambda left, right: exp.union(left, right, distinct=False), [
-        exp.select(alias(exp.Literal.string(name), NAME), *_placed(bounds))
-        .from_(column_values(layout, columns[name], where).subquery("_values"))
-        .where(column(VALUE).is_(exp.null()).not_())
-        for name, bounds in intervals.items()
+        _placed(column_values(layout, columns[name], where), name, bounds) for name, bounds in intervals.items()
     ])
-    return _counted(stacked)
+    return (
+        exp.select(column(NAME), column(SEGMENT), column(VALUE), alias(exp.Count(this=exp.Star()), ROWS))
+        .from_(stacked.subquery("_placed"))
+        .group_by(column(NAME), column(SEGMENT), column(VALUE))
+    )
 
 
-def stacked_segments_query(stacked: exp.Query, intervals: Mapping[str, Sequence[tuple[float, float]]]) -> exp.Select:
-    """`segments_query` over rows that stack the columns already: a column's name in NAME and one of its
-    values in VALUE (rows of columns without intervals are left out)."""
-    segment, kept = exp.Case(), exp.Case()
-    for name, bounds in intervals.items():
-        placed_segment, placed_value = _placed(bounds)
-        segment = segment.when(column(NAME).eq(exp.Literal.string(name)), placed_segment.this)
-        kept = kept.when(column(NAME).eq(exp.Literal.string(name)), placed_value.this)
-    named = exp.or_(*(column(NAME).eq(exp.Literal.string(name)) for name in intervals))
-    placed = (exp.select(column(NAME), alias(segment, SEGMENT), alias(kept, VALUE)).from_(stacked.subquery("_stacked"))
-              .where(exp.and_(column(VALUE).is_(exp.null()).not_(), named)))
-    return _counted(placed)
-
-
-def _placed(intervals: Sequence[tuple[float, float]]) -> tuple[exp.Alias, exp.Alias]:
-    """The segment of VALUE among `intervals`, and VALUE kept inside an interval only (NULL in a gap)."""
+def _placed(values: exp.Select, name: str, intervals: Sequence[tuple[float, float]]) -> exp.Select:
+    """A column's non-NULL values with their segment, the value kept inside an interval only."""
     segment, kept = exp.Case(), exp.Case()
     for index, (low, high) in enumerate(intervals):
         below, inside = exp.LT(this=column(VALUE), expression=number(low)), exp.LTE(this=column(VALUE), expression=number(high))
         segment = segment.when(below, exp.Literal.number(2 * index)).when(inside, exp.Literal.number(2 * index + 1))
         kept = kept.when(below.copy(), exp.null()).when(inside.copy(), column(VALUE))
-    return alias(segment.else_(exp.Literal.number(2 * len(intervals))), SEGMENT), alias(kept, VALUE)
-
-
-def _counted(placed: exp.Query) -> exp.Select:
+    segment = segment.else_(exp.Literal.number(2 * len(intervals)))
     return (
-        exp.select(column(NAME), column(SEGMENT), column(VALUE), alias(exp.Count(this=exp.Star()), ROWS))
-        .from_(placed.subquery("_placed"))
-        .group_by(column(NAME), column(SEGMENT), column(VALUE))
+        exp.select(alias(exp.Literal.string(name), NAME), alias(segment, SEGMENT), alias(kept, VALUE))
+        .from_(values.subquery("_values"))
+        .where(column(VALUE).is_(exp.null()).not_())
     )
 
 

@@ -7,10 +7,8 @@ the current model read the very same rows. Only sums and a few order statistics 
 - `column_summary_query`: one scan; per numeric column its count, sum, min, max and nine deciles
   (exact, PERCENTILE_DISC: the inverted empirical CDF, as the fitted profiles use); on engines whose
   exact percentile aggregate holds every distinct value in memory (Spark) or that have none (SQLite),
-  the deciles are the values at ranks ceil(k n / 10) that PERCENTILE_DISC(k / 10) gives elsewhere, read
-  as the profiles read them: on Spark by brackets, `column_sketch_query` then `column_segments_query`
-  over the stacked rows (featpipe.sqlgen.brackets); on SQLite, or for a column whose bracket missed,
-  by the window route over the stacked rows, `column_ranks_query`;
+  the deciles come from a second scan, `column_ranks_query`: the window route of the profiles over
+  the same rows, the values at ranks ceil(k n / 10) that PERCENTILE_DISC(k / 10) gives elsewhere;
 - `level_counts_query`: one scan; the text levels with at least `min_rows` training rows, all text
   columns at once through GROUPING SETS (each result row has one column set, the others NULL);
 - `candidate_means_query`: the mean of each candidate over the first `rows` training rows (a LIMIT, not
@@ -39,7 +37,6 @@ from .common import alias, column, double, number, training_rows
 from .design import design_query
 from .learned import design_columns
 from .metrics import linear_predictor, prediction
-from .brackets import sketch_query, stacked_segments_query
 from .profile import NAME, VALUE, stacked_ranks_query
 from .score import ScoringModel, ScoringTerm
 from .statistics import upper_pairs
@@ -93,37 +90,17 @@ def read_column_summaries(row: Sequence, columns: Sequence[str], deciles: bool =
 
 def column_ranks_query(model: CompiledModel, source: InputSpec, columns: Sequence[str], ranks: Mapping[str, Sequence[int]]) -> exp.Select:
     """The values at `ranks` of the columns that have some (read with featpipe.sqlgen.profile.read_ranks),
-    in one scan of the stacked training rows (`stacked_columns`)."""
-    wanted = [name for name in columns if ranks.get(name)]
-    return stacked_ranks_query(stacked_columns(model, source, columns, wanted), {name: ranks[name] for name in wanted})
-
-
-def column_sketch_query(model: CompiledModel, source: InputSpec, columns: Sequence[str],
-                        fractions: Mapping[str, Sequence[float]], accuracies: Mapping[str, int]) -> exp.Select:
-    """One scan: the quantile summary's values at `fractions` of the columns that have some
-    (featpipe.sqlgen.brackets.sketch_query)."""
-    values = {name: column(_in(index)) for index, name in enumerate(columns) if name in fractions}
-    return sketch_query(numeric_input(model, source, columns), values, fractions, accuracies)
-
-
-def column_segments_query(model: CompiledModel, source: InputSpec, columns: Sequence[str],
-                          intervals: Mapping[str, Sequence[tuple[float, float]]]) -> exp.Select:
-    """One scan of the stacked training rows: the values of the columns with `intervals` counted by where
-    they fall among them (featpipe.sqlgen.brackets.read_segments reads the ranks)."""
-    return stacked_segments_query(stacked_columns(model, source, columns, list(intervals)), intervals)
-
-
-def stacked_columns(model: CompiledModel, source: InputSpec, columns: Sequence[str], wanted: Sequence[str]) -> exp.Select:
-    """The training rows stacked as (name, value) for each of the `wanted` columns: each row repeated once
-    per column (a cross join with their names), rather than the training rows computed once per column."""
+    in one scan: each training row is repeated once per column (a cross join with their names) and
+    stacked as (name, value), rather than the training rows computed once per column."""
+    wanted = [(index, name) for index, name in enumerate(columns) if ranks.get(name)]
     names = reduce(lambda left, right: exp.union(left, right, distinct=False),
-                   [exp.select(alias(exp.Literal.string(name), NAME)) for name in wanted])
+                   [exp.select(alias(exp.Literal.string(name), NAME)) for _, name in wanted])
     value = exp.Case(this=column(NAME))
-    for index, name in enumerate(columns):
-        if name in wanted:
-            value = value.when(exp.Literal.string(name), column(_in(index)))
-    return (exp.select(column(NAME), alias(value, VALUE)).from_(numeric_input(model, source, columns))
-            .join(names.subquery("_names"), join_type="CROSS"))
+    for index, name in wanted:
+        value = value.when(exp.Literal.string(name), column(_in(index)))
+    stacked = (exp.select(column(NAME), alias(value, VALUE)).from_(numeric_input(model, source, columns))
+               .join(names.subquery("_names"), join_type="CROSS"))
+    return stacked_ranks_query(stacked, {name: ranks[name] for _, name in wanted})
 
 
 def level_counts_query(model: CompiledModel, source: InputSpec, columns: Sequence[str], min_rows: int) -> exp.Select:
