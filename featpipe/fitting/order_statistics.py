@@ -93,7 +93,7 @@ def _bracketed(
     bounds = read_percentiles(fractions, engine.fetch(sketch_query(
         layout, {name: columns[name] for name in wanted}, fractions, accuracies, where))[0])
     intervals = {name: merged(list(zip(values[::2], values[1::2], strict=True))) for name, values in bounds.items()
-                 if all(math.isfinite(value) for value in values)}
+                 if all(math.isfinite(value) for value in values)}  # an infinite or NaN value: the window route ranks it
     found: dict[str, dict[int, float] | None] = {name: None for name in wanted}
     if intervals:
         query = segments_query(layout, {name: columns[name] for name in intervals}, intervals, where)
