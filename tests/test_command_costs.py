@@ -135,11 +135,11 @@ def test_an_aggregate_pass_too_wide_for_the_engine_is_read_in_parts(monkeypatch,
     frame, x, y = design_rows("binomial")
     engine = CountingEngine(load(DuckDBEngine(tmp_path / "design.duckdb"), frame, tmp_path), LAYOUT.table)
     widths = []
-    recording = engine.fetch
+    counted_fetch = engine.fetch
 
-    def fetch(query):
+    def fetch(query):  # the aggregates of each query, then the counted read
         widths.append(len(query.expressions))
-        return recording(query)
+        return counted_fetch(query)
 
     engine.fetch = fetch
     monkeypatch.setitem(sources.AGGREGATES_PER_QUERY, "duckdb", 5)
