@@ -16,18 +16,28 @@ import math
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 import statsmodels.api as sm
 import yaml
 from conftest import run_featpipe, write_project
+from recording import Recording
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import brier_score_loss, log_loss, roc_auc_score
+from sqlglot import exp
 
 from featpipe import api
+from featpipe.compiler.layout import DesignLayout
+from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.fitted import read_fitted
 from featpipe.fitted.evaluations import read_evaluation
 from featpipe.fitted.report import write_report
+from featpipe.fitting import crossval
 from featpipe.fitting.crossval import L2_GRID
+from featpipe.glm.families import get_family
+from featpipe.glm.folds import BatchFoldSource, FoldSource, fit_folds
+from featpipe.glm.penalty import ScaledPenalty
+from featpipe.glm.sources import Scaling, engine_batches
 from featpipe.project import load_project
 
 COLUMNS = "{loan_id: BIGINT, signed_on: DATE, month_index: BIGINT, income: DOUBLE, debt: DOUBLE, region: VARCHAR, defaulted: BIGINT}"
@@ -278,6 +288,73 @@ def test_penalty_l2_cv_picks_the_strength_with_the_smallest_cross_validated_devi
     assert choice["deviance"] == pytest.approx(deviances, rel=1e-6)
     assert choice["chosen"] == L2_GRID[int(np.argmin(deviances))]
     assert fitted.penalty == {"l2": "cv", "l1": 0.0} and fitted.fit["penalized"]
+
+
+@pytest.mark.parametrize("kind", ["duckdb", "postgres"])
+def test_fold_fits_read_the_rows_with_their_fold_instead_of_summing_each_pass_by_fold(tmp_path, request, monkeypatch, kind):
+    """Where a fit reads the training rows out (DuckDB streams them, PostgreSQL copies them once), the
+    folds' passes do too, each row with its fold: no aggregate grouped by fold per pass (about 2 s a pass
+    on 1M rows in DuckDB, against 0.6 s streamed). The choice equals the grouped aggregates' (the route
+    Spark keeps), and the test above checks it against scikit-learn."""
+    spec = SPEC + "folds: 3\npenalty: {l2: cv}\n"
+    root = loans_project(tmp_path / kind, spec)
+    if kind == "postgres":
+        (root / "featpipe.yaml").write_text(PROJECT.replace("{kind: duckdb, path: build/loans.duckdb}", engine_block(kind, request)))
+    recorded = []
+    choose = crossval.chosen_penalty
+
+    def recording(engine, layout, model_spec):
+        recorded.append(Recording(engine))
+        return choose(recorded[-1], layout, model_spec)
+
+    monkeypatch.setattr(crossval, "chosen_penalty", recording)
+    api.fit(load_project(root))
+    choice = read_fitted(root / "fitted/risk.yaml").crossval["l2"]
+    fold_queries = [query for query in recorded[0].queries if "v1:folds" in query]
+    assert not [query for query in fold_queries if "SUM(" in query]  # only the fold sizes' COUNT(*) is an aggregate
+    streamed = [query for query in fold_queries if "GROUP BY" not in query]  # the rows, each with its fold
+    assert len(streamed) == len(fold_queries) - 1
+    assert len(streamed) == 1 if kind == "postgres" else len(streamed) > len(L2_GRID)  # a copy, or a stream per pass
+    monkeypatch.setattr(crossval, "AUTO_SOURCES", {})  # every engine as Spark: a grouped aggregate per pass
+    api.fit(load_project(root))
+    summed = read_fitted(root / "fitted/risk.yaml").crossval["l2"]
+    assert choice["deviance"] == pytest.approx(summed["deviance"], rel=1e-10) and choice["chosen"] == summed["chosen"]
+
+
+def test_streamed_fold_fits_with_an_offset_and_weights_equal_statsmodels_refits_and_the_grouped_queries(tmp_path):
+    """Poisson counts over an exposure (the offset), with variance weights, in three folds (key mod 3):
+    each fold's model from the streamed rows equals statsmodels' GLM refitted on the other folds' rows,
+    and both routes give the same coefficients and held-out deviances."""
+    rng = np.random.default_rng(11)
+    rows = 3_000
+    x = rng.normal(size=(rows, 2)) * [1.0, 3.0] + [0.2, -1.0]
+    exposure, weight = rng.uniform(0.5, 2.0, rows), rng.uniform(0.5, 1.5, rows)
+    y = rng.poisson(exposure * np.exp(-0.4 + x @ [0.5, -0.2])).astype(float)
+    frame = pd.DataFrame({"id": np.arange(rows), "y": y, "log_exposure": np.log(exposure), "w": weight, "_holdout": False,
+                          "a": x[:, 0], "b": x[:, 1]})
+    frame.to_parquet(tmp_path / "design.parquet", index=False)
+    engine = DuckDBEngine(tmp_path / "design.duckdb")
+    layout = DesignLayout("design_counts", "id", "y", ("a", "b"), offset="log_exposure", weight="w")
+    engine.load_file(layout.table, tmp_path / "design.parquet")
+    fold = exp.Mod(this=exp.column("id", quoted=True), expression=exp.Literal.number(3))
+    family, scaling = get_family("poisson"), Scaling.of([x[:, 0], x[:, 1]])
+    weights = {index: float(weight[frame["id"] % 3 == index].sum()) for index in range(3)}
+    start = np.r_[np.log(y.sum() / exposure.sum()), 0.0, 0.0]
+    fits = {
+        "grouped": fit_folds(FoldSource(engine, layout, family, scaling, fold, weights), [start] * 3, ScaledPenalty(), weight.sum()),
+        "streamed": fit_folds(BatchFoldSource(engine_batches(engine, layout, 1_000, group=fold), layout, family, scaling, weights),
+                              [start] * 3, ScaledPenalty(), weight.sum()),
+    }
+    for index in range(3):
+        outside = frame["id"].to_numpy() % 3 != index
+        # statsmodels' GLM (IRLS), Poisson with the log exposure as offset and the weights as var_weights
+        refit = sm.GLM(y[outside], sm.add_constant(x[outside]), family=sm.families.Poisson(), offset=np.log(exposure[outside]),
+                       var_weights=weight[outside]).fit(tol=1e-12)
+        for route, fitted in fits.items():
+            np.testing.assert_allclose(scaling.to_original() @ fitted.results[index].beta, refit.params, rtol=1e-8, err_msg=route)
+    np.testing.assert_allclose(fits["streamed"].held_out_deviance, fits["grouped"].held_out_deviance, rtol=1e-10)
+    assert fits["streamed"].passes == fits["grouped"].passes
+    engine.close()
 
 
 @pytest.mark.parametrize("settings, message", [

@@ -1,7 +1,8 @@
 """k-fold cross-validation of a spec on its training rows, and `penalty: {l2: cv}`.
 
-The folds are hash-assigned in SQL (featpipe.sqlgen.crossval) and fitted in lockstep from grouped
-sufficient statistics (featpipe.glm.folds). Each fold's model is then measured on its own rows with the
+The folds are hash-assigned in SQL (featpipe.sqlgen.crossval) and fitted in lockstep from sufficient
+statistics split by fold (featpipe.glm.folds): from the rows streamed with their fold where a fit streams
+them (DuckDB; PostgreSQL reads them once into a local copy), else from an aggregate query grouped by fold. Each fold's model is then measured on its own rows with the
 holdout metric function itself, so a fold reports what a holdout reports; the record keeps every
 fold's metrics, their mean and their spread (sample sd over folds).
 
@@ -24,9 +25,10 @@ from ..engines.base import Engine
 from ..errors import FeatpipeError
 from ..fitted import as_written
 from ..glm.families import get_family
-from ..glm.folds import FoldSource, fit_folds
+from ..glm.fit import AUTO_SOURCES, BATCH_ROWS
+from ..glm.folds import BatchFoldSource, FoldSource, fit_folds
 from ..glm.penalty import ScaledPenalty
-from ..glm.sources import Scaling
+from ..glm.sources import LocalCopy, Scaling, engine_batches
 from ..project import ModelSpec, Penalty
 from ..project.names import INTERCEPT
 from ..sqlgen.crossval import fold_flag, fold_number, fold_sizes_query, fold_table_query
@@ -43,12 +45,12 @@ def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> tup
     and the record of that choice (grid, deviance per strength, the choice), None otherwise."""
     if not spec.penalty.cross_validated:
         return spec.penalty, None
-    folds = _Folds(engine, layout, spec)
     deviances, starts = [], None
-    for l2 in L2_GRID:
-        fits = folds.fit(Penalty(l2=l2, l1=spec.penalty.l1), starts)
-        deviances.append(sum(fits.held_out_deviance))
-        starts = [result.beta for result in fits.results]
+    with _Folds(engine, layout, spec) as folds:
+        for l2 in L2_GRID:
+            fits = folds.fit(Penalty(l2=l2, l1=spec.penalty.l1), starts)
+            deviances.append(sum(fits.held_out_deviance))
+            starts = [result.beta for result in fits.results]
     best = min(range(len(L2_GRID)), key=lambda index: (deviances[index], index))
     return (Penalty(l2=L2_GRID[best], l1=spec.penalty.l1),
             {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]})
@@ -56,8 +58,8 @@ def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> tup
 
 def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, penalty: Penalty, choice: dict | None) -> dict:
     """The fitted file's `crossval` record: per fold its training rows and metrics, their mean and sd."""
-    folds = _Folds(engine, layout, spec)
-    fits = folds.fit(penalty, None)
+    with _Folds(engine, layout, spec) as folds:
+        fits = folds.fit(penalty, None)
     per_fold = []
     scratch = f"crossval_{spec.name}"
     engine.create_table(scratch, fold_table_query(layout, folds.fold, spec.folds))
@@ -85,7 +87,8 @@ def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, pena
 
 
 class _Folds:
-    """The folds of one spec's training rows: their sizes, the working scaling and the fold fitter."""
+    """The folds of one spec's training rows: their sizes, the working scaling and the fold fitter; a
+    context manager, as the rows it reads may be a local copy to throw away."""
 
     def __init__(self, engine: Engine, layout: DesignLayout, spec: ModelSpec):
         self.engine, self.layout, self.family = engine, layout, get_family(spec.family, spec.power)
@@ -99,6 +102,16 @@ class _Folds:
         self.weights = {fold: sizes[fold][1] for fold in range(spec.folds)}
         self.training_rows = sum(self.rows)
         self.scaling, self.start = self._scaling_and_start()
+        source = AUTO_SOURCES.get(engine.name, "sql")
+        batches = None if source == "sql" else engine_batches(engine, layout, BATCH_ROWS, group=self.fold)
+        self.batches = LocalCopy(batches) if source == "local" else batches
+
+    def __enter__(self) -> _Folds:
+        return self
+
+    def __exit__(self, *exception) -> None:
+        if isinstance(self.batches, LocalCopy):
+            self.batches.close()
 
     def _scaling_and_start(self) -> tuple[Scaling, np.ndarray]:
         """Terms centered and scaled by their training mean and population sd (so the penalty needs no
@@ -119,7 +132,10 @@ class _Folds:
         return scaling, np.r_[self.family.link_of_mean(mean) - offset, np.zeros(len(self.layout.terms))]
 
     def fit(self, penalty: Penalty, starts: list[np.ndarray] | None):
-        source = FoldSource(self.engine, self.layout, self.family, self.scaling, self.fold, self.weights)
+        if self.batches is None:
+            source = FoldSource(self.engine, self.layout, self.family, self.scaling, self.fold, self.weights)
+        else:
+            source = BatchFoldSource(self.batches, self.layout, self.family, self.scaling, self.weights)
         scaled = ScaledPenalty(penalty.l2, penalty.l1)
         return fit_folds(source, starts or [self.start] * len(self.rows), scaled, sum(self.weights.values()))
 

@@ -1,9 +1,10 @@
-"""Every cross-validation fold of a model fitted in lockstep, from one grouped pass per IRLS step.
+"""Every cross-validation fold of a model fitted in lockstep, from one pass over the rows per IRLS step.
 
-A pass evaluates each fold's coefficients on every fold's rows at once (`statistics_query` grouped by
-fold), so it returns, per fold f and per fold's model g, the sums over f's rows. The training sums of
-model g are the total over all folds minus fold g's own, and fold g's own sums are its held-out
-deviance: k folds cost a few passes over the data, not k fits.
+A pass evaluates each fold's coefficients on every row at once and splits the sums by the row's fold,
+so it returns, per fold g's model, the sums over g's own rows (its held-out deviance) and over the
+other folds' rows (its training sums): k folds cost a few passes over the data, not k fits. Two
+sources do this: `FoldSource`, one aggregate query grouped by fold (any engine), and `BatchFoldSource`,
+the rows streamed through numpy with their fold, as `BatchSource` reads them for a fit.
 
 Every fold is fitted with one total weight and one penalty (run_irls takes one of each): fold g's sums
 are multiplied by W / W_g (W all training weight, W_g fold g's training weight). The objective IRLS
@@ -14,7 +15,7 @@ each fold's): the strength chosen by cross-validation is then the one the final 
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -27,7 +28,21 @@ from ..sqlgen.statistics import ModelRequest, statistics_query
 from .families import BOUNDARY_ETA, Family
 from .irls import AliasedTerms, IrlsResult, run_irls
 from .penalty import ScaledPenalty
-from .sources import Request, Scaling, Statistics, _unpack
+from .sources import (
+    BLOCK_ROWS,
+    Batch,
+    BatchSource,
+    Request,
+    Scaling,
+    Statistics,
+    Totals,
+    cut_rows,
+    one_blas_thread,
+    row_blocks,
+    term_columns,
+    unpack_statistics,
+    weighted_sum,
+)
 
 
 @dataclass(frozen=True)
@@ -35,6 +50,23 @@ class FoldRequest(Request):
     """A linear predictor of the model fitted without fold `fold`."""
 
     fold: int
+
+
+class _FoldBook:
+    """Per fold: the factor its training sums are multiplied by, and its own sums last evaluated."""
+
+    def __init__(self, weights: Mapping[int, float]):
+        total = sum(weights.values())
+        self.rescale = {index: total / (total - weight) for index, weight in weights.items()}
+        self.held_out: dict[int, Statistics] = {}
+
+    def training(self, requests: Sequence[FoldRequest], sums: Sequence[tuple[Statistics, Statistics]]) -> list[Statistics]:
+        """Each request's training statistics from (its fold's own sums, the other folds' sums)."""
+        training = []
+        for request, (own, others) in zip(requests, sums, strict=True):
+            self.held_out[request.fold] = own
+            training.append(_scaled(others, self.rescale[request.fold]))
+        return training
 
 
 class FoldSource:
@@ -48,9 +80,8 @@ class FoldSource:
         self.engine, self.layout, self.family, self.fold = engine, layout, family, fold
         self.centers = dict(zip(layout.terms, scaling.centers.tolist(), strict=True))
         self.scales = dict(zip(layout.terms, scaling.scales.tolist(), strict=True))
-        total = sum(weights.values())
-        self.rescale = {index: total / (total - weight) for index, weight in weights.items()}
-        self.held_out: dict[int, Statistics] = {}
+        self.book = _FoldBook(weights)
+        self.held_out = self.book.held_out
         self.passes = 0
 
     def evaluate(self, requests: Sequence[FoldRequest]) -> list[Statistics]:
@@ -61,15 +92,70 @@ class FoldSource:
                                  power=self.family.power)
         sizes = [len(request.terms) + 1 for request in requests]
         # Each row: the fold, every model's sums, then every model's Pearson chi2 (not needed here).
-        groups = {int(row[0]): _unpack(row[1 : len(row) - len(requests)], sizes) for row in self.engine.fetch(query)}
+        groups = {int(row[0]): unpack_statistics(row[1 : len(row) - len(requests)], sizes) for row in self.engine.fetch(query)}
         self.passes += 1
-        training = []
-        for index, request in enumerate(requests):
-            own = groups[request.fold][index]
-            others = [statistics[index] for fold, statistics in groups.items() if fold != request.fold]
-            self.held_out[request.fold] = own
-            training.append(_scaled(_total(others), self.rescale[request.fold]))
-        return training
+        return self.book.training(requests, [
+            (groups[request.fold][index], _total([statistics[index] for fold, statistics in groups.items() if fold != request.fold]))
+            for index, request in enumerate(requests)
+        ])
+
+
+class BatchFoldSource(BatchSource):
+    """`FoldSource` from batches that carry each row's fold (`Batch.group`, numbered 0 to k - 1): each
+    block's rows are put in fold order once, then every fold's model is evaluated on the slice of its
+    own rows and on the slices around it. Memory is one batch, as for `BatchSource`."""
+
+    def __init__(self, batches: Callable[[], Iterable[Batch]], layout: DesignLayout, family: Family, scaling: Scaling,
+                 weights: Mapping[int, float]):
+        super().__init__("folds", batches, family, scaling)
+        self.layout = layout
+        self.book = _FoldBook(weights)
+        self.held_out = self.book.held_out
+        self._saturated_by_fold: np.ndarray | None = None  # per fold, the sum of w times the saturated deviance
+
+    def evaluate(self, requests: Sequence[FoldRequest]) -> list[Statistics]:
+        folds = len(self.book.rescale)
+        own = [Totals(len(request.terms) + 1) for request in requests]
+        others = [Totals(len(request.terms) + 1) for request in requests]
+        saturated = np.zeros(folds) if self._saturated_by_fold is None else None  # summed in the first pass only
+        with one_blas_thread():
+            for batch in self.batches():
+                for block in row_blocks(batch, BLOCK_ROWS):
+                    block, bounds = _in_fold_order(block, folds)
+                    standardized = self._standardize(block.terms, len(block.y))
+                    if saturated is not None:
+                        for fold in range(folds):
+                            rows = slice(bounds[fold], bounds[fold + 1])
+                            saturated[fold] += weighted_sum(self.family.saturated_deviance(block.y[rows]), cut_rows(block.weight, rows))
+                    for request, its_own, the_others in zip(requests, own, others, strict=True):
+                        start, end = bounds[request.fold], bounds[request.fold + 1]
+                        for total, rows in ((the_others, slice(0, start)), (its_own, slice(start, end)), (the_others, slice(end, None))):
+                            self._add(total, request, block, standardized, rows)
+        self.passes += 1
+        if saturated is not None:
+            self._saturated_by_fold = saturated
+        by_fold, everything = self._saturated_by_fold, float(self._saturated_by_fold.sum())
+        return self.book.training(requests, [
+            (its_own.statistics(by_fold[request.fold]), the_others.statistics(everything - by_fold[request.fold]))
+            for request, its_own, the_others in zip(requests, own, others, strict=True)
+        ])
+
+    def _add(self, total: Totals, request: FoldRequest, block: Batch, standardized: np.ndarray, rows: slice) -> None:
+        part = Batch(block.y[rows], cut_rows(block.offset, rows), cut_rows(block.weight, rows), [])
+        if len(part.y) == 0:
+            return
+        x = term_columns(standardized[rows], request.terms)
+        scratch = None if x is None else self._buffer("rooted", len(x), 1 + x.shape[1])
+        total.add(self.family, part, x, request.beta, scratch)
+
+
+def _in_fold_order(block: Batch, folds: int) -> tuple[Batch, np.ndarray]:
+    """The block's rows sorted by fold (stable), and where each fold's rows start (fold k: the end)."""
+    order = np.argsort(block.group, kind="stable")
+    group = block.group[order]
+    ordered = Batch(block.y[order], cut_rows(block.offset, order), cut_rows(block.weight, order),
+                    [values[order] for values in block.terms], group)
+    return ordered, np.searchsorted(group, np.arange(folds + 1), side="left")
 
 
 def _total(parts: Sequence[Statistics]) -> Statistics:

@@ -29,6 +29,7 @@ from threadpoolctl import ThreadpoolController
 
 from ..compiler.layout import DesignLayout
 from ..engines.base import Engine
+from ..sqlgen.common import alias
 from ..sqlgen.first_pass import first_pass_query, profile_width
 from ..sqlgen.statistics import (
     ModelRequest,
@@ -56,6 +57,7 @@ BLOCK_ROWS = 16_384
 # interpreted: 88 s on 700,000 rows, against 35 s in parts of 500 sums (250: 49 s; 100: 95 s, each
 # part reading the rows again; measured on this machine).
 AGGREGATES_PER_QUERY = {"spark": 500}
+GROUP = "_group"  # the column of each row's group in grouped batches (`engine_batches`)
 
 
 @dataclass(frozen=True)
@@ -164,11 +166,11 @@ class SqlAggregateSource:
     def _read(self, row: Sequence, requests: Sequence[Request]) -> list[Statistics]:
         """One `Statistics` per request from the row of `statistics_query`."""
         pearson = [np.nan if value is None else float(value) for value in row[len(row) - len(requests):]]
-        unpacked = _unpack(row[: len(row) - len(requests)], [len(request.terms) + 1 for request in requests])
+        unpacked = unpack_statistics(row[: len(row) - len(requests)], [len(request.terms) + 1 for request in requests])
         return [replace(statistics, pearson=chi2) for statistics, chi2 in zip(unpacked, pearson, strict=True)]
 
 
-def _unpack(row: Sequence, sizes: list[int]) -> list[Statistics]:
+def unpack_statistics(row: Sequence, sizes: list[int]) -> list[Statistics]:
     """Split the row of `statistics_query` into one `Statistics` per model."""
     values = [np.nan if value is None else float(value) for value in row]
     out, position = [], 0
@@ -193,6 +195,7 @@ class Batch:
     offset: np.ndarray | None
     weight: np.ndarray | None
     terms: list[np.ndarray]  # one column per term, in term order
+    group: np.ndarray | None = None  # each row's group (its cross-validation fold), when read with one
 
 
 class BatchSource:
@@ -229,18 +232,18 @@ class BatchSource:
         return statistics, profile.profile(names), profile.constant
 
     def _pass(self, requests: Sequence[Request], profile: _ProfileTotals | None) -> list[Statistics]:
-        totals = [_Totals(len(request.terms) + 1) for request in requests]
+        totals = [Totals(len(request.terms) + 1) for request in requests]
         saturated = 0.0 if self._saturated is None else None  # summed in the first pass only: a sum of y alone
-        with _one_blas_thread():
+        with one_blas_thread():
             for batch in self.batches():
-                for block in _blocks(batch, BLOCK_ROWS):
+                for block in row_blocks(batch, BLOCK_ROWS):
                     standardized = self._standardize(block.terms, len(block.y))
                     if profile is not None:
                         profile.add(block, standardized, self.scaling.scales)
                     if saturated is not None:
-                        saturated += _weighted_sum(self.family.saturated_deviance(block.y), block.weight)
+                        saturated += weighted_sum(self.family.saturated_deviance(block.y), block.weight)
                     for request, total in zip(requests, totals, strict=True):
-                        x = _select(standardized, request.terms)
+                        x = term_columns(standardized, request.terms)
                         scratch = None if x is None else self._buffer("rooted", len(x), 1 + x.shape[1])
                         total.add(self.family, block, x, request.beta, scratch)
         self.passes += 1
@@ -262,7 +265,7 @@ def _blas_controller() -> ThreadpoolController:
     return ThreadpoolController()  # finds the BLAS libraries numpy and scipy loaded (once: it scans the process)
 
 
-def _one_blas_thread() -> contextlib.AbstractContextManager:
+def one_blas_thread() -> contextlib.AbstractContextManager:
     """BLAS on one thread while a pass runs. Its products over a batch (n x p with p small) are bound by
     memory, not arithmetic, so a second BLAS thread gains little; it does take the core the engine
     reads the next batch on, and on a busy machine its threads wait on each other: in
@@ -270,7 +273,7 @@ def _one_blas_thread() -> contextlib.AbstractContextManager:
     return _blas_controller().limit(limits=1, user_api="blas")
 
 
-def _select(matrix: np.ndarray, terms: tuple[int, ...]) -> np.ndarray | None:
+def term_columns(matrix: np.ndarray, terms: tuple[int, ...]) -> np.ndarray | None:
     if not terms:
         return None
     if terms == tuple(range(matrix.shape[1])):
@@ -278,7 +281,7 @@ def _select(matrix: np.ndarray, terms: tuple[int, ...]) -> np.ndarray | None:
     return np.asfortranarray(matrix[:, list(terms)])
 
 
-class _Totals:
+class Totals:
     """Running sums of one model's statistics."""
 
     def __init__(self, size: int):
@@ -304,8 +307,8 @@ class _Totals:
         residual = family.score_residual(batch.y, mu)
         if batch.weight is not None:
             weight, residual = weight * batch.weight, residual * batch.weight
-        self.deviance += _weighted_sum(family.fitted_deviance(batch.y, eta, mu), batch.weight)
-        self.pearson += _weighted_sum(family.pearson(batch.y, mu), batch.weight)
+        self.deviance += weighted_sum(family.fitted_deviance(batch.y, eta, mu), batch.weight)
+        self.pearson += weighted_sum(family.pearson(batch.y, mu), batch.weight)
         self.boundary += int(np.broadcast_to(family.boundary(eta), rows).sum())
         self.score[0] += residual.sum()
         if x is None:
@@ -322,7 +325,7 @@ class _Totals:
         return Statistics(self.deviance + saturated, self.boundary, self.score.copy(), upper + np.triu(upper, 1).T, self.pearson)
 
 
-def _weighted_sum(values: np.ndarray | None, weight: np.ndarray | None) -> float:
+def weighted_sum(values: np.ndarray | None, weight: np.ndarray | None) -> float:
     """Sum of per-row values (None: all 0) times the prior weights (None: all 1)."""
     if values is None:
         return 0.0
@@ -391,17 +394,18 @@ class _ProfileTotals:
 
 def in_memory_batches(data: Batch, batch_rows: int) -> Callable[[], Iterator[Batch]]:
     """Batches of `batch_rows` rows over data already in memory (temporaries stay one batch)."""
-    return partial(_blocks, data, batch_rows)
+    return partial(row_blocks, data, batch_rows)
 
 
-def _blocks(data: Batch, rows: int) -> Iterator[Batch]:
+def row_blocks(data: Batch, rows: int) -> Iterator[Batch]:
     """Consecutive slices of `rows` rows of `data` (views: nothing is copied); none when it has no rows."""
     for start in range(0, len(data.y), rows):
         part = slice(start, start + rows)
-        yield Batch(data.y[part], _cut(data.offset, part), _cut(data.weight, part), [values[part] for values in data.terms])
+        yield Batch(data.y[part], cut_rows(data.offset, part), cut_rows(data.weight, part), [values[part] for values in data.terms],
+                    cut_rows(data.group, part))
 
 
-def _cut(values: np.ndarray | None, rows: slice) -> np.ndarray | None:
+def cut_rows(values: np.ndarray | None, rows: slice | np.ndarray) -> np.ndarray | None:
     return None if values is None else values[rows]
 
 
@@ -419,7 +423,7 @@ class LocalCopy:
         self.engine_batches = batches
         self.reads = 0
         self._file = None
-        self._shapes: list[tuple[int, bool, bool, int]] = []  # rows, has offset, has weight, terms
+        self._shapes: list[tuple[int, bool, bool, int, bool]] = []  # rows, has offset, has weight, terms, has group
 
     def __call__(self) -> Iterator[Batch]:
         return self._copy() if self._file is None else self._replay()
@@ -427,14 +431,16 @@ class LocalCopy:
     def _copy(self) -> Iterator[Batch]:
         """Stream from the engine, keeping each batch; a copy left unfinished is thrown away."""
         file = tempfile.TemporaryFile(prefix="featpipe-design-")
-        shapes: list[tuple[int, bool, bool, int]] = []
+        shapes: list[tuple[int, bool, bool, int, bool]] = []
         self.reads += 1
         try:
             for batch in self.engine_batches():
-                columns = [batch.y, *(c for c in (batch.offset, batch.weight) if c is not None), *batch.terms]
+                columns = [batch.y, *(c for c in (batch.offset, batch.weight) if c is not None), *batch.terms,
+                           *(() if batch.group is None else (batch.group,))]
                 for values in columns:
                     np.ascontiguousarray(values, dtype=np.float64).tofile(file)
-                shapes.append((len(batch.y), batch.offset is not None, batch.weight is not None, len(batch.terms)))
+                shapes.append((len(batch.y), batch.offset is not None, batch.weight is not None, len(batch.terms),
+                               batch.group is not None))
                 yield batch
         except BaseException:
             file.close()
@@ -443,13 +449,14 @@ class LocalCopy:
 
     def _replay(self) -> Iterator[Batch]:
         self._file.seek(0)
-        for rows, has_offset, has_weight, terms in self._shapes:
-            width = 1 + has_offset + has_weight + terms
+        for rows, has_offset, has_weight, terms, has_group in self._shapes:
+            width = 1 + has_offset + has_weight + terms + has_group
             columns = list(np.fromfile(self._file, dtype=np.float64, count=rows * width).reshape(width, rows))
             y = columns.pop(0)
             offset = columns.pop(0) if has_offset else None
             weight = columns.pop(0) if has_weight else None
-            yield Batch(y, offset, weight, columns)
+            group = columns.pop() if has_group else None
+            yield Batch(y, offset, weight, columns, group)
 
     def close(self) -> None:
         if self._file is not None:
@@ -457,16 +464,21 @@ class LocalCopy:
             self._file = None
 
 
-def engine_batches(engine: Engine, layout: DesignLayout, batch_rows: int) -> Callable[[], Iterator[Batch]]:
-    """Batches streamed from the engine: the design columns of the training rows.
+def engine_batches(engine: Engine, layout: DesignLayout, batch_rows: int,
+                   group: exp.Expression | None = None) -> Callable[[], Iterator[Batch]]:
+    """Batches streamed from the engine: the design columns of the training rows, with each row's
+    `group` (an expression over the design table, e.g. its cross-validation fold) when one is given.
 
     On DuckDB the next batch is read by a helper thread while numpy works on the current one (both
     release the GIL); other drivers may be tied to the thread that opened them, so they read inline.
     """
     query = design_columns_query(layout)
+    if group is not None:
+        query = query.select(alias(group.copy(), GROUP))
 
     def batches() -> Iterator[Batch]:
-        converted = (batch_from_arrow(record_batch, layout) for record_batch in engine.fetch_batches(query, batch_rows))
+        converted = (batch_from_arrow(record_batch, layout, grouped=group is not None)
+                     for record_batch in engine.fetch_batches(query, batch_rows))
         return _read_ahead(converted) if engine.name == "duckdb" else converted
 
     return batches
@@ -481,13 +493,15 @@ def _read_ahead(items: Iterator[Batch]) -> Iterator[Batch]:
             yield item
 
 
-def batch_from_arrow(result: pa.RecordBatch | pa.Table, layout: DesignLayout) -> Batch:
-    """A `Batch` from the columns of `design_columns_query`: target, [offset], [weight], terms."""
+def batch_from_arrow(result: pa.RecordBatch | pa.Table, layout: DesignLayout, grouped: bool = False) -> Batch:
+    """A `Batch` from the columns of `design_columns_query`: target, [offset], [weight], terms, and with
+    `grouped` the group last."""
     columns = [column.to_numpy(zero_copy_only=False) for column in result.columns]
+    group = columns.pop() if grouped else None
     position = 1
     offset = weight = None
     if layout.offset:
         offset, position = columns[position], position + 1
     if layout.weight:
         weight, position = columns[position], position + 1
-    return Batch(columns[0], offset, weight, columns[position:])
+    return Batch(columns[0], offset, weight, columns[position:], group)
