@@ -12,6 +12,7 @@ from __future__ import annotations
 import csv
 import datetime
 import hashlib
+import io
 import math
 from pathlib import Path
 
@@ -321,6 +322,14 @@ def test_fold_fits_read_the_rows_with_their_fold_instead_of_summing_each_pass_by
     assert choice["deviance"] == pytest.approx(summed["deviance"], rel=1e-10) and choice["chosen"] == summed["chosen"]
 
 
+def loaded_design(tmp_path: Path, frame: pd.DataFrame, layout: DesignLayout) -> DuckDBEngine:
+    """`frame` as the design table of `layout` in a DuckDB file, loaded from Parquet."""
+    frame.to_parquet(tmp_path / "design.parquet", index=False)
+    engine = DuckDBEngine(tmp_path / "design.duckdb")
+    engine.load_file(layout.table, tmp_path / "design.parquet")
+    return engine
+
+
 def test_streamed_fold_fits_with_an_offset_and_weights_equal_statsmodels_refits_and_the_grouped_queries(tmp_path):
     """Poisson counts over an exposure (the offset), with variance weights, in three folds (key mod 3):
     each fold's model from the streamed rows equals statsmodels' GLM refitted on the other folds' rows,
@@ -332,10 +341,8 @@ def test_streamed_fold_fits_with_an_offset_and_weights_equal_statsmodels_refits_
     y = rng.poisson(exposure * np.exp(-0.4 + x @ [0.5, -0.2])).astype(float)
     frame = pd.DataFrame({"id": np.arange(rows), "y": y, "log_exposure": np.log(exposure), "w": weight, "_holdout": False,
                           "a": x[:, 0], "b": x[:, 1]})
-    frame.to_parquet(tmp_path / "design.parquet", index=False)
-    engine = DuckDBEngine(tmp_path / "design.duckdb")
     layout = DesignLayout("design_counts", "id", "y", ("a", "b"), offset="log_exposure", weight="w")
-    engine.load_file(layout.table, tmp_path / "design.parquet")
+    engine = loaded_design(tmp_path, frame, layout)
     fold = exp.Mod(this=exp.column("id", quoted=True), expression=exp.Literal.number(3))
     family, scaling = get_family("poisson"), Scaling.of([x[:, 0], x[:, 1]])
     weights = {index: float(weight[frame["id"] % 3 == index].sum()) for index in range(3)}
@@ -436,3 +443,29 @@ def assert_close(mine, theirs, where: str) -> None:
         assert mine == pytest.approx(theirs, rel=TOLERANCE, abs=1e-12), where
     else:
         assert mine == theirs, where
+
+
+def test_a_penalty_path_reads_no_pass_again_where_the_last_strength_ended(tmp_path):
+    """The sums at a strength's final coefficients are the next strength's first step (they do not depend
+    on the penalty): given as `first`, the next fit makes one pass fewer and ends at the same coefficients."""
+    rows = list(csv.DictReader(io.StringIO(loans_csv(7, 600, 1000, datetime.date(2025, 1, 1), 365))))
+    x, y = features(rows)
+    frame = pd.DataFrame({"loan_id": [int(r["loan_id"]) for r in rows], "defaulted": y, "_holdout": False,
+                          "debt_ratio": x[:, 0], "income_k": x[:, 1]})
+    layout = DesignLayout("design_risk", "loan_id", "defaulted", ("debt_ratio", "income_k"))
+    engine = loaded_design(tmp_path, frame, layout)
+    fold = exp.Mod(this=exp.column("loan_id", quoted=True), expression=exp.Literal.number(3))
+    weights = {index: float((frame["loan_id"] % 3 == index).sum()) for index in range(3)}
+    family, scaling = get_family("binomial"), Scaling.of([frame[name].to_numpy() for name in layout.terms])
+
+    def folds(starts, l2, first=None):
+        source = BatchFoldSource(engine_batches(engine, layout, 100, group=fold), layout, family, scaling, weights)
+        return fit_folds(source, starts, ScaledPenalty(l2), sum(weights.values()), first=first)
+
+    strong = folds([np.zeros(3)] * 3, 1.0)
+    again, reused = folds([result.beta for result in strong.results], 0.1), folds([result.beta for result in strong.results], 0.1, strong.final)
+    assert reused.passes == again.passes - 1
+    for mine, theirs in zip(reused.results, again.results, strict=True):
+        np.testing.assert_array_equal(mine.beta, theirs.beta)
+    assert reused.held_out_deviance == again.held_out_deviance
+    engine.close()

@@ -7,7 +7,7 @@ holdout metric function itself, so a fold reports what a holdout reports; the re
 fold's metrics, their mean and their spread (sample sd over folds).
 
 For `l2: cv` the folds are fitted for each strength of a log grid, strongest first (each run starts
-from the previous run's coefficients), and the strength with the smallest cross-validated deviance
+from the previous run's coefficients and the sums read there), and the strength with the smallest cross-validated deviance
 (the prior-weighted deviance of each fold's rows under the model fitted without them, summed) is
 chosen; ties go to the stronger penalty.
 """
@@ -28,7 +28,7 @@ from ..glm.families import get_family
 from ..glm.fit import AUTO_SOURCES, BATCH_ROWS
 from ..glm.folds import BatchFoldSource, FoldSource, fit_folds
 from ..glm.penalty import ScaledPenalty
-from ..glm.sources import LocalCopy, Scaling, engine_batches
+from ..glm.sources import LocalCopy, Scaling, Statistics, engine_batches
 from ..project import ModelSpec, Penalty
 from ..project.names import INTERCEPT
 from ..sqlgen.crossval import fold_flag, fold_number, fold_sizes_query, fold_table_query
@@ -45,12 +45,12 @@ def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> tup
     and the record of that choice (grid, deviance per strength, the choice), None otherwise."""
     if not spec.penalty.cross_validated:
         return spec.penalty, None
-    deviances, starts = [], None
+    deviances, starts, first = [], None, None
     with _Folds(engine, layout, spec) as folds:
         for l2 in L2_GRID:
-            fits = folds.fit(Penalty(l2=l2, l1=spec.penalty.l1), starts)
+            fits = folds.fit(Penalty(l2=l2, l1=spec.penalty.l1), starts, first)
             deviances.append(sum(fits.held_out_deviance))
-            starts = [result.beta for result in fits.results]
+            starts, first = [result.beta for result in fits.results], fits.final
     best = min(range(len(L2_GRID)), key=lambda index: (deviances[index], index))
     return (Penalty(l2=L2_GRID[best], l1=spec.penalty.l1),
             {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]})
@@ -131,13 +131,13 @@ class _Folds:
         offset = profile.weighted_offset_sum / profile.weight_sum
         return scaling, np.r_[self.family.link_of_mean(mean) - offset, np.zeros(len(self.layout.terms))]
 
-    def fit(self, penalty: Penalty, starts: list[np.ndarray] | None):
+    def fit(self, penalty: Penalty, starts: list[np.ndarray] | None, first: tuple[Statistics, ...] | None = None):
         if self.batches is None:
             source = FoldSource(self.engine, self.layout, self.family, self.scaling, self.fold, self.weights)
         else:
             source = BatchFoldSource(self.batches, self.layout, self.family, self.scaling, self.weights)
         scaled = ScaledPenalty(penalty.l2, penalty.l1)
-        return fit_folds(source, starts or [self.start] * len(self.rows), scaled, sum(self.weights.values()))
+        return fit_folds(source, starts or [self.start] * len(self.rows), scaled, sum(self.weights.values()), first=first)
 
     def original(self, beta: np.ndarray) -> dict[str, float]:
         """Standardized coefficients as the model's own: {INTERCEPT: ..., term: ...}."""

@@ -173,24 +173,32 @@ def _scaled(statistics: Statistics, factor: float) -> Statistics:
 
 @dataclass(frozen=True)
 class FoldFits:
-    """Per fold (in fold order): the IRLS result on the other folds' rows and the held-out deviance
-    (prior-weighted) of its own rows at the final coefficients; and the passes over the data."""
+    """Per fold (in fold order): the IRLS result on the other folds' rows, the held-out deviance
+    (prior-weighted) of its own rows and the training statistics, both at the final coefficients; and
+    the passes over the data."""
 
     results: tuple[IrlsResult, ...]
     held_out_deviance: tuple[float, ...]
+    final: tuple[Statistics, ...]
     passes: int
 
 
-def fit_folds(source: FoldSource, starts: Sequence[np.ndarray], penalty: ScaledPenalty, total_weight: float,
-              max_iter: int = 50, tol: float = 1e-10) -> FoldFits:
-    """Fit the model once per fold (fold f left out), from `starts[f]` (standardized coefficients)."""
+def fit_folds(source: FoldSource | BatchFoldSource, starts: Sequence[np.ndarray], penalty: ScaledPenalty, total_weight: float,
+              max_iter: int = 50, tol: float = 1e-10, first: Sequence[Statistics] | None = None) -> FoldFits:
+    """Fit the model once per fold (fold f left out), from `starts[f]` (standardized coefficients).
+
+    `first`: the training statistics at the starts when a pass already read them, as the `final` of a
+    fit that ended there: a penalty path started from the last strength's coefficients reads no pass
+    again for its first step (the sums do not depend on the penalty).
+    """
     terms = tuple(range(len(source.layout.terms)))
     requests = [FoldRequest(terms, np.asarray(beta, dtype=float), fold) for fold, beta in enumerate(starts)]
     try:
-        results = run_irls(source, requests, penalty, total_weight, max_iter, tol, allow_aliasing=penalty.active)
+        results = run_irls(source, requests, penalty, total_weight, max_iter, tol, allow_aliasing=penalty.active,
+                           first=None if first is None else list(first))
     except AliasedTerms as error:
         names = ", ".join(source.layout.terms[alias.column - 1] for alias in error.aliases if alias.column > 0)
         raise FeatpipeError(f"design table {source.layout.table}: on one cross-validation fold the terms {names} are "
                             "linear combinations of others; use fewer folds or drop the aliased terms") from None
-    source.evaluate([FoldRequest(terms, result.beta, fold) for fold, result in enumerate(results)])
-    return FoldFits(tuple(results), tuple(source.held_out[fold].deviance for fold in range(len(results))), source.passes)
+    final = source.evaluate([FoldRequest(terms, result.beta, fold) for fold, result in enumerate(results)])
+    return FoldFits(tuple(results), tuple(source.held_out[fold].deviance for fold in range(len(results))), tuple(final), source.passes)
