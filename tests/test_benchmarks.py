@@ -152,3 +152,14 @@ def test_bench_suggest_counts_its_scans_and_agrees_with_statsmodels():
     figures(r"learned / raw suggest time {n}x", lines)
     (difference,) = figures(r"top candidate \w+: score statistic featpipe {n}, statsmodels {n}, relative difference {n}", lines)[2:]
     assert difference < 1e-8  # statsmodels' score test on the same rows in memory
+
+
+def test_bench_crossval_chooses_the_strength_scikit_learn_chooses():
+    lines = run_benchmark("bench_crossval.py", "--rows", "3000")
+
+    # seconds, CPU seconds, peak RSS, the chosen l2, each run's seconds
+    chosen = {figures(rf"{re.escape(route)} +{{n}} +{{n}} +{{n}} +{{n}}   {{n}}", lines)[3]
+              for route in ("featpipe fit", "pandas + scikit-learn")}
+    assert len(chosen) == 1
+    _, difference = figures(r"featpipe fit / scikit-learn: time {n}; cross-validated deviances, max relative difference {n}", lines)
+    assert difference < 1e-4  # scikit-learn's newton-cholesky stops at its own tolerance (tol=1e-4): about 1e-6 here

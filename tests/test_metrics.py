@@ -322,16 +322,26 @@ def test_the_auc_interval_of_hanley_and_mcneils_ratings(engine, tmp_path):
     assert metrics["auc_high"] - metrics["auc"] == pytest.approx(norm.ppf(0.975) * math.sqrt(covariance[0, 0]), rel=1e-10)
 
 
-@pytest.mark.parametrize("engine", ["postgres"], indirect=True)
-def test_postgres_scores_the_holdout_once_for_every_metric_query(engine):
-    """PostgreSQL computes a subquery again for every query that reads it: the scored holdout is stored in a
-    temporary table the metric queries read, then dropped; the metrics are those of scoring per query."""
+TEMPORARY_TABLES = {  # the engines' own catalogs of tables, temporary ones included
+    "postgres": "SELECT COUNT(*) FROM pg_tables WHERE tablename = '_featpipe_scored_holdout'",
+    "duckdb": "SELECT COUNT(*) FROM duckdb_tables() WHERE table_name = '_featpipe_scored_holdout'",
+}
+
+
+@pytest.mark.parametrize("engine", ["postgres", "duckdb"], indirect=True)
+def test_the_holdout_is_scored_once_for_every_metric_query(engine):
+    """The scored holdout is stored in a temporary table the metric queries read, then dropped; the
+    metrics are those of scoring per query. PostgreSQL computes a subquery again for every query that
+    reads it; on DuckDB building and rendering the scoring expression into each query cost more than
+    running them (a 25-term holdout of 300,000 rows: 1.4-2.0 s per query against 0.8-1.0 s stored)."""
     recording = Recording(engine)
     metrics = holdout_metrics(recording, BINOMIAL, "binomial", BINOMIAL_COEFFICIENTS, 0.3)
     assert len(recording.queries) >= 8 and not any(f'"{BINOMIAL.table}"' in query for query in recording.queries)
-    assert metrics == scored_rows_metrics(engine, scored_holdout(BINOMIAL, BINOMIAL_COEFFICIENTS), "binomial", 0.3)
-    left = engine.fetch(sqlglot.parse_one("SELECT COUNT(*) FROM pg_tables WHERE tablename = '_featpipe_scored_holdout'"))
-    assert left == [(0,)]
+    expected = scored_rows_metrics(engine, scored_holdout(BINOMIAL, BINOMIAL_COEFFICIENTS), "binomial", 0.3)
+    # the same sums, over the rows in another order on DuckDB: equal to the last few bits
+    assert metrics == {name: [pytest.approx(entry, rel=1e-13) for entry in value] if isinstance(value, list) else pytest.approx(value, rel=1e-13)
+                       for name, value in expected.items()}
+    assert engine.fetch(sqlglot.parse_one(TEMPORARY_TABLES[engine.dialect], read=engine.dialect)) == [(0,)]
 
 
 @pytest.mark.parametrize("engine", ENGINE_KINDS, indirect=True)
