@@ -36,7 +36,8 @@ from featpipe.fitted.report import write_report
 from featpipe.fitting import crossval
 from featpipe.fitting.crossval import L2_GRID
 from featpipe.glm.families import get_family
-from featpipe.glm.folds import BatchFoldSource, FoldSource, fit_folds
+from featpipe.glm.folds import BatchFoldSource, FoldRequest, FoldSource, fit_folds
+from featpipe.glm.irls import SETTLED
 from featpipe.glm.penalty import ScaledPenalty
 from featpipe.glm.sources import Scaling, engine_batches
 from featpipe.project import load_project
@@ -445,9 +446,9 @@ def assert_close(mine, theirs, where: str) -> None:
         assert mine == theirs, where
 
 
-def test_a_penalty_path_reads_no_pass_again_where_the_last_strength_ended(tmp_path):
-    """The sums at a strength's final coefficients are the next strength's first step (they do not depend
-    on the penalty): given as `first`, the next fit makes one pass fewer and ends at the same coefficients."""
+def loan_folds(tmp_path: Path):
+    """The loans' training rows as a design table in DuckDB, in three folds (key mod 3), and a function
+    fitting the folds at a strength from given starts (standardized coefficients), read as streamed batches."""
     rows = list(csv.DictReader(io.StringIO(loans_csv(7, 600, 1000, datetime.date(2025, 1, 1), 365))))
     x, y = features(rows)
     frame = pd.DataFrame({"loan_id": [int(r["loan_id"]) for r in rows], "defaulted": y, "_holdout": False,
@@ -458,14 +459,37 @@ def test_a_penalty_path_reads_no_pass_again_where_the_last_strength_ended(tmp_pa
     weights = {index: float((frame["loan_id"] % 3 == index).sum()) for index in range(3)}
     family, scaling = get_family("binomial"), Scaling.of([frame[name].to_numpy() for name in layout.terms])
 
-    def folds(starts, l2, first=None):
-        source = BatchFoldSource(engine_batches(engine, layout, 100, group=fold), layout, family, scaling, weights)
-        return fit_folds(source, starts, ScaledPenalty(l2), sum(weights.values()), first=first)
+    def source() -> BatchFoldSource:
+        return BatchFoldSource(engine_batches(engine, layout, 100, group=fold), layout, family, scaling, weights)
 
-    strong = folds([np.zeros(3)] * 3, 1.0)
-    again, reused = folds([result.beta for result in strong.results], 0.1), folds([result.beta for result in strong.results], 0.1, strong.final)
+    def fit(starts, l2, first=None):
+        return fit_folds(source(), starts, ScaledPenalty(l2), sum(weights.values()), first=first)
+
+    return fit, source, engine
+
+
+def test_a_penalty_path_reads_no_pass_again_where_the_last_strength_ended(tmp_path):
+    """The sums at a strength's final coefficients are the next strength's first step (they do not depend
+    on the penalty): given as `first`, the next fit makes one pass fewer and ends at the same coefficients."""
+    fit, _, engine = loan_folds(tmp_path)
+    strong = fit([np.zeros(3)] * 3, 1.0)
+    again, reused = fit([result.beta for result in strong.results], 0.1), fit([result.beta for result in strong.results], 0.1, strong.final)
     assert reused.passes == again.passes - 1
     for mine, theirs in zip(reused.results, again.results, strict=True):
         np.testing.assert_array_equal(mine.beta, theirs.beta)
     assert reused.held_out_deviance == again.held_out_deviance
+    engine.close()
+
+
+def test_the_held_out_deviances_come_from_the_pass_that_evaluated_the_final_coefficients(tmp_path):
+    """IRLS ends with a pass at the final coefficients unless its last step was already negligible
+    (irls.SETTLED): the held-out deviances are read from that pass, with no pass more, and equal a
+    fresh evaluation there."""
+    fit, source, engine = loan_folds(tmp_path)
+    fits = fit([np.zeros(3)] * 3, 1.0)
+    assert all(result.change > SETTLED for result in fits.results)  # every fold's last pass was at its final coefficients
+    assert fits.passes == max(result.iterations for result in fits.results)
+    fresh = source()
+    fresh.evaluate([FoldRequest((0, 1), result.beta, fold) for fold, result in enumerate(fits.results)])
+    assert fits.held_out_deviance == tuple(fresh.held_out[fold].deviance for fold in range(3))
     engine.close()

@@ -53,12 +53,14 @@ class FoldRequest(Request):
 
 
 class _FoldBook:
-    """Per fold: the factor its training sums are multiplied by, and its own sums last evaluated."""
+    """Per fold: the factor its training sums are multiplied by, and at the coefficients last evaluated
+    its own sums (`held_out`) and its training statistics (`evaluated`, with those coefficients)."""
 
     def __init__(self, weights: Mapping[int, float]):
         total = sum(weights.values())
         self.rescale = {index: total / (total - weight) for index, weight in weights.items()}
         self.held_out: dict[int, Statistics] = {}
+        self.evaluated: dict[int, tuple[np.ndarray, Statistics]] = {}
 
     def training(self, requests: Sequence[FoldRequest], sums: Sequence[tuple[Statistics, Statistics]]) -> list[Statistics]:
         """Each request's training statistics from (its fold's own sums, the other folds' sums)."""
@@ -66,6 +68,7 @@ class _FoldBook:
         for request, (own, others) in zip(requests, sums, strict=True):
             self.held_out[request.fold] = own
             training.append(_scaled(others, self.rescale[request.fold]))
+            self.evaluated[request.fold] = (request.beta.copy(), training[-1])
         return training
 
 
@@ -200,5 +203,11 @@ def fit_folds(source: FoldSource | BatchFoldSource, starts: Sequence[np.ndarray]
         names = ", ".join(source.layout.terms[alias.column - 1] for alias in error.aliases if alias.column > 0)
         raise FeatpipeError(f"design table {source.layout.table}: on one cross-validation fold the terms {names} are "
                             "linear combinations of others; use fewer folds or drop the aliased terms") from None
-    final = source.evaluate([FoldRequest(terms, result.beta, fold) for fold, result in enumerate(results)])
-    return FoldFits(tuple(results), tuple(source.held_out[fold].deviance for fold in range(len(results))), tuple(final), source.passes)
+    # A fit that converged evaluated its final coefficients in its last pass unless its last step was
+    # already negligible (see irls.SETTLED): one more pass, for those folds alone, when any did not.
+    unevaluated = [FoldRequest(terms, result.beta, fold) for fold, result in enumerate(results)
+                   if fold not in source.book.evaluated or not np.array_equal(source.book.evaluated[fold][0], result.beta)]
+    if unevaluated:
+        source.evaluate(unevaluated)
+    final = tuple(source.book.evaluated[fold][1] for fold in range(len(results)))
+    return FoldFits(tuple(results), tuple(source.held_out[fold].deviance for fold in range(len(results))), final, source.passes)
