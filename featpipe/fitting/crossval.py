@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import math
 import statistics
-from dataclasses import replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -26,7 +26,7 @@ from ..errors import FeatpipeError
 from ..fitted import as_written
 from ..glm.families import get_family
 from ..glm.fit import AUTO_SOURCES, BATCH_ROWS
-from ..glm.folds import BatchFoldSource, FoldSource, fit_folds
+from ..glm.folds import BatchFoldSource, FoldFits, FoldSource, fit_folds
 from ..glm.penalty import ScaledPenalty
 from ..glm.sources import LocalCopy, Scaling, Statistics, engine_batches
 from ..project import ModelSpec, Penalty
@@ -40,26 +40,38 @@ from .metrics import holdout_metrics
 L2_GRID = tuple(as_written(10.0 ** (exponent / 2)) for exponent in range(2, -9, -1))
 
 
-def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> tuple[Penalty, dict | None]:
-    """The spec's penalty, with l2 chosen on L2_GRID by cross-validated deviance when the spec says `l2: cv`;
-    and the record of that choice (grid, deviance per strength, the choice), None otherwise."""
+@dataclass(frozen=True)
+class PenaltyChoice:
+    """The penalty a fit uses; with `l2: cv` also the record of the search (grid, deviance per strength,
+    the choice) and the folds fitted at the chosen strength, which `cross_validation` measures."""
+
+    penalty: Penalty
+    record: dict | None = None
+    folds: FoldFits | None = None
+
+
+def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> PenaltyChoice:
+    """The spec's penalty, with l2 chosen on L2_GRID by cross-validated deviance when the spec says `l2: cv`."""
     if not spec.penalty.cross_validated:
-        return spec.penalty, None
-    deviances, starts, first = [], None, None
+        return PenaltyChoice(spec.penalty)
+    path, starts, first = [], None, None
     with _Folds(engine, layout, spec) as folds:
         for l2 in L2_GRID:
             fits = folds.fit(Penalty(l2=l2, l1=spec.penalty.l1), starts, first)
-            deviances.append(sum(fits.held_out_deviance))
+            path.append(fits)
             starts, first = [result.beta for result in fits.results], fits.final
+    deviances = [sum(fits.held_out_deviance) for fits in path]
     best = min(range(len(L2_GRID)), key=lambda index: (deviances[index], index))
-    return (Penalty(l2=L2_GRID[best], l1=spec.penalty.l1),
-            {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]})
+    return PenaltyChoice(Penalty(l2=L2_GRID[best], l1=spec.penalty.l1),
+                         {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]}, path[best])
 
 
-def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, penalty: Penalty, choice: dict | None) -> dict:
-    """The fitted file's `crossval` record: per fold its training rows and metrics, their mean and sd."""
+def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, choice: PenaltyChoice) -> dict:
+    """The fitted file's `crossval` record: per fold its training rows and metrics, their mean and sd.
+    With `l2: cv` the folds are those the search fitted at the chosen strength (`passes` counts that
+    strength's passes), not fitted again."""
     with _Folds(engine, layout, spec) as folds:
-        fits = folds.fit(penalty, None)
+        fits = choice.folds or folds.fit(choice.penalty, None)
     per_fold = []
     scratch = f"crossval_{spec.name}"
     engine.create_table(scratch, fold_table_query(layout, folds.fold, spec.folds))
@@ -81,8 +93,8 @@ def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, pena
             continue
         record["mean"][name] = statistics.fmean(values)
         record["sd"][name] = statistics.stdev(values)
-    if choice is not None:
-        record["l2"] = choice
+    if choice.record is not None:
+        record["l2"] = choice.record
     return record
 
 

@@ -76,8 +76,8 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     fit_layout = expand(engine, model, constants) if constants else layout
     if any(found.call.function == "LEVELS" for found in constants.values()):
         rows["unseen"] = unseen_holdout_rows(engine, model, constants)
-    penalty, l2_choice = chosen_penalty(engine, fit_layout, spec)
-    glm = Glm(spec.family, penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
+    choice = chosen_penalty(engine, fit_layout, spec)
+    glm = Glm(spec.family, choice.penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
               errors=spec.errors, trials=spec.trials is not None).fit(engine, fit_layout)
     # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
     coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
@@ -147,7 +147,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
-        crossval=cross_validation(engine, fit_layout, spec, penalty, l2_choice) if spec.folds else {},
+        crossval=cross_validation(engine, fit_layout, spec, choice) if spec.folds else {},
         input_profiles=input_profiles(engine, spec.input, layout.key, spec.holdout,
                                       {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})}),
         group_tables=group_tables(engine, scored_holdout(fit_layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
