@@ -515,5 +515,5 @@ def test_the_held_out_deviances_come_from_the_pass_that_evaluated_the_final_coef
     assert fits.passes == max(result.iterations for result in fits.results)
     fresh = source()
     fresh.evaluate([FoldRequest((0, 1), result.beta, fold) for fold, result in enumerate(fits.results)])
-    assert fits.held_out_deviance == tuple(fresh.held_out[fold].deviance for fold in range(3))
+    assert fits.held_out_deviance == tuple(fresh.book.held_out[fold].deviance for fold in range(3))
     engine.close()

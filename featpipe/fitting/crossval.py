@@ -1,15 +1,16 @@
 """k-fold cross-validation of a spec on its training rows, and `penalty: {l2: cv}`.
 
 The folds are hash-assigned in SQL (featpipe.sqlgen.crossval) and fitted in lockstep from sufficient
-statistics split by fold (featpipe.glm.folds): from the rows streamed with their fold where a fit streams
-them (DuckDB; PostgreSQL reads them once into a local copy), else from an aggregate query grouped by fold. Each fold's model is then measured on its own rows with the
-holdout metric function itself, so a fold reports what a holdout reports; the record keeps every
-fold's metrics, their mean and their spread (sample sd over folds).
+statistics split by fold (featpipe.glm.folds): from the rows read out with their fold where a fit reads
+them out (streamed on DuckDB, copied once on PostgreSQL), else from an aggregate query grouped by fold.
+Each fold's model is then measured on its own rows with the holdout metric function itself, so a fold
+reports what a holdout reports; the record keeps every fold's metrics, their mean and their spread
+(sample sd over folds).
 
 For `l2: cv` the folds are fitted for each strength of a log grid, strongest first (each run starts
-from the previous run's coefficients and the sums read there), and the strength with the smallest cross-validated deviance
-(the prior-weighted deviance of each fold's rows under the model fitted without them, summed) is
-chosen; ties go to the stronger penalty.
+from the previous run's coefficients and the sums read there), and the strength with the smallest
+cross-validated deviance (the prior-weighted deviance of each fold's rows under the model fitted
+without them, summed) is chosen; ties go to the stronger penalty.
 """
 
 from __future__ import annotations

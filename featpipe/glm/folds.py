@@ -73,8 +73,8 @@ class _FoldBook:
 
 
 class FoldSource:
-    """Each fold's training statistics from one grouped query per pass; `held_out` keeps, per fold,
-    the sums over its own rows at the coefficients last evaluated."""
+    """Each fold's training statistics from one grouped query per pass; `book` keeps, per fold, the
+    sums over its own rows at the coefficients last evaluated."""
 
     name = "folds"
 
@@ -84,7 +84,6 @@ class FoldSource:
         self.centers = dict(zip(layout.terms, scaling.centers.tolist(), strict=True))
         self.scales = dict(zip(layout.terms, scaling.scales.tolist(), strict=True))
         self.book = _FoldBook(weights)
-        self.held_out = self.book.held_out
         self.passes = 0
 
     def evaluate(self, requests: Sequence[FoldRequest]) -> list[Statistics]:
@@ -113,7 +112,6 @@ class BatchFoldSource(BatchSource):
         super().__init__("folds", batches, family, scaling)
         self.layout = layout
         self.book = _FoldBook(weights)
-        self.held_out = self.book.held_out
         self._saturated_by_fold: np.ndarray | None = None  # per fold, the sum of w times the saturated deviance
 
     def evaluate(self, requests: Sequence[FoldRequest]) -> list[Statistics]:
@@ -210,4 +208,4 @@ def fit_folds(source: FoldSource | BatchFoldSource, starts: Sequence[np.ndarray]
     if unevaluated:
         source.evaluate(unevaluated)
     final = tuple(source.book.evaluated[fold][1] for fold in range(len(results)))
-    return FoldFits(tuple(results), tuple(source.held_out[fold].deviance for fold in range(len(results))), final, source.passes)
+    return FoldFits(tuple(results), tuple(source.book.held_out[fold].deviance for fold in range(len(results))), final, source.passes)
