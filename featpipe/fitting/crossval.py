@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import math
 import statistics
+from collections.abc import Mapping
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -67,12 +68,14 @@ def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> Pen
                          {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]}, path[best])
 
 
-def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, choice: PenaltyChoice) -> dict:
+def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, choice: PenaltyChoice,
+                     fitted: Mapping[str, float]) -> dict:
     """The fitted file's `crossval` record: per fold its training rows and metrics, their mean and sd.
     With `l2: cv` the folds are those the search fitted at the chosen strength (`passes` counts that
-    strength's passes), not fitted again."""
+    strength's passes), not fitted again; otherwise each fold starts from the model fitted on every
+    training row (`fitted`, its coefficients by name), which a model fitted without one fold lies near."""
     with _Folds(engine, layout, spec) as folds:
-        fits = choice.folds or folds.fit(choice.penalty, None)
+        fits = choice.folds or folds.fit(choice.penalty, [folds.standardized(fitted)] * spec.folds)
     per_fold = []
     scratch = f"crossval_{spec.name}"
     engine.create_table(scratch, fold_table_query(layout, folds.fold, spec.folds))
@@ -151,6 +154,11 @@ class _Folds:
             source = BatchFoldSource(self.batches, self.layout, self.family, self.scaling, self.weights)
         scaled = ScaledPenalty(penalty.l2, penalty.l1)
         return fit_folds(source, starts or [self.start] * len(self.rows), scaled, sum(self.weights.values()), first=first)
+
+    def standardized(self, coefficients: Mapping[str, float]) -> np.ndarray:
+        """The model's own coefficients ({INTERCEPT: ..., term: ...}) as standardized ones: `original` undone."""
+        values = np.array([coefficients[name] for name in (INTERCEPT, *self.layout.terms)])
+        return np.linalg.solve(self.scaling.to_original(), values)
 
     def original(self, beta: np.ndarray) -> dict[str, float]:
         """Standardized coefficients as the model's own: {INTERCEPT: ..., term: ...}."""

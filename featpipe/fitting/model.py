@@ -147,7 +147,7 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
-        crossval=cross_validation(engine, fit_layout, spec, choice) if spec.folds else {},
+        crossval=cross_validation(engine, fit_layout, spec, choice, coefficients) if spec.folds else {},
         input_profiles=input_profiles(engine, spec.input, layout.key, spec.holdout,
                                       {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})}),
         group_tables=group_tables(engine, scored_holdout(fit_layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
