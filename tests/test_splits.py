@@ -337,6 +337,7 @@ def test_with_l2_cv_the_folds_measured_are_those_the_search_fitted_at_the_chosen
     monkeypatch.setattr(crossval, "cross_validation", recording)
     api.fit(load_project(root))
     assert not [query for query in recorded[0].queries if '"_group"' in query]  # no fold's rows read to fit it
+    assert not [query for query in recorded[0].queries if "v1:folds" in query and "GROUP BY" in query]  # nor the folds sized again
     searched = read_fitted(root / "fitted/risk.yaml").crossval
     (root / "specs/risk.yaml").write_text(SPEC + f"folds: 3\npenalty: {{l2: {searched['l2']['chosen']}}}\n")
     api.fit(load_project(root))

@@ -45,11 +45,13 @@ L2_GRID = tuple(as_written(10.0 ** (exponent / 2)) for exponent in range(2, -9, 
 @dataclass(frozen=True)
 class PenaltyChoice:
     """The penalty a fit uses; with `l2: cv` also the record of the search (grid, deviance per strength,
-    the choice) and the folds fitted at the chosen strength, which `cross_validation` measures."""
+    the choice), the folds it split the rows into and their fits at the chosen strength, which
+    `cross_validation` measures."""
 
     penalty: Penalty
     record: dict | None = None
-    folds: FoldFits | None = None
+    folds: _Folds | None = None
+    fits: FoldFits | None = None
 
 
 def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> PenaltyChoice:
@@ -65,7 +67,7 @@ def chosen_penalty(engine: Engine, layout: DesignLayout, spec: ModelSpec) -> Pen
     deviances = [sum(fits.held_out_deviance) for fits in path]
     best = min(range(len(L2_GRID)), key=lambda index: (deviances[index], index))
     return PenaltyChoice(Penalty(l2=L2_GRID[best], l1=spec.penalty.l1),
-                         {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]}, path[best])
+                         {"grid": list(L2_GRID), "deviance": deviances, "chosen": L2_GRID[best]}, folds, path[best])
 
 
 def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, choice: PenaltyChoice,
@@ -74,8 +76,10 @@ def cross_validation(engine: Engine, layout: DesignLayout, spec: ModelSpec, choi
     With `l2: cv` the folds are those the search fitted at the chosen strength (`passes` counts that
     strength's passes), not fitted again; otherwise each fold starts from the model fitted on every
     training row (`fitted`, its coefficients by name), which a model fitted without one fold lies near."""
-    with _Folds(engine, layout, spec) as folds:
-        fits = choice.folds or folds.fit(choice.penalty, [folds.standardized(fitted)] * spec.folds)
+    folds, fits = choice.folds, choice.fits
+    if fits is None:
+        with _Folds(engine, layout, spec) as folds:
+            fits = folds.fit(choice.penalty, [folds.standardized(fitted)] * spec.folds)
     per_fold = []
     scratch = f"crossval_{spec.name}"
     engine.create_table(scratch, fold_table_query(layout, folds.fold, spec.folds))
