@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import contextlib
+
 
 class Recording:
-    """An engine that remembers the SQL it was asked to run (everything else is the engine's own)."""
+    """An engine that remembers the SQL it was asked to run (everything else is the engine's own); the SQL
+    sent on its second connection (`beside`) is remembered apart, in `beside_queries`."""
 
     def __init__(self, engine):
-        self.engine, self.queries = engine, []
+        self.engine, self.queries, self.beside_queries = engine, [], []
 
     def __getattr__(self, name):
         return getattr(self.engine, name)
@@ -19,3 +22,13 @@ class Recording:
     def fetch_batches(self, query, batch_rows):
         self.queries.append(self.engine.render(query))
         return self.engine.fetch_batches(query, batch_rows)
+
+    @contextlib.contextmanager
+    def beside(self):
+        with self.engine.beside() as twin:
+            if twin is None:
+                yield None
+                return
+            recording = Recording(twin)
+            recording.queries = self.beside_queries
+            yield recording

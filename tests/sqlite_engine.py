@@ -150,6 +150,10 @@ class SQLiteEngine:
     def drop_table(self, name: str) -> None:
         self._run(statements.drop_table(name))
 
+    @contextlib.contextmanager
+    def beside(self):
+        yield None  # the tests' engine runs every query on its one connection
+
     def close(self) -> None:
         self.connection.close()
 

@@ -3,6 +3,7 @@ atomic failure, staleness, explain and refresh."""
 
 from __future__ import annotations
 
+import contextlib
 from dataclasses import replace
 
 import numpy as np
@@ -10,6 +11,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from conftest import copy_demo
+from recording import Recording
 
 import featpipe
 from featpipe import api
@@ -17,8 +19,12 @@ from featpipe.engines.statements import select_all
 from featpipe.errors import FeatpipeError
 from featpipe.fitted import read_fitted
 from featpipe.fitted.explain import explain
+from featpipe.fitting.inputs import input_profiles
+from featpipe.fitting.metrics import training_profiles
+from featpipe.project.names import LINEAR_PREDICTOR
 from featpipe.project import load_project
-from featpipe.sqlgen.common import training_rows
+from featpipe.sqlgen.common import column, training_rows
+from featpipe.sqlgen.metrics import linear_predictor
 
 FAMILIES = {"binomial": sm.families.Binomial(), "poisson": sm.families.Poisson(), "gamma": sm.families.Gamma(sm.families.links.Log())}
 
@@ -144,3 +150,47 @@ def test_a_missing_input_is_dropped_through_least_and_counted_when_a_term_fills_
     assert missing > 0
     assert outcome.fitted.rows["dropped"] == {"null term revenue_capped": missing}
     assert outcome.fitted.rows["imputed"] == {"high_revenue": missing}
+
+
+def test_a_fit_reads_what_needs_no_coefficients_on_a_second_connection_beside_the_fit(postgres_engine, tmp_path, monkeypatch):
+    """The term profiles and the input's health do not depend on the coefficients, so a fit on PostgreSQL
+    reads them on a second connection while it fits (featpipe.fitting.beside), then the linear
+    predictor's profile there while it measures the holdout: the very queries, in that order, that
+    read them in turn, and the fitted file holds what they read."""
+    from featpipe.engines.postgres import PostgresEngine
+
+    twins = []
+    beside = PostgresEngine.beside
+
+    @contextlib.contextmanager
+    def recorded(self):
+        with beside(self) as twin:
+            twins.append(Recording(twin))
+            yield twins[-1]
+
+    monkeypatch.setattr(PostgresEngine, "beside", recorded)
+    monkeypatch.setenv("FEATPIPE_TEST_DSN", postgres_engine.dsn)
+    root = copy_demo("lease_default", tmp_path)
+    settings = (root / "featpipe.yaml").read_text(encoding="utf-8")
+    (root / "featpipe.yaml").write_text(settings.replace("  kind: duckdb\n  path: build/lease_default.duckdb\n",
+                                                         "  kind: postgres\n  dsn: ${FEATPIPE_TEST_DSN}\n"), encoding="utf-8")
+    project = featpipe.load_project(root)
+    api.fit(project, ["default_raw"])
+    fitted = read_fitted(project.fitted_path("default_raw"))
+    model = api.check(project).models["default_raw"]
+    layout, declared = model.layout, project.inputs["leases"].columns
+    with api.connect(project) as engine:
+        in_turn = Recording(engine)
+        profiles = training_profiles(in_turn, layout, {name: column(name) for name in layout.terms})
+        health = input_profiles(in_turn, "leases", layout.key, model.spec.holdout,
+                                {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})})
+        coefficients = {term.name: term.estimate for term in fitted.terms}
+        training_profiles(in_turn, layout, {LINEAR_PREDICTOR: linear_predictor(layout, coefficients)})
+    (twin,) = twins
+    assert twin.queries == in_turn.queries
+    assert fitted.input_profiles == health
+    for term in fitted.model_terms:  # order statistics are written in full, figures from sums to 12 digits
+        found, expected = term.profile, profiles[term.name]
+        assert (found.count, found.nulls, found.min, found.median, found.max, found.edges) == (
+            expected.count, expected.nulls, expected.min, expected.median, expected.max, expected.edges)
+        assert (found.mean, found.sd, *found.shares) == pytest.approx((expected.mean, expected.sd, *expected.shares), rel=1e-11)

@@ -7,6 +7,9 @@ test_profile.py) run on the same engine and on SQLite (tests/sqlite_engine.py), 
 
 from __future__ import annotations
 
+import contextlib
+import threading
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -15,6 +18,7 @@ import sqlglot
 from recording import Recording
 from test_profile import LAYOUT, assert_profile, invented_design, reference_profile
 
+from featpipe.fitting.beside import beside
 from featpipe.fitting.metrics import training_profiles
 from featpipe.fitting.order_statistics import PERCENTILE, WINDOW, non_null_counts, values_at_ranks
 from featpipe.sqlgen.brackets import merged, read_segments
@@ -160,6 +164,69 @@ def test_duckdb_profiles_read_each_column_once_and_sort_it_in_numpy(tmp_path):
     same_profiles(profiles, training_profiles(engine, LAYOUT, columns, route=WINDOW), columns)
     training = ~data["_holdout"]
     assert_profile(profiles["payment_ratio"], reference_profile(data["payment_ratio"][training]))  # numpy
+    engine.close()
+
+
+class HeldBack(Recording):
+    """A recording engine whose second connection (`beside`) runs no query before `released` is set."""
+
+    def __init__(self, engine, release: threading.Event | None = None):
+        super().__init__(engine)
+        self.held, self.release, self.twins = release is not None, release or threading.Event(), []
+
+    def fetch(self, query):
+        self._wait()
+        return super().fetch(query)
+
+    def fetch_batches(self, query, batch_rows):
+        self._wait()
+        return super().fetch_batches(query, batch_rows)
+
+    def _wait(self) -> None:
+        if self.held:
+            assert self.release.wait(timeout=60), "a held-back query was never let go"
+
+    @contextlib.contextmanager
+    def beside(self):
+        with self.engine.beside() as twin:
+            self.twins.append(HeldBack(twin, self.release))
+            yield self.twins[-1]
+
+
+def test_profiles_started_beside_are_read_on_a_second_connection_while_the_caller_goes_on(postgres_engine, tmp_path):
+    """A fit's term profiles do not wait for the fit: on PostgreSQL `beside` reads them on a second
+    connection in a thread of their own. Those queries are held back until the caller has run a query of
+    its own on its connection, which could never happen were they run in turn on the caller's thread; the
+    profiles equal those read in turn, figure for figure, and the second connection is closed after."""
+    engine = postgres_engine
+    data = load(engine, tmp_path)
+    columns = {name: column(name) for name in LAYOUT.terms}
+    held = HeldBack(engine)
+    with beside(held) as start:
+        profiles = start(training_profiles, LAYOUT, columns)
+        assert held.fetch(sqlglot.parse_one(f"SELECT COUNT(*) FROM {LAYOUT.table}")) == [(len(data[LAYOUT.key]),)]
+        held.release.set()
+        found = profiles()
+    in_turn = Recording(engine)
+    assert found == training_profiles(in_turn, LAYOUT, columns)
+    (twin,) = held.twins
+    assert len(held.queries) == 1 and twin.queries == in_turn.queries  # the caller's count here, the profiles there
+    assert twin.engine is not engine and twin.engine.connection is not engine.connection and twin.engine.connection.closed
+
+
+def test_profiles_started_beside_duckdb_are_read_at_once_on_its_one_connection(tmp_path):
+    """DuckDB works in this process, on the cores the fit keeps busy: `beside` does the work at once, as
+    the caller would."""
+    from featpipe.engines.duckdb import DuckDBEngine
+
+    engine = DuckDBEngine(None)
+    load(engine, tmp_path)
+    columns = {name: column(name) for name in LAYOUT.terms}
+    recording = Recording(engine)
+    with beside(recording) as start:
+        profiles = start(training_profiles, LAYOUT, columns)
+        assert len(recording.queries) == len(columns) and not recording.beside_queries  # read before start returned
+    assert profiles() == training_profiles(engine, LAYOUT, columns)
     engine.close()
 
 

@@ -7,6 +7,7 @@ built elsewhere. Table names are plain (unquoted) names; adapters quote them.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from contextlib import AbstractContextManager
 from pathlib import Path
 from typing import TYPE_CHECKING, Protocol
 
@@ -61,6 +62,10 @@ class Engine(Protocol):
 
     def drop_table(self, name: str) -> None:
         """Drop table `name` if it exists."""
+
+    def beside(self) -> AbstractContextManager[Engine | None]:
+        """This engine over a second connection to the same database, for queries run on another thread
+        while this one works (closed on leaving); None where the engine has no such second connection."""
 
     def close(self) -> None: ...
 

@@ -203,5 +203,11 @@ class DuckDBEngine:
             if copy != keep:
                 copy.unlink(missing_ok=True)
 
+    @contextlib.contextmanager
+    def beside(self) -> Iterator[None]:
+        """None: DuckDB works in this process, on the cores a fit already keeps busy (its stream and numpy).
+        Measured with a second connection: a 1M-row lease fit took 3.8-3.9 s against 3.1-3.6 s."""
+        yield None
+
     def close(self) -> None:
         self.connection.close()

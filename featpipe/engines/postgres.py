@@ -8,6 +8,7 @@ Large results stream through a server-side cursor, so memory does not grow with 
 from __future__ import annotations
 
 import contextlib
+import copy
 import getpass
 import io
 import os
@@ -216,6 +217,19 @@ class PostgresEngine:
 
     def drop_table(self, name: str) -> None:
         self.execute(statements.drop_table(name))
+
+    @contextlib.contextmanager
+    def beside(self) -> Iterator[PostgresEngine]:
+        """A second connection to the server (a psycopg connection runs one query at a time)."""
+        twin = copy.copy(self)
+        try:
+            twin.connection = psycopg.connect(self.dsn, autocommit=True)
+        except psycopg.Error as error:
+            raise _connection_error(error, self.dsn) from error
+        try:
+            yield twin
+        finally:
+            twin.connection.close()
 
     def close(self) -> None:
         self.connection.close()

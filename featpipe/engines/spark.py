@@ -196,6 +196,11 @@ class SparkEngine:
         with self._translated():
             self._frame(statements.drop_table(name))
 
+    @contextlib.contextmanager
+    def beside(self) -> Iterator[None]:
+        """None: a second job of the session would run on the cores the fit's own aggregates keep busy."""
+        yield None
+
     def close(self) -> None:
         """Stop the session if this engine started it; a session found running belongs to its starter."""
         if self._owns_session:

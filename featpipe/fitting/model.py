@@ -26,6 +26,7 @@ from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor, scored_holdout
 from ..sqlgen.trials import as_trials
 from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
+from .beside import beside
 from .groups import group_tables
 from .inputs import input_profiles
 from .metrics import holdout_metrics, scored_rows_metrics, training_profiles
@@ -76,25 +77,30 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
     fit_layout = expand(engine, model, constants) if constants else layout
     if any(found.call.function == "LEVELS" for found in constants.values()):
         rows["unseen"] = unseen_holdout_rows(engine, model, constants)
-    choice = chosen_penalty(engine, fit_layout, spec)
-    glm = Glm(spec.family, choice.penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
-              errors=spec.errors, trials=spec.trials is not None).fit(engine, fit_layout)
-    # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
-    coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
-    profiles = training_profiles(
-        engine, fit_layout,
-        {**{name: column(name) for name in (*fit_layout.terms, *profiled_arguments(constants))},
-         LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)},
-    )
-    if spec.trials:  # each trial read as a 0/1 row: the successes as events, the failures as non-events
-        metrics = scored_rows_metrics(engine, as_trials(scored_holdout(fit_layout, coefficients, counted=True)), spec.family,
-                                      spec.threshold, counted=True)
-    else:
-        metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold, spec.weight_kind == "frequency",
-                                  power=spec.power)
+    profiled = {name: column(name) for name in (*fit_layout.terms, *profiled_arguments(constants))}
+    declared = compiled.project.inputs[spec.input].columns
+    read = {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})}
+    with beside(engine) as start:  # what needs no coefficients is read on a second connection meanwhile
+        term_profiles = start(training_profiles, fit_layout, profiled)
+        health = start(input_profiles, spec.input, layout.key, spec.holdout, read)
+        choice = chosen_penalty(engine, fit_layout, spec)
+        glm = Glm(spec.family, choice.penalty, frequency_weights=spec.weight_kind == "frequency", power=spec.power,
+                  errors=spec.errors, trials=spec.trials is not None).fit(engine, fit_layout)
+        # Profiles and metrics describe the model as its file writes it, so scoring the file reproduces them.
+        coefficients = {c.name: as_written(c.estimate) for c in glm.coefficients}
+        predictor_profile = start(training_profiles, fit_layout, {LINEAR_PREDICTOR: linear_predictor(fit_layout, coefficients)})
+        if spec.trials:  # each trial read as a 0/1 row: the successes as events, the failures as non-events
+            metrics = scored_rows_metrics(engine, as_trials(scored_holdout(fit_layout, coefficients, counted=True)), spec.family,
+                                          spec.threshold, counted=True)
+        else:
+            metrics = holdout_metrics(engine, fit_layout, spec.family, coefficients, spec.threshold,
+                                      spec.weight_kind == "frequency", power=spec.power)
+        crossval = cross_validation(engine, fit_layout, spec, choice, coefficients) if spec.folds else {}
+        groups = group_tables(engine, scored_holdout(fit_layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
+                              spec.threshold)
+        profiles = {**term_profiles(), **predictor_profile()}
     intercept, *slopes = glm.coefficients
     by_column = dict(zip(fit_layout.terms, slopes, strict=True))
-    declared = compiled.project.inputs[spec.input].columns
     fitted_terms = [_fitted_term(intercept, None, spec, model, None)]
     training_sd = {name: training.sd for name, training in zip(fit_layout.terms, glm.rows.term_profiles, strict=True)}
     for term in model.terms:
@@ -147,11 +153,9 @@ def fit_model(engine: Engine, compiled: CompiledProject, model: CompiledModel) -
         terms=tuple(fitted_terms),
         linear_predictor=profiles[LINEAR_PREDICTOR],
         metrics=metrics,
-        crossval=cross_validation(engine, fit_layout, spec, choice, coefficients) if spec.folds else {},
-        input_profiles=input_profiles(engine, spec.input, layout.key, spec.holdout,
-                                      {name: declared[name] for name in sorted({c for t in model.terms for c in t.columns})}),
-        group_tables=group_tables(engine, scored_holdout(fit_layout, coefficients), spec.input, layout.key, spec.groups, spec.family,
-                            spec.threshold),
+        crossval=crossval,
+        input_profiles=health(),
+        group_tables=groups,
         warnings=tuple(glm.warnings),
         depends_on=model.dependencies,
     )
