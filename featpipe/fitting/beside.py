@@ -26,13 +26,18 @@ Started = Callable[..., Callable[[], Any]]  # starts Work(engine, *arguments); t
 
 @contextlib.contextmanager
 def beside(engine: Engine) -> Iterator[Started]:
-    """Start work on `engine`'s second connection; leaving waits for whatever is still running."""
+    """Start work on `engine`'s second connection; leaving waits for the work still running, but after a
+    failure of the caller's (a refused fit) work not yet begun is dropped."""
     with engine.beside() as twin:
         if twin is None:
             yield _at_once(engine)
             return
         with ThreadPoolExecutor(max_workers=1) as pool:
-            yield lambda work, *arguments: pool.submit(work, twin, *arguments).result
+            try:
+                yield lambda work, *arguments: pool.submit(work, twin, *arguments).result
+            except BaseException:
+                pool.shutdown(cancel_futures=True)
+                raise
 
 
 def _at_once(engine: Engine) -> Started:
