@@ -78,3 +78,17 @@ def test_three_reasons_of_twenty_terms_cost_a_few_comparisons_per_term():
     comparisons = sum(1 for _ in query.find_all(exp.EQ, exp.GT, exp.GTE, exp.LT, exp.LTE))
     # status checks (IS NULL) are not comparisons; the count grows linearly with the terms
     assert comparisons <= TERMS + 2 * 3 * TERMS, comparisons
+
+
+def test_the_reasons_read_the_contributions_as_computed_and_test_the_status_once_per_output():
+    """Where the status is not 'ok' the output has no contribution and no reason; the rounds read the
+    contributions as computed (no status test per term and row inside them), and the final SELECT tests
+    the status once per contribution and reason column it writes."""
+    query = score_query(wide_model(), reasons=3)
+
+    def status_tests(node: exp.Expression) -> int:
+        return sum(1 for test in node.find_all(exp.EQ)
+                   if isinstance(test.this, exp.Column) and test.this.name == "status" and test.expression == exp.Literal.string("ok"))
+
+    assert [status_tests(cte.this) for cte in query.ctes] == [0] * len(query.ctes)
+    assert status_tests(query) == TERMS + 3

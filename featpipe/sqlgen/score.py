@@ -10,11 +10,11 @@ The query reads in steps (common table expressions), each computing something on
 
     term_values    the key, every term value as DOUBLE (hardened SQL) and the offset
     checked_terms  plus `status`: 'ok', or 'missing: <term>' naming the FIRST NULL term in model order
-    contributions  the linear predictor and, for complete rows, one contribution per term
+    contributions  the linear predictor and one contribution per term
     reason_k_top   (with reasons, per reason k) the largest contribution not yet chosen
     reason_k_pick  `reason_k`: the name of the first term in model order holding it (when positive);
                    the next round sets that term aside
-    final SELECT   the prediction through the inverse link
+    final SELECT   the prediction through the inverse link; contributions and reasons of complete rows
 
 The prediction uses the fit's own inverse link (`metrics.prediction`): the linear predictor is clamped
 to [-700, 700] before EXP, so EXP never overflows, nor underflows to an error on PostgreSQL.
@@ -158,15 +158,23 @@ def score_query(model: ScoringModel, *, table: str | None = None, reasons: int =
     outputs = [column(model.key), alias(_prediction(model, column(LINEAR_PREDICTOR)), PREDICTION),
                column(LINEAR_PREDICTOR)]
     outputs += [column(OFFSET)] if model.offset is not None else []
-    outputs += [column(contribution_column(name)) for name in names]
+    outputs += [_if_complete(contribution_column(name)) for name in names]
     outputs.append(column(STATUS))
     if reasons:
         steps += reason_steps(names, steps[-1][1], reasons)
-        outputs += [column(reason_column(rank)) for rank in range(1, reasons + 1)]
+        outputs += [_if_complete(reason_column(rank)) for rank in range(1, reasons + 1)]
     query = exp.select(*outputs).from_(exp.to_table(steps[-1][0]))
     for name, step in steps:
         query = query.with_(name, as_=step)
     return query
+
+
+def _if_complete(name: str) -> exp.Expression:
+    """Column `name` where the row's status is 'ok', else NULL. The reasons read the contributions as
+    computed, so a row's status is tested once per reason rather than once per term: 2M rows, 20 terms,
+    three reasons, the fastest of six interleaved runs 1.68 and 1.90 s against 1.97 and 2.14 s (two
+    batches of runs; the same reasons)."""
+    return alias(exp.Case().when(column(STATUS).eq(exp.Literal.string(OK)), column(name)), name)
 
 
 def _term_values(model: ScoringModel, table: str | None) -> exp.Select:
@@ -192,7 +200,8 @@ def _checked_terms(model: ScoringModel, names: list[str]) -> exp.Select:
 
 
 def _contributions(model: ScoringModel) -> exp.Select:
-    """The key, status, linear predictor, offset and, on complete rows, each term's contribution.
+    """The key, status, linear predictor, offset and each term's contribution (NULL where the term is;
+    `score_query` leaves out those of a row that is not complete).
 
     checked_terms has the shape of a design table without its target (key, DOUBLE terms, offset), so
     the fit's own linear predictor, which reads only terms and offset, applies to it unchanged.
@@ -200,7 +209,6 @@ def _contributions(model: ScoringModel) -> exp.Select:
     names = tuple(term.name for term in model.terms)
     has_offset = model.offset is not None
     shape = DesignLayout(CHECKED, model.key, target="", terms=names, offset=OFFSET_COLUMN if has_offset else None)
-    complete = column(STATUS).eq(exp.Literal.string(OK))
     projections = [column(model.key), column(STATUS),
                    alias(linear_predictor(shape, model.coefficients), LINEAR_PREDICTOR)]
     projections += [alias(column(OFFSET_COLUMN), OFFSET)] if has_offset else []
@@ -211,8 +219,7 @@ def _contributions(model: ScoringModel) -> exp.Select:
         total = parts[0]
         for part in parts[1:]:
             total = exp.Add(this=total, expression=part)
-        contribution = exp.Case().when(complete.copy(), total)
-        projections.append(alias(contribution, contribution_column(group)))
+        projections.append(alias(total, contribution_column(group)))
     return exp.select(*projections).from_(exp.to_table(CHECKED))
 
 
