@@ -214,6 +214,23 @@ def test_profiles_started_beside_are_read_on_a_second_connection_while_the_calle
     assert twin.engine is not engine and twin.engine.connection is not engine.connection and twin.engine.connection.closed
 
 
+@pytest.mark.spark
+def test_profiles_started_beside_on_spark_run_from_another_thread_of_the_same_session(spark_engine, tmp_path):
+    """A Spark session runs jobs sent from several threads: `beside` sends the profiles' jobs from a thread
+    of their own while the caller sends its own, and they equal the profiles read in turn."""
+    data = load(spark_engine, tmp_path)
+    columns = {name: column(name) for name in LAYOUT.terms}
+    held = HeldBack(spark_engine)
+    with beside(held) as start:
+        profiles = start(training_profiles, LAYOUT, columns)
+        assert held.fetch(sqlglot.parse_one(f"SELECT COUNT(*) FROM {LAYOUT.table}")) == [(len(data[LAYOUT.key]),)]
+        held.release.set()
+        found = profiles()
+    (twin,) = held.twins
+    assert twin.engine is spark_engine and twin.queries and len(held.queries) == 1
+    assert found == training_profiles(spark_engine, LAYOUT, columns)
+
+
 def test_profiles_started_beside_duckdb_are_read_at_once_on_its_one_connection(tmp_path):
     """DuckDB works in this process, on the cores the fit keeps busy: `beside` does the work at once, as
     the caller would."""

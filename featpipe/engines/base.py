@@ -64,8 +64,9 @@ class Engine(Protocol):
         """Drop table `name` if it exists."""
 
     def beside(self) -> AbstractContextManager[Engine | None]:
-        """This engine over a second connection to the same database, for queries run on another thread
-        while this one works (closed on leaving); None where the engine has no such second connection."""
+        """An engine for queries run on another thread while this one works: this engine over a second
+        connection to the same database (closed on leaving), this engine itself where it takes queries
+        from several threads, or None where running them meanwhile does not pay."""
 
     def close(self) -> None: ...
 

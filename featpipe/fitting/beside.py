@@ -1,14 +1,17 @@
 """Queries a fit needs that do not wait for its coefficients, run on a second connection while it fits.
 
+The training profiles of a fit's terms and the input's health are queries of their own (on PostgreSQL
+three scans and one more per text column, on Spark a quantile summary and counting scans), as is the
+linear predictor's profile once the coefficients are known, beside the holdout metrics. `beside(engine)`
+yields a function that hands such work to one thread with the engine's second connection
+(`Engine.beside`), in the order given, and returns a function that waits for its result.
+
 On PostgreSQL a fit reads the training rows once into a local copy and runs IRLS on it in this process,
-leaving the server idle, while the training profiles of its terms and the input's health are queries
-of their own (three scans, and one more per text column), as is the linear predictor's profile once the
-coefficients are known, beside the holdout metrics. `beside(engine)` yields a function that hands such
-work to one thread with the engine's second connection (`Engine.beside`), in the order given, and
-returns a function that waits for its result. A 1M-row lease fit on PostgreSQL took 11.9-13.3 s this
-way against 15.1-20.5 s in turn (benchmarks/bench_engines.py, interleaved). An engine without a second
-connection (DuckDB and Spark, whose work shares the cores the fit keeps busy) does the work at once, on
-the caller's connection, as before.
+leaving the server idle: a 1M-row lease fit took 11.9-13.3 s this way against 15.1-20.5 s in turn. A
+Spark session runs jobs sent from two threads side by side, filling the time each job spends planning
+and compiling: 75.8-81.1 s against 86.8-94.5 s (benchmarks/bench_engines.py, interleaved runs). DuckDB
+works in this process, on the cores the fit keeps busy: it has no second connection, and the work is
+done at once on the caller's connection, as before.
 """
 
 from __future__ import annotations
