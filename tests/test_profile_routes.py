@@ -193,12 +193,10 @@ class HeldBack(Recording):
             yield self.twins[-1]
 
 
-def test_profiles_started_beside_are_read_on_a_second_connection_while_the_caller_goes_on(postgres_engine, tmp_path):
-    """A fit's term profiles do not wait for the fit: on PostgreSQL `beside` reads them on a second
-    connection in a thread of their own. Those queries are held back until the caller has run a query of
-    its own on its connection, which could never happen were they run in turn on the caller's thread; the
-    profiles equal those read in turn, figure for figure, and the second connection is closed after."""
-    engine = postgres_engine
+def profiles_held_back_beside(engine, tmp_path):
+    """Profiles started `beside` while the caller runs a count on its own connection, their queries held
+    back until it has: which could never happen were they run in turn on the caller's thread. Returns
+    the held engine, the profiles and what reading them in turn sent."""
     data = load(engine, tmp_path)
     columns = {name: column(name) for name in LAYOUT.terms}
     held = HeldBack(engine)
@@ -208,27 +206,25 @@ def test_profiles_started_beside_are_read_on_a_second_connection_while_the_calle
         held.release.set()
         found = profiles()
     in_turn = Recording(engine)
-    assert found == training_profiles(in_turn, LAYOUT, columns)
+    assert found == training_profiles(in_turn, LAYOUT, columns)  # figure for figure
     (twin,) = held.twins
     assert len(held.queries) == 1 and twin.queries == in_turn.queries  # the caller's count here, the profiles there
-    assert twin.engine is not engine and twin.engine.connection is not engine.connection and twin.engine.connection.closed
+    return twin
+
+
+def test_profiles_started_beside_are_read_on_a_second_connection_while_the_caller_goes_on(postgres_engine, tmp_path):
+    """A fit's term profiles do not wait for the fit: on PostgreSQL `beside` reads them on a second
+    connection in a thread of their own, closed after."""
+    twin = profiles_held_back_beside(postgres_engine, tmp_path)
+    assert twin.engine is not postgres_engine and twin.engine.connection is not postgres_engine.connection
+    assert twin.engine.connection.closed
 
 
 @pytest.mark.spark
 def test_profiles_started_beside_on_spark_run_from_another_thread_of_the_same_session(spark_engine, tmp_path):
     """A Spark session runs jobs sent from several threads: `beside` sends the profiles' jobs from a thread
-    of their own while the caller sends its own, and they equal the profiles read in turn."""
-    data = load(spark_engine, tmp_path)
-    columns = {name: column(name) for name in LAYOUT.terms}
-    held = HeldBack(spark_engine)
-    with beside(held) as start:
-        profiles = start(training_profiles, LAYOUT, columns)
-        assert held.fetch(sqlglot.parse_one(f"SELECT COUNT(*) FROM {LAYOUT.table}")) == [(len(data[LAYOUT.key]),)]
-        held.release.set()
-        found = profiles()
-    (twin,) = held.twins
-    assert twin.engine is spark_engine and twin.queries and len(held.queries) == 1
-    assert found == training_profiles(spark_engine, LAYOUT, columns)
+    of their own while the caller sends its own."""
+    assert profiles_held_back_beside(spark_engine, tmp_path).engine is spark_engine
 
 
 def test_profiles_started_beside_duckdb_are_read_at_once_on_its_one_connection(tmp_path):

@@ -25,8 +25,8 @@ from ..sqlgen.accounting import dropped_reasons, imputed_rows_query, imputing_te
 from ..sqlgen.common import column
 from ..sqlgen.metrics import linear_predictor, scored_holdout
 from ..sqlgen.trials import as_trials
-from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
 from .beside import beside
+from .learned import column_names, expand, learn_constants, learned_entry, profiled_arguments, unseen_holdout_rows
 from .groups import group_tables
 from .inputs import input_profiles
 from .metrics import holdout_metrics, scored_rows_metrics, training_profiles

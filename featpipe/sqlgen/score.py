@@ -226,9 +226,9 @@ def _contributions(model: ScoringModel) -> exp.Select:
 def reason_steps(names: list[str], contributions: exp.Select, reasons: int) -> list[tuple[str, exp.Select]]:
     """The steps choosing reasons 1..`reasons`, after `contributions`; each carries every column before it.
 
-    Round k takes the largest of the contributions still in play (`_top_k`, GREATEST: a row's
-    contributions are all NULL or none), and names the first term in model order holding it when it
-    is positive (`reason_k`, NULL otherwise). Round k + 1 reads the contributions with that term set
+    Round k takes the largest of the contributions still in play (`_top_k`, GREATEST; on a row that is
+    not complete some are NULL, and `score_query` drops its reasons whatever the engine's GREATEST
+    makes of them), and names the first term in model order holding it when it is positive (`reason_k`, NULL otherwise). Round k + 1 reads the contributions with that term set
     aside (SET_ASIDE), so a tie goes to the earlier term first and the later one next. The pick is the
     reason column itself: a separate position mapped to a name afterwards cost another comparison
     chain per reason (benchmarks/bench_score.py).
