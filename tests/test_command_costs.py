@@ -17,6 +17,7 @@ import sys
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pytest
 import statsmodels.api as sm
 from conftest import REPO, copy_demo, write_project
@@ -27,7 +28,7 @@ from featpipe.compiler.layout import DesignLayout
 from featpipe.engines.duckdb import DuckDBEngine
 from featpipe.glm import Glm
 from featpipe.glm.families import get_family
-from featpipe.glm.sources import LocalCopy, Request, Scaling, SqlAggregateSource, engine_batches
+from featpipe.glm.sources import LocalCopy, Request, Scaling, SqlAggregateSource, engine_batches, numpy_values
 from featpipe.sqlgen.common import render
 from featpipe.sqlgen.design import design_query
 from featpipe.sqlgen.statistics import profile_query, read_profile
@@ -216,6 +217,25 @@ def test_a_fit_does_not_import_scipy_stats_and_its_figures_are_scipy_stats_own(t
     t_test = wald(coef, covariance, get_family("gaussian"), df_residual=17)  # t with 17 df
     np.testing.assert_array_equal(t_test.p_value, 2.0 * stats.t.sf(np.abs(coef / stderr), 17))
     np.testing.assert_array_equal(t_test.ci_low, coef - stats.t.ppf(0.975, 17) * stderr)
+
+
+def test_a_fit_on_duckdb_does_not_import_pandas(tmp_path):
+    """pyarrow's to_numpy imports pandas (0.3 s); a fit reads Arrow columns through `numpy_values` instead."""
+    project = copy_demo("lease_default", tmp_path)
+    script = ("import sys; from featpipe import api; api.fit(api.load_project(sys.argv[1]), ['default_risk']); "
+              "print('pandas' in sys.modules)")
+    environment = {**os.environ, "PYTHONPATH": str(REPO)}
+    loaded = subprocess.run([sys.executable, "-c", script, str(project)], capture_output=True, text=True, env=environment, check=True)
+    assert loaded.stdout.strip() == "False"
+
+
+def test_numpy_values_read_numbers_from_arrow_buffers_and_leave_the_rest_to_pyarrow():
+    sliced = pa.array([1.0, 2.0, 3.0, 4.0]).slice(1, 2)
+    np.testing.assert_array_equal(numpy_values(sliced), [2.0, 3.0])  # the slice's offset, not the buffer's start
+    np.testing.assert_array_equal(numpy_values(pa.chunked_array([[1.0, 2.0], [3.0]])), [1.0, 2.0, 3.0])
+    assert numpy_values(pa.array([1, 2], pa.int32())).dtype == np.int32
+    np.testing.assert_array_equal(numpy_values(pa.array([1.0, None])), [1.0, np.nan])  # NULLs as pyarrow gives them
+    np.testing.assert_array_equal(numpy_values(pa.array([True, False])), [True, False])
 
 
 def test_a_local_copy_reads_the_engine_once_and_fits_as_the_stream_does(tmp_path):

@@ -13,6 +13,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..fitted import Profile
+from ..glm.sources import numpy_values
 from ..sqlgen.profile import RankedValues, needed_ranks, summarize
 
 
@@ -21,7 +22,7 @@ def present_values(chunks: Sequence[pa.Array], spare: np.ndarray | None = None) 
     NULL count. The values are copied into `spare` when it is large enough: memory a column before
     held, so the copy touches no fresh pages (a fresh 10M-row array costs about as much in page faults
     as the copy itself)."""
-    present = [chunk.drop_null().to_numpy(zero_copy_only=False) for chunk in chunks]
+    present = [numpy_values(chunk.drop_null()) for chunk in chunks]
     rows = sum(len(values) for values in present)
     values = spare[:rows] if spare is not None and len(spare) >= rows else np.empty(rows)
     if present:

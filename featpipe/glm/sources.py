@@ -496,7 +496,7 @@ def _read_ahead(items: Iterator[Batch]) -> Iterator[Batch]:
 def batch_from_arrow(result: pa.RecordBatch | pa.Table, layout: DesignLayout, grouped: bool = False) -> Batch:
     """A `Batch` from the columns of `design_columns_query`: target, [offset], [weight], terms, and with
     `grouped` the group last."""
-    columns = [column.to_numpy(zero_copy_only=False) for column in result.columns]
+    columns = [numpy_values(column) for column in result.columns]
     group = columns.pop() if grouped else None
     position = 1
     offset = weight = None
@@ -505,3 +505,17 @@ def batch_from_arrow(result: pa.RecordBatch | pa.Table, layout: DesignLayout, gr
     if layout.weight:
         weight, position = columns[position], position + 1
     return Batch(columns[0], offset, weight, columns[position:], group)
+
+
+def numpy_values(values: pa.Array | pa.ChunkedArray) -> np.ndarray:
+    """An Arrow column as a numpy array: numbers without NULLs are read from each chunk's data buffer (one
+    chunk: no copy, read-only), anything else as pyarrow converts it. pyarrow's `to_numpy` imports pandas,
+    which nothing else in a fit needs: 0.3 s of every `featpipe fit`."""
+    chunks = values.chunks if isinstance(values, pa.ChunkedArray) else [values]
+    numeric = pa.types.is_floating(values.type) or pa.types.is_integer(values.type)
+    if not numeric or values.null_count or len(chunks) == 0:
+        return values.to_numpy(zero_copy_only=False)
+    dtype = values.type.to_pandas_dtype()  # a numpy type; pandas is not imported for it
+    parts = [np.frombuffer(chunk.buffers()[1], dtype=dtype, count=len(chunk), offset=chunk.offset * values.type.byte_width)
+             for chunk in chunks]
+    return parts[0] if len(parts) == 1 else np.concatenate(parts)
