@@ -198,13 +198,17 @@ def test_the_profile_from_the_first_pass_equals_the_profile_query(engine_name, r
     assert profile.rows == ROWS
 
 
-def test_a_fit_does_not_import_scipy_stats_and_its_figures_are_scipy_stats_own(tmp_path):
+def after_a_fit(tmp_path, expression: str) -> str:
+    """What `expression` (over sys.modules) prints after a fit of the lease demo in a fresh process."""
     project = copy_demo("lease_default", tmp_path)
-    script = ("import sys; from featpipe import api; api.fit(api.load_project(sys.argv[1]), ['default_risk']); "
-              "print(sorted(name for name in sys.modules if name.startswith('scipy.stats')))")
+    script = f"import sys; from featpipe import api; api.fit(api.load_project(sys.argv[1]), ['default_risk']); print({expression})"
     environment = {**os.environ, "PYTHONPATH": str(REPO)}
     loaded = subprocess.run([sys.executable, "-c", script, str(project)], capture_output=True, text=True, env=environment, check=True)
-    assert loaded.stdout.strip() == "[]"
+    return loaded.stdout.strip()
+
+
+def test_a_fit_does_not_import_scipy_stats_and_its_figures_are_scipy_stats_own(tmp_path):
+    assert after_a_fit(tmp_path, "sorted(name for name in sys.modules if name.startswith('scipy.stats'))") == "[]"
     from scipy import stats
 
     from featpipe.glm.inference import wald
@@ -221,12 +225,7 @@ def test_a_fit_does_not_import_scipy_stats_and_its_figures_are_scipy_stats_own(t
 
 def test_a_fit_on_duckdb_does_not_import_pandas(tmp_path):
     """pyarrow's to_numpy imports pandas (0.3 s); a fit reads Arrow columns through `numpy_values` instead."""
-    project = copy_demo("lease_default", tmp_path)
-    script = ("import sys; from featpipe import api; api.fit(api.load_project(sys.argv[1]), ['default_risk']); "
-              "print('pandas' in sys.modules)")
-    environment = {**os.environ, "PYTHONPATH": str(REPO)}
-    loaded = subprocess.run([sys.executable, "-c", script, str(project)], capture_output=True, text=True, env=environment, check=True)
-    assert loaded.stdout.strip() == "False"
+    assert after_a_fit(tmp_path, "'pandas' in sys.modules") == "False"
 
 
 def test_numpy_values_read_numbers_from_arrow_buffers_and_leave_the_rest_to_pyarrow():
