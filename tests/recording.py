@@ -9,8 +9,8 @@ class Recording:
     """An engine that remembers the SQL it was asked to run (everything else is the engine's own); the SQL
     sent on its second connection (`beside`) is remembered apart, in `beside_queries`."""
 
-    def __init__(self, engine):
-        self.engine, self.queries, self.beside_queries = engine, [], []
+    def __init__(self, engine, queries: list | None = None):
+        self.engine, self.queries, self.beside_queries = engine, [] if queries is None else queries, []
 
     def __getattr__(self, name):
         return getattr(self.engine, name)
@@ -29,6 +29,4 @@ class Recording:
             if twin is None:
                 yield None
                 return
-            recording = Recording(twin)
-            recording.queries = self.beside_queries
-            yield recording
+            yield Recording(twin, self.beside_queries)
